@@ -1,0 +1,1 @@
+"""The `shardsieve` command line (click). Each subcommand lives in its own module."""

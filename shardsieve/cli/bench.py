@@ -1,0 +1,20 @@
+"""`shardsieve bench ...`: benchmarks that print ratios against a side-by-side baseline."""
+
+from __future__ import annotations
+
+import click
+
+from shardsieve.cli.lazy import LazyGroup
+
+
+@click.group(cls=LazyGroup, lazy_commands={
+    "filter": "shardsieve.bench.filter_bench:bench_filter",
+    "node": "shardsieve.bench.node_bench:bench_node",
+    "routing": "shardsieve.bench.routing_bench:bench_routing",
+})
+def bench() -> None:
+    """Measure a component against a baseline run side by side in the same process.
+
+    Machines are shared and noisy, so every figure that matters is printed as a ratio
+    against a baseline measured in the same run.
+    """

@@ -1,0 +1,44 @@
+"""Entry point of the `shardsieve` console script."""
+
+from __future__ import annotations
+
+import click
+
+from shardsieve import __version__
+from shardsieve.cli.lazy import LazyGroup
+
+COMMANDS = {
+    "plan": "shardsieve.cli.plan:plan",
+    "bench": "shardsieve.cli.bench:bench",
+    "node": "node.cli:node_command",
+    "coordinator": "coordinator.cli:coordinator_command",
+    "status": "shardsieve.cli.ops:status",
+    "inspect": "shardsieve.cli.ops:inspect_node",
+    "rebuild": "shardsieve.cli.ops:rebuild",
+    "locate": "shardsieve.cli.ops:locate",
+    "get": "shardsieve.cli.ops:get",
+    "put": "shardsieve.cli.ops:put",
+    "delete": "shardsieve.cli.ops:delete",
+    "policy": "shardsieve.cli.ops:policy",
+    "loadtest": "shardsieve.cli.loadtest:loadtest",
+    "demo": "shardsieve.cli.demo:demo",
+}
+
+
+@click.group(cls=LazyGroup, lazy_commands=COMMANDS, context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="shardsieve")
+def cli() -> None:
+    """Route key lookups in a sharded store to the nodes whose Bloom filters may hold the key.
+
+    Daemons: `node`, `coordinator`. Planning and measurement: `plan`, `bench`, `loadtest`,
+    `demo`. Operating a fleet: `status`, `inspect`, `rebuild`, `locate`, `get`, `put`,
+    `delete`, `policy`.
+    """
+
+
+def main() -> None:
+    cli(prog_name="shardsieve")
+
+
+if __name__ == "__main__":
+    main()
