@@ -25,15 +25,15 @@ _sym_db = _symbol_database.Default()
 from shardsieve.v1 import filter_pb2 as shardsieve_dot_v1_dot_filter__pb2
 
 
-DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n\x18shardsieve/v1/sync.proto\x12\rshardsieve.v1\x1a\x1ashardsieve/v1/filter.proto\"\xf5\x02\n\tNodeStats\x12\x11\n\tkey_count\x18\x01 \x01(\x04\x12\x10\n\x08\x63\x61pacity\x18\x02 \x01(\x04\x12)\n\x08geometry\x18\x03 \x01(\x0b\x32\x17.shardsieve.v1.Geometry\x12\x0c\n\x04\x66ill\x18\x04 \x01(\x01\x12\x15\n\rpredicted_fpr\x18\x05 \x01(\x01\x12\r\n\x05reads\x18\x06 \x01(\x04\x12\x14\n\x0creads_missed\x18\x07 \x01(\x04\x12\x0e\n\x06writes\x18\x08 \x01(\x04\x12\x0f\n\x07\x64\x65letes\x18\t \x01(\x04\x12\x14\n\x0c\x62ytes_pushed\x18\n \x01(\x04\x12\r\n\x05\x65poch\x18\x0b \x01(\x04\x12\x10\n\x08sequence\x18\x0c \x01(\x04\x12\x12\n\ntarget_fpr\x18\r \x01(\x01\x12\x15\n\rrebuild_epoch\x18\x0e \x01(\x04\x12\x18\n\x10rebuild_progress\x18\x0f \x01(\x01\x12\x15\n\rrebuild_phase\x18\x10 \x01(\t\x12\x1a\n\x12saturated_counters\x18\x11 \x01(\x04\"\x93\x02\n\x05Hello\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\x17\n\x0fstorage_address\x18\x02 \x01(\t\x12)\n\x08geometry\x18\x03 \x01(\x0b\x32\x17.shardsieve.v1.Geometry\x12\r\n\x05\x65poch\x18\x04 \x01(\x04\x12\x10\n\x08sequence\x18\x05 \x01(\x04\x12\x10\n\x08\x63hecksum\x18\x06 \x01(\x06\x12\x11\n\tkey_count\x18\x07 \x01(\x04\x12\x10\n\x08\x63\x61pacity\x18\x08 \x01(\x04\x12\x12\n\ntarget_fpr\x18\t \x01(\x01\x12\x18\n\x10push_interval_ms\x18\n \x01(\r\x12\x18\n\x10protocol_version\x18\x0b \x01(\r\x12\x15\n\rhistory_floor\x18\x0c \x01(\x04\"4\n\tHeartbeat\x12\'\n\x05stats\x18\x01 \x01(\x0b\x32\x18.shardsieve.v1.NodeStats\"\xca\x01\n\x0bNodeMessage\x12%\n\x05hello\x18\x01 \x01(\x0b\x32\x14.shardsieve.v1.HelloH\x00\x12%\n\x05\x64\x65lta\x18\x02 \x01(\x0b\x32\x14.shardsieve.v1.DeltaH\x00\x12\x36\n\x0esnapshot_chunk\x18\x03 \x01(\x0b\x32\x1c.shardsieve.v1.SnapshotChunkH\x00\x12-\n\theartbeat\x18\x04 \x01(\x0b\x32\x18.shardsieve.v1.HeartbeatH\x00\x42\x06\n\x04\x62ody\"&\n\x03\x41\x63k\x12\r\n\x05\x65poch\x18\x01 \x01(\x04\x12\x10\n\x08sequence\x18\x02 \x01(\x04\"x\n\x0cNeedSnapshot\x12-\n\x06reason\x18\x01 \x01(\x0e\x32\x1d.shardsieve.v1.SnapshotReason\x12\x12\n\nhave_epoch\x18\x02 \x01(\x04\x12\x15\n\rhave_sequence\x18\x03 \x01(\x04\x12\x0e\n\x06\x64\x65tail\x18\x04 \x01(\t\"Z\n\x0eRebuildRequest\x12\x12\n\nrequest_id\x18\x01 \x01(\x04\x12\x10\n\x08\x63\x61pacity\x18\x02 \x01(\x04\x12\x12\n\ntarget_fpr\x18\x03 \x01(\x01\x12\x0e\n\x06reason\x18\x04 \x01(\t\"H\n\x10SnapshotVerified\x12\x13\n\x0bsnapshot_id\x18\x01 \x01(\x04\x12\r\n\x05\x65poch\x18\x02 \x01(\x04\x12\x10\n\x08sequence\x18\x03 \x01(\x04\"7\n\x10SnapshotRejected\x12\x13\n\x0bsnapshot_id\x18\x01 \x01(\x04\x12\x0e\n\x06\x64\x65tail\x18\x02 \x01(\t\"\xa3\x02\n\x12\x43oordinatorMessage\x12!\n\x03\x61\x63k\x18\x01 \x01(\x0b\x32\x12.shardsieve.v1.AckH\x00\x12\x34\n\rneed_snapshot\x18\x02 \x01(\x0b\x32\x1b.shardsieve.v1.NeedSnapshotH\x00\x12\x30\n\x07rebuild\x18\x03 \x01(\x0b\x32\x1d.shardsieve.v1.RebuildRequestH\x00\x12<\n\x11snapshot_verified\x18\x04 \x01(\x0b\x32\x1f.shardsieve.v1.SnapshotVerifiedH\x00\x12<\n\x11snapshot_rejected\x18\x05 \x01(\x0b\x32\x1f.shardsieve.v1.SnapshotRejectedH\x00\x42\x06\n\x04\x62ody*\xf9\x01\n\x0eSnapshotReason\x12\x1f\n\x1bSNAPSHOT_REASON_UNSPECIFIED\x10\x00\x12\x1e\n\x1aSNAPSHOT_REASON_NO_REPLICA\x10\x01\x12\x17\n\x13SNAPSHOT_REASON_GAP\x10\x02\x12!\n\x1dSNAPSHOT_REASON_UNKNOWN_EPOCH\x10\x03\x12%\n!SNAPSHOT_REASON_CHECKSUM_MISMATCH\x10\x04\x12\x1f\n\x1bSNAPSHOT_REASON_BAD_PAYLOAD\x10\x05\x12\"\n\x1eSNAPSHOT_REASON_BEHIND_HISTORY\x10\x06\x32Y\n\nFilterSync\x12K\n\x06Stream\x12\x1a.shardsieve.v1.NodeMessage\x1a!.shardsieve.v1.CoordinatorMessage(\x01\x30\x01\x62\x06proto3')
+DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n\x18shardsieve/v1/sync.proto\x12\rshardsieve.v1\x1a\x1ashardsieve/v1/filter.proto\"\xf5\x02\n\tNodeStats\x12\x11\n\tkey_count\x18\x01 \x01(\x04\x12\x10\n\x08\x63\x61pacity\x18\x02 \x01(\x04\x12)\n\x08geometry\x18\x03 \x01(\x0b\x32\x17.shardsieve.v1.Geometry\x12\x0c\n\x04\x66ill\x18\x04 \x01(\x01\x12\x15\n\rpredicted_fpr\x18\x05 \x01(\x01\x12\r\n\x05reads\x18\x06 \x01(\x04\x12\x14\n\x0creads_missed\x18\x07 \x01(\x04\x12\x0e\n\x06writes\x18\x08 \x01(\x04\x12\x0f\n\x07\x64\x65letes\x18\t \x01(\x04\x12\x14\n\x0c\x62ytes_pushed\x18\n \x01(\x04\x12\r\n\x05\x65poch\x18\x0b \x01(\x04\x12\x10\n\x08sequence\x18\x0c \x01(\x04\x12\x12\n\ntarget_fpr\x18\r \x01(\x01\x12\x15\n\rrebuild_epoch\x18\x0e \x01(\x04\x12\x18\n\x10rebuild_progress\x18\x0f \x01(\x01\x12\x15\n\rrebuild_phase\x18\x10 \x01(\t\x12\x1a\n\x12saturated_counters\x18\x11 \x01(\x04\"\x93\x02\n\x05Hello\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\x17\n\x0fstorage_address\x18\x02 \x01(\t\x12)\n\x08geometry\x18\x03 \x01(\x0b\x32\x17.shardsieve.v1.Geometry\x12\r\n\x05\x65poch\x18\x04 \x01(\x04\x12\x10\n\x08sequence\x18\x05 \x01(\x04\x12\x10\n\x08\x63hecksum\x18\x06 \x01(\x06\x12\x11\n\tkey_count\x18\x07 \x01(\x04\x12\x10\n\x08\x63\x61pacity\x18\x08 \x01(\x04\x12\x12\n\ntarget_fpr\x18\t \x01(\x01\x12\x18\n\x10push_interval_ms\x18\n \x01(\r\x12\x18\n\x10protocol_version\x18\x0b \x01(\r\x12\x15\n\rhistory_floor\x18\x0c \x01(\x04\"4\n\tHeartbeat\x12\'\n\x05stats\x18\x01 \x01(\x0b\x32\x18.shardsieve.v1.NodeStats\"\xca\x01\n\x0bNodeMessage\x12%\n\x05hello\x18\x01 \x01(\x0b\x32\x14.shardsieve.v1.HelloH\x00\x12%\n\x05\x64\x65lta\x18\x02 \x01(\x0b\x32\x14.shardsieve.v1.DeltaH\x00\x12\x36\n\x0esnapshot_chunk\x18\x03 \x01(\x0b\x32\x1c.shardsieve.v1.SnapshotChunkH\x00\x12-\n\theartbeat\x18\x04 \x01(\x0b\x32\x18.shardsieve.v1.HeartbeatH\x00\x42\x06\n\x04\x62ody\"Q\n\x03\x41\x63k\x12\r\n\x05\x65poch\x18\x01 \x01(\x04\x12\x10\n\x08sequence\x18\x02 \x01(\x04\x12)\n\x08geometry\x18\x03 \x01(\x0b\x32\x17.shardsieve.v1.Geometry\"x\n\x0cNeedSnapshot\x12-\n\x06reason\x18\x01 \x01(\x0e\x32\x1d.shardsieve.v1.SnapshotReason\x12\x12\n\nhave_epoch\x18\x02 \x01(\x04\x12\x15\n\rhave_sequence\x18\x03 \x01(\x04\x12\x0e\n\x06\x64\x65tail\x18\x04 \x01(\t\"Z\n\x0eRebuildRequest\x12\x12\n\nrequest_id\x18\x01 \x01(\x04\x12\x10\n\x08\x63\x61pacity\x18\x02 \x01(\x04\x12\x12\n\ntarget_fpr\x18\x03 \x01(\x01\x12\x0e\n\x06reason\x18\x04 \x01(\t\"H\n\x10SnapshotVerified\x12\x13\n\x0bsnapshot_id\x18\x01 \x01(\x04\x12\r\n\x05\x65poch\x18\x02 \x01(\x04\x12\x10\n\x08sequence\x18\x03 \x01(\x04\"7\n\x10SnapshotRejected\x12\x13\n\x0bsnapshot_id\x18\x01 \x01(\x04\x12\x0e\n\x06\x64\x65tail\x18\x02 \x01(\t\"\xb4\x02\n\x12\x43oordinatorMessage\x12!\n\x03\x61\x63k\x18\x01 \x01(\x0b\x32\x12.shardsieve.v1.AckH\x00\x12\x34\n\rneed_snapshot\x18\x02 \x01(\x0b\x32\x1b.shardsieve.v1.NeedSnapshotH\x00\x12\x30\n\x07rebuild\x18\x03 \x01(\x0b\x32\x1d.shardsieve.v1.RebuildRequestH\x00\x12<\n\x11snapshot_verified\x18\x04 \x01(\x0b\x32\x1f.shardsieve.v1.SnapshotVerifiedH\x00\x12<\n\x11snapshot_rejected\x18\x05 \x01(\x0b\x32\x1f.shardsieve.v1.SnapshotRejectedH\x00\x12\x0f\n\x07node_id\x18\n \x01(\tB\x06\n\x04\x62ody*\xf9\x01\n\x0eSnapshotReason\x12\x1f\n\x1bSNAPSHOT_REASON_UNSPECIFIED\x10\x00\x12\x1e\n\x1aSNAPSHOT_REASON_NO_REPLICA\x10\x01\x12\x17\n\x13SNAPSHOT_REASON_GAP\x10\x02\x12!\n\x1dSNAPSHOT_REASON_UNKNOWN_EPOCH\x10\x03\x12%\n!SNAPSHOT_REASON_CHECKSUM_MISMATCH\x10\x04\x12\x1f\n\x1bSNAPSHOT_REASON_BAD_PAYLOAD\x10\x05\x12\"\n\x1eSNAPSHOT_REASON_BEHIND_HISTORY\x10\x06\x32Y\n\nFilterSync\x12K\n\x06Stream\x12\x1a.shardsieve.v1.NodeMessage\x1a!.shardsieve.v1.CoordinatorMessage(\x01\x30\x01\x62\x06proto3')
 
 _globals = globals()
 _builder.BuildMessageAndEnumDescriptors(DESCRIPTOR, _globals)
 _builder.BuildTopDescriptorsAndMessages(DESCRIPTOR, 'shardsieve.v1.sync_pb2', _globals)
 if not _descriptor._USE_C_DESCRIPTORS:
   DESCRIPTOR._loaded_options = None
-  _globals['_SNAPSHOTREASON']._serialized_start=1664
-  _globals['_SNAPSHOTREASON']._serialized_end=1913
+  _globals['_SNAPSHOTREASON']._serialized_start=1724
+  _globals['_SNAPSHOTREASON']._serialized_end=1973
   _globals['_NODESTATS']._serialized_start=72
   _globals['_NODESTATS']._serialized_end=445
   _globals['_HELLO']._serialized_start=448
@@ -43,17 +43,17 @@ if not _descriptor._USE_C_DESCRIPTORS:
   _globals['_NODEMESSAGE']._serialized_start=780
   _globals['_NODEMESSAGE']._serialized_end=982
   _globals['_ACK']._serialized_start=984
-  _globals['_ACK']._serialized_end=1022
-  _globals['_NEEDSNAPSHOT']._serialized_start=1024
-  _globals['_NEEDSNAPSHOT']._serialized_end=1144
-  _globals['_REBUILDREQUEST']._serialized_start=1146
-  _globals['_REBUILDREQUEST']._serialized_end=1236
-  _globals['_SNAPSHOTVERIFIED']._serialized_start=1238
-  _globals['_SNAPSHOTVERIFIED']._serialized_end=1310
-  _globals['_SNAPSHOTREJECTED']._serialized_start=1312
-  _globals['_SNAPSHOTREJECTED']._serialized_end=1367
-  _globals['_COORDINATORMESSAGE']._serialized_start=1370
-  _globals['_COORDINATORMESSAGE']._serialized_end=1661
-  _globals['_FILTERSYNC']._serialized_start=1915
-  _globals['_FILTERSYNC']._serialized_end=2004
+  _globals['_ACK']._serialized_end=1065
+  _globals['_NEEDSNAPSHOT']._serialized_start=1067
+  _globals['_NEEDSNAPSHOT']._serialized_end=1187
+  _globals['_REBUILDREQUEST']._serialized_start=1189
+  _globals['_REBUILDREQUEST']._serialized_end=1279
+  _globals['_SNAPSHOTVERIFIED']._serialized_start=1281
+  _globals['_SNAPSHOTVERIFIED']._serialized_end=1353
+  _globals['_SNAPSHOTREJECTED']._serialized_start=1355
+  _globals['_SNAPSHOTREJECTED']._serialized_end=1410
+  _globals['_COORDINATORMESSAGE']._serialized_start=1413
+  _globals['_COORDINATORMESSAGE']._serialized_end=1721
+  _globals['_FILTERSYNC']._serialized_start=1975
+  _globals['_FILTERSYNC']._serialized_end=2064
 # @@protoc_insertion_point(module_scope)

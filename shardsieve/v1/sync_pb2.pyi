@@ -109,12 +109,14 @@ class NodeMessage(_message.Message):
     def __init__(self, hello: _Optional[_Union[Hello, _Mapping]] = ..., delta: _Optional[_Union[_filter_pb2.Delta, _Mapping]] = ..., snapshot_chunk: _Optional[_Union[_filter_pb2.SnapshotChunk, _Mapping]] = ..., heartbeat: _Optional[_Union[Heartbeat, _Mapping]] = ...) -> None: ...
 
 class Ack(_message.Message):
-    __slots__ = ("epoch", "sequence")
+    __slots__ = ("epoch", "sequence", "geometry")
     EPOCH_FIELD_NUMBER: _ClassVar[int]
     SEQUENCE_FIELD_NUMBER: _ClassVar[int]
+    GEOMETRY_FIELD_NUMBER: _ClassVar[int]
     epoch: int
     sequence: int
-    def __init__(self, epoch: _Optional[int] = ..., sequence: _Optional[int] = ...) -> None: ...
+    geometry: _filter_pb2.Geometry
+    def __init__(self, epoch: _Optional[int] = ..., sequence: _Optional[int] = ..., geometry: _Optional[_Union[_filter_pb2.Geometry, _Mapping]] = ...) -> None: ...
 
 class NeedSnapshot(_message.Message):
     __slots__ = ("reason", "have_epoch", "have_sequence", "detail")
@@ -159,15 +161,17 @@ class SnapshotRejected(_message.Message):
     def __init__(self, snapshot_id: _Optional[int] = ..., detail: _Optional[str] = ...) -> None: ...
 
 class CoordinatorMessage(_message.Message):
-    __slots__ = ("ack", "need_snapshot", "rebuild", "snapshot_verified", "snapshot_rejected")
+    __slots__ = ("ack", "need_snapshot", "rebuild", "snapshot_verified", "snapshot_rejected", "node_id")
     ACK_FIELD_NUMBER: _ClassVar[int]
     NEED_SNAPSHOT_FIELD_NUMBER: _ClassVar[int]
     REBUILD_FIELD_NUMBER: _ClassVar[int]
     SNAPSHOT_VERIFIED_FIELD_NUMBER: _ClassVar[int]
     SNAPSHOT_REJECTED_FIELD_NUMBER: _ClassVar[int]
+    NODE_ID_FIELD_NUMBER: _ClassVar[int]
     ack: Ack
     need_snapshot: NeedSnapshot
     rebuild: RebuildRequest
     snapshot_verified: SnapshotVerified
     snapshot_rejected: SnapshotRejected
-    def __init__(self, ack: _Optional[_Union[Ack, _Mapping]] = ..., need_snapshot: _Optional[_Union[NeedSnapshot, _Mapping]] = ..., rebuild: _Optional[_Union[RebuildRequest, _Mapping]] = ..., snapshot_verified: _Optional[_Union[SnapshotVerified, _Mapping]] = ..., snapshot_rejected: _Optional[_Union[SnapshotRejected, _Mapping]] = ...) -> None: ...
+    node_id: str
+    def __init__(self, ack: _Optional[_Union[Ack, _Mapping]] = ..., need_snapshot: _Optional[_Union[NeedSnapshot, _Mapping]] = ..., rebuild: _Optional[_Union[RebuildRequest, _Mapping]] = ..., snapshot_verified: _Optional[_Union[SnapshotVerified, _Mapping]] = ..., snapshot_rejected: _Optional[_Union[SnapshotRejected, _Mapping]] = ..., node_id: _Optional[str] = ...) -> None: ...

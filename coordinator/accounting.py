@@ -1,0 +1,157 @@
+"""False-positive accounting per node and for the fleet; pure counters, no I/O.
+
+For every read the coordinator knows, per node, whether its filter was consulted, whether it
+was probed, and whether the probe found the key. From that it derives:
+- wasted probes: probes that found nothing (whatever the reason the node was listed),
+- observed FPR: filter false positives over the lookups checked against that node's filter
+  for keys it did not hold, with a Wilson score 95% interval (Wilson, "Probable inference,
+  the law of succession, and statistical inference", JASA 1927),
+- predicted FPR: fill^k (the standard Bloom filter estimate from the fraction of set bits,
+  Broder & Mitzenmacher 2004),
+- avoided fan-out = 1 - probes / (lookups x nodes).
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+from dataclasses import dataclass, field
+from typing import Iterable
+
+Z95 = 1.959963984540054  # two-sided 95% normal quantile (standard normal table)
+
+
+def wilson_interval(successes: int, trials: int, z: float = Z95) -> tuple[float, float]:
+    """Wilson score interval for a binomial proportion; (0, 1) when there are no trials."""
+    if trials < 0 or successes < 0 or successes > trials:
+        raise ValueError(f"need 0 <= successes <= trials, got {successes} of {trials}")
+    if trials == 0:
+        return 0.0, 1.0
+    p = successes / trials
+    z2 = z * z
+    denom = 1.0 + z2 / trials
+    centre = (p + z2 / (2 * trials)) / denom
+    half = z * math.sqrt(p * (1 - p) / trials + z2 / (4 * trials * trials)) / denom
+    return max(0.0, centre - half), min(1.0, centre + half)
+
+
+def predicted_fpr(fill: float, hashes: int) -> float:
+    """fill^k: the chance all k positions of a key not in the set are already set."""
+    if not 0.0 <= fill <= 1.0:
+        raise ValueError(f"fill must be within [0, 1], got {fill}")
+    return float(fill ** hashes)
+
+
+@dataclass
+class NodeCounters:
+    """Counters of one node since its filter epoch began (reset on a new epoch)."""
+
+    probes: int = 0
+    wasted_probes: int = 0
+    hits: int = 0
+    lookups_checked: int = 0     # lookups checked against its filter for keys it did not hold
+    false_positives: int = 0     # of those, how many its filter listed anyway
+    unreachable: int = 0
+    epoch: int | None = None
+
+    @property
+    def observed_fpr(self) -> float:
+        return self.false_positives / self.lookups_checked if self.lookups_checked else 0.0
+
+    def interval(self) -> tuple[float, float]:
+        return wilson_interval(self.false_positives, self.lookups_checked)
+
+
+@dataclass(frozen=True)
+class ProbeOutcome:
+    """One node's part in one read.
+
+    consulted: its filter was in the index and checked for this key.
+    listed_by_filter: the filter said "maybe" (not just a stale or hinted listing).
+    probed: a probe was sent; found: the probe found the key; reached: the probe got an answer.
+    """
+
+    node_id: str
+    consulted: bool
+    listed_by_filter: bool
+    probed: bool
+    found: bool = False
+    reached: bool = True
+
+
+@dataclass
+class FleetTotals:
+    lookups: int = 0
+    probes: int = 0
+    wasted_probes: int = 0
+    lookups_checked: int = 0
+    false_positives: int = 0
+
+
+@dataclass
+class Accounting:
+    """Thread-safe counters fed by the read path; read by metrics, admin and the monitor."""
+
+    nodes: dict[str, NodeCounters] = field(default_factory=dict)
+    totals: FleetTotals = field(default_factory=FleetTotals)
+    _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
+
+    def node(self, node_id: str) -> NodeCounters:
+        with self._lock:
+            return self._node(node_id)
+
+    def _node(self, node_id: str) -> NodeCounters:
+        c = self.nodes.get(node_id)
+        if c is None:
+            c = self.nodes[node_id] = NodeCounters()
+        return c
+
+    def record_read(self, outcomes: Iterable[ProbeOutcome]) -> None:
+        """Account one read from the per-node outcomes (every node the index knows, plus probed ones)."""
+        with self._lock:
+            self.totals.lookups += 1
+            for o in outcomes:
+                c = self._node(o.node_id)
+                if o.probed:
+                    c.probes += 1
+                    self.totals.probes += 1
+                    if not o.reached:
+                        c.unreachable += 1
+                    elif o.found:
+                        c.hits += 1
+                    else:
+                        c.wasted_probes += 1
+                        self.totals.wasted_probes += 1
+                # The key was not on this node when its probe missed, or when its filter did not
+                # list it (filters have no false negatives). Unprobed "maybe"s prove nothing.
+                if o.consulted and not o.found and o.reached and (o.probed or not o.listed_by_filter):
+                    c.lookups_checked += 1
+                    self.totals.lookups_checked += 1
+                    if o.listed_by_filter:
+                        c.false_positives += 1
+                        self.totals.false_positives += 1
+
+    def new_epoch(self, node_id: str, epoch: int) -> None:
+        """A node's filter was replaced: its observed FPR starts over (old counts describe the old filter)."""
+        with self._lock:
+            c = self._node(node_id)
+            if c.epoch is not None and c.epoch != epoch:
+                c.lookups_checked = 0
+                c.false_positives = 0
+            c.epoch = epoch
+
+    def forget(self, node_id: str) -> None:
+        with self._lock:
+            self.nodes.pop(node_id, None)
+
+    def snapshot(self) -> tuple[dict[str, NodeCounters], FleetTotals]:
+        """Copies of the counters (consistent with each other)."""
+        with self._lock:
+            return ({k: NodeCounters(**vars(v)) for k, v in self.nodes.items()}, FleetTotals(**vars(self.totals)))
+
+
+def avoided_fanout(lookups: int, probes: int, nodes: int) -> float:
+    """1 - probes / (lookups x nodes); 0 when nothing was looked up."""
+    if lookups <= 0 or nodes <= 0:
+        return 0.0
+    return 1.0 - probes / (lookups * nodes)

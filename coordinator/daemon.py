@@ -1,0 +1,199 @@
+"""Wiring of a coordinator process: fleet state, gRPC services + health, monitor timer, metrics, logs.
+
+A coordinator holds only soft state: replicas come from the nodes (each answers the restart's
+NeedSnapshot with a snapshot). The optional state dir remembers which nodes exist so, after a
+restart, they are listed as stale (safe mode) until they resync instead of being unknown.
+SIGTERM / SIGINT: health NOT_SERVING, sync streams end, the server drains, the process exits.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import signal
+import sys
+import threading
+import time
+from concurrent import futures
+from typing import Any
+
+import grpc
+from grpc_health.v1 import health, health_pb2, health_pb2_grpc
+
+from coordinator.admin_service import AdminService
+from coordinator.fleet import Fleet
+from coordinator.metrics import Metrics
+from coordinator.probes import Prober
+from coordinator.router_service import Router, RouterService
+from coordinator.saturation import Decision, RebuildPlan, SaturationMonitor
+from coordinator.settings import CoordinatorSettings
+from coordinator.sync_service import SyncService
+from shardsieve.v1 import admin_pb2_grpc, routing_pb2_grpc, sync_pb2_grpc
+
+log = logging.getLogger("shardsieve.coordinator")
+
+HEALTH_SERVICES = ("", "shardsieve.v1.Router", "shardsieve.v1.Admin", "shardsieve.v1.FilterSync")
+_STD_ATTRS = set(logging.LogRecord("", 0, "", 0, "", (), None).__dict__) | {"message", "asctime"}
+
+
+class JsonFormatter(logging.Formatter):
+    """One JSON object per line: ts, level, logger, coordinator, msg, plus every `extra` field."""
+
+    def __init__(self, coordinator_id: str) -> None:
+        super().__init__()
+        self.coordinator_id = coordinator_id
+
+    def format(self, record: logging.LogRecord) -> str:
+        out: dict[str, Any] = {
+            "ts": time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(record.created)) + f".{int(record.msecs):03d}Z",
+            "level": record.levelname.lower(), "logger": record.name, "coordinator": self.coordinator_id,
+            "msg": record.getMessage(),
+        }
+        for key, value in record.__dict__.items():
+            if key not in _STD_ATTRS and not key.startswith("_"):
+                out[key] = value if isinstance(value, (int, float, str, bool, type(None))) else str(value)
+        if record.exc_info:
+            out["exc"] = self.formatException(record.exc_info)
+        return json.dumps(out, separators=(",", ":"))
+
+
+class TextFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        extras = " ".join(f"{k}={v}" for k, v in record.__dict__.items() if k not in _STD_ATTRS and not k.startswith("_"))
+        base = f"{time.strftime('%H:%M:%S', time.gmtime(record.created))} {record.levelname:<7} {record.getMessage()}"
+        text = f"{base} {extras}".rstrip()
+        if record.exc_info:
+            text += "\n" + self.formatException(record.exc_info)
+        return text
+
+
+def setup_logging(settings: CoordinatorSettings) -> None:
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(JsonFormatter(settings.id) if settings.log_format == "json" else TextFormatter())
+    root = logging.getLogger()
+    root.handlers[:] = [handler]
+    root.setLevel(settings.log_level.upper())
+
+
+class CoordinatorDaemon:
+    """One running coordinator. start() returns once SERVING; stop() is idempotent."""
+
+    def __init__(self, settings: CoordinatorSettings) -> None:
+        self.settings = settings
+        self.fleet = Fleet(settings.policy(), state_dir=settings.state_dir, expected=settings.expected_nodes(),
+                           monitor=SaturationMonitor(rebuild_timeout_s=settings.rebuild_timeout_s),
+                           max_hints=settings.max_hints)
+        self.metrics = Metrics(self.fleet)
+        self.prober = Prober(settings.probe_threads)
+        self.router = Router(self.fleet, self.prober, read_deadline_s=settings.read_deadline_ms / 1000.0,
+                             write_deadline_s=settings.write_deadline_ms / 1000.0, metrics=self.metrics)
+        self.sync = SyncService(self.fleet, metrics=self.metrics)
+        self.admin = AdminService(self.fleet, settings.id, settings.admin_token(), self.start_rebuild)
+        self.server = grpc.server(futures.ThreadPoolExecutor(max_workers=settings.grpc_workers,
+                                                             thread_name_prefix="grpc"),
+                                  options=[("grpc.max_receive_message_length", 64 << 20),
+                                           ("grpc.max_send_message_length", 64 << 20)])
+        routing_pb2_grpc.add_RouterServicer_to_server(RouterService(self.router), self.server)
+        admin_pb2_grpc.add_AdminServicer_to_server(self.admin, self.server)
+        sync_pb2_grpc.add_FilterSyncServicer_to_server(self.sync, self.server)
+        self.health = health.HealthServicer()
+        health_pb2_grpc.add_HealthServicer_to_server(self.health, self.server)
+        self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
+        self.port = self.server.add_insecure_port(settings.listen)
+        if self.port == 0:
+            raise OSError(f"cannot listen on {settings.listen} (address in use or not local)")
+        host = settings.listen.rpartition(":")[0]
+        self.address = f"{host}:{self.port}"
+        self.metrics_server: Any = None
+        self._stop = threading.Event()
+        self._stopped = threading.Event()
+        self._monitor_thread = threading.Thread(target=self._monitor_loop, name="monitor", daemon=True)
+
+    def _set_health(self, status: int) -> None:
+        for name in HEALTH_SERVICES:
+            self.health.set(name, status)
+
+    # -- rebuilds ------------------------------------------------------------------------------------
+    def start_rebuild(self, plan: RebuildPlan, now: float) -> None:
+        """Ask the node to rebuild over its sync stream and mark the slot taken (admin + monitor)."""
+        rec = next((r for r in self.fleet.records() if r.node_id == plan.node_id), None)
+        try:
+            self.sync.send_rebuild(plan.node_id, plan.capacity, plan.target_fpr, plan.reason)
+        except (KeyError, ValueError) as exc:
+            self.fleet.monitor.forget(plan.node_id)
+            self.fleet.record_decisions([Decision(time.time(), plan.node_id, "skip", f"rebuild not sent: {exc}")])
+            return
+        if plan.node_id not in self.fleet.monitor.in_flight:
+            self.fleet.monitor.started(plan, rec.epoch if rec else 0, now)
+
+    def _monitor_loop(self) -> None:
+        interval = self.settings.monitor_interval_s
+        while not self._stop.wait(interval):
+            try:
+                self.sync.refresh()
+                views = self.fleet.views(time.monotonic())
+                result = self.fleet.monitor.tick(time.time(), views, self.fleet.policy)
+                self.fleet.record_decisions(result.decisions)
+                for plan in result.rebuilds:
+                    self.start_rebuild(plan, time.time())
+            except Exception:  # noqa: BLE001 - the monitor must keep running
+                log.exception("saturation monitor tick failed")
+
+    # -- lifecycle -----------------------------------------------------------------------------------
+    def start(self) -> None:
+        self.server.start()
+        if self.settings.metrics_port:
+            host = self.settings.listen.rpartition(":")[0]
+            self.metrics_server = self.metrics.serve(host, self.settings.metrics_port)
+            log.info("metrics endpoint", extra={"address": f"{host}:{self.settings.metrics_port}"})
+        self._monitor_thread.start()
+        self._set_health(health_pb2.HealthCheckResponse.SERVING)
+        log.info("serving", extra={"address": self.address, "mode": self.fleet.policy.mode,
+                                   "known_nodes": len(self.fleet.nodes),
+                                   "admin_token": "configured" if self.settings.admin_token() else "none"})
+
+    def stop(self, grace: float = 3.0) -> None:
+        if self._stopped.is_set():
+            return
+        self._stopped.set()
+        log.info("shutting down")
+        self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
+        self._stop.set()
+        self.sync.stop()
+        self.server.stop(grace).wait(grace + 1)
+        self.prober.close()
+        if self.metrics_server is not None:
+            try:
+                self.metrics_server.shutdown()
+            except Exception:  # noqa: BLE001 - best effort on the way out
+                pass
+        log.info("stopped")
+
+
+def run(settings: CoordinatorSettings) -> int:
+    """Run until SIGTERM/SIGINT; returns the process exit code."""
+    setup_logging(settings)
+    stop = threading.Event()
+
+    def on_signal(signum: int, _frame: object) -> None:
+        log.info("signal received", extra={"signal": signal.Signals(signum).name})
+        stop.set()
+
+    signal.signal(signal.SIGTERM, on_signal)
+    signal.signal(signal.SIGINT, on_signal)
+    try:
+        daemon = CoordinatorDaemon(settings)
+    except (OSError, RuntimeError, ValueError) as exc:
+        log.error("cannot start", extra={"error": str(exc)})
+        print(f"shardsieve coordinator: {exc}", file=sys.stderr)
+        return 1
+    try:
+        daemon.start()
+        while not stop.wait(0.5):
+            pass
+    except Exception:
+        log.exception("fatal error")
+        daemon.stop(grace=1.0)
+        return 1
+    daemon.stop()
+    return 0

@@ -1,0 +1,295 @@
+"""What a coordinator knows about its fleet: node records, filter replicas (the routing index),
+read-your-writes hints, accounting, policy and the monitor's decisions.
+
+This is the one shared state object; the gRPC servicers are thin adapters over it. It takes the
+current time as an argument (no clock inside) so the freshness rules are testable.
+
+Candidates of a key (the freshness contract, README "Freshness contract"):
+  (a) every node whose replica filter has all k bits of the key set;
+  (b) every node holding a read-your-writes hint for the key;
+  (c) in safe mode, every stale node (stream down, no replica yet, or no applied change or
+      heartbeat for stale-after seconds), marked stale; fast mode leaves them out.
+"""
+
+from __future__ import annotations
+
+import collections
+import json
+import logging
+import os
+import threading
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+
+from coordinator.accounting import Accounting, ProbeOutcome
+from coordinator.hints import HintTable
+from coordinator.policy import Policy
+from coordinator.routing_index import RoutingIndex
+from coordinator.saturation import Decision, NodeView, SaturationMonitor
+from shardsieve.changeset import ChangeSet
+from shardsieve.geometry import Geometry
+from shardsieve.hashing import positions as hash_positions
+
+log = logging.getLogger("shardsieve.coordinator.fleet")
+
+
+@dataclass
+class NodeRecord:
+    """Everything known about one node; mutated only under Fleet's lock."""
+
+    node_id: str
+    address: str = ""
+    connected: bool = False
+    stream_id: int | None = None
+    synced: bool = False                 # a verified replica is in the index
+    geometry: Geometry | None = None
+    epoch: int = 0
+    sequence: int = 0
+    set_bits: int = 0
+    key_count: int = 0
+    capacity: int = 0
+    target_fpr: float = 0.0
+    push_interval_ms: int = 0
+    last_progress: float = float("-inf")  # time of the last applied change, snapshot or heartbeat
+    delta_bytes: int = 0
+    deltas: int = 0
+    snapshots: int = 0
+    stats: dict[str, Any] = field(default_factory=dict)   # last heartbeat's NodeStats fields
+    awaiting: str | None = None          # reason of an outstanding NeedSnapshot (replica may lack changes)
+    rebuild_phase: str = ""
+    rebuild_progress: float = 0.0
+
+    @property
+    def fill(self) -> float:
+        return self.set_bits / self.geometry.bits if self.geometry else 0.0
+
+    @property
+    def predicted_fpr(self) -> float:
+        return float(self.fill ** self.geometry.hashes) if self.geometry else 0.0
+
+
+@dataclass(frozen=True)
+class Candidate:
+    node_id: str
+    address: str
+    stale: bool
+    hinted: bool
+    listed_by_filter: bool
+
+
+class Fleet:
+    """Node records + routing index + hints + accounting + policy + decisions; thread-safe."""
+
+    def __init__(self, policy: Policy, *, state_dir: Path | None = None,
+                 expected: dict[str, str] | None = None, monitor: SaturationMonitor | None = None,
+                 max_hints: int = 1_000_000, max_decisions: int = 1000) -> None:
+        self._lock = threading.RLock()
+        self.policy = policy
+        self.index = RoutingIndex()
+        self.hints = HintTable(max_hints)
+        self.accounting = Accounting()
+        self.monitor = monitor or SaturationMonitor()
+        self.decisions: collections.deque[Decision] = collections.deque(maxlen=max_decisions)
+        self.nodes: dict[str, NodeRecord] = {}
+        self.state_dir = state_dir
+        for node_id, address in (expected or {}).items():
+            self.nodes[node_id] = NodeRecord(node_id, address)
+        if state_dir is not None:
+            for node_id, address in self._load_membership().items():
+                self.nodes.setdefault(node_id, NodeRecord(node_id, address))
+
+    # -- membership file ------------------------------------------------------------------------
+    def _membership_path(self) -> Path | None:
+        return None if self.state_dir is None else self.state_dir / "nodes.json"
+
+    def _load_membership(self) -> dict[str, str]:
+        path = self._membership_path()
+        if path is None or not path.exists():
+            return {}
+        try:
+            data = json.loads(path.read_text())
+            return {str(k): str(v) for k, v in data.get("nodes", {}).items()}
+        except (OSError, ValueError, AttributeError) as exc:
+            log.warning("membership file unreadable; starting without it",
+                        extra={"path": str(path), "error": str(exc)})
+            return {}
+
+    def _save_membership(self) -> None:
+        path = self._membership_path()
+        if path is None:
+            return
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = path.with_suffix(".tmp")
+        tmp.write_text(json.dumps({"nodes": {n: r.address for n, r in sorted(self.nodes.items())}}, indent=1))
+        os.replace(tmp, path)
+
+    # -- replica sink (the coordinator-side sync object applies into these) -------------------------
+    def install(self, node_id: str, bloom: Any) -> None:
+        """Swap in a whole verified filter (a shardsieve.bloom.BloomFilter) for node_id."""
+        column = bloom.to_bytes()
+        self.index.install(node_id, bloom.geometry, column)
+        set_bits = int(np.unpackbits(np.frombuffer(column, dtype=np.uint8)).sum())
+        with self._lock:
+            rec = self.nodes.setdefault(node_id, NodeRecord(node_id))
+            rec.geometry, rec.set_bits = bloom.geometry, set_bits
+
+    def apply(self, node_id: str, changes: ChangeSet) -> None:
+        """Apply one verified change set to node_id's replica in place (FilterDivergedError: nothing changed)."""
+        self.index.apply(node_id, changes.set_positions, changes.cleared_positions)
+        with self._lock:
+            rec = self.nodes.setdefault(node_id, NodeRecord(node_id))
+            rec.set_bits += int(changes.set_positions.size) - int(changes.cleared_positions.size)
+
+    def remove(self, node_id: str) -> None:
+        """Drop node_id's replica (it stays known, and stale, until it resyncs)."""
+        self.index.remove(node_id)
+        with self._lock:
+            rec = self.nodes.get(node_id)
+            if rec is not None:
+                rec.synced = False
+
+    # -- protocol state (copied from the coordinator-side sync object after each message) ------------
+    def observe(self, view: Any) -> None:
+        """Refresh a node record from a shardsieve.sync.coordinator_side.NodeView; drop covered hints."""
+        with self._lock:
+            rec = self.nodes.get(view.node_id)
+            if rec is None:
+                rec = self.nodes[view.node_id] = NodeRecord(view.node_id)
+            moved = bool(view.storage_address) and rec.address != view.storage_address
+            if view.storage_address:
+                rec.address = view.storage_address
+            rec.connected = view.connected
+            rec.synced = view.has_replica
+            rec.awaiting = view.awaiting_snapshot
+            if view.epoch != rec.epoch and view.has_replica:
+                self.accounting.new_epoch(view.node_id, view.epoch)
+            rec.epoch, rec.sequence = view.epoch, view.sequence
+            if view.geometry is not None:
+                rec.geometry = view.geometry
+            rec.key_count, rec.capacity = view.key_count, view.capacity
+            rec.target_fpr, rec.push_interval_ms = view.target_fpr, view.push_interval_ms
+            if view.last_heard_at is not None:
+                rec.last_progress = view.last_heard_at
+            if view.stats is not None:
+                st = view.stats
+                rec.stats = {"reads": st.reads, "reads_missed": st.reads_missed, "writes": st.writes,
+                             "deletes": st.deletes, "key_count": st.key_count, "capacity": st.capacity,
+                             "rebuild_phase": st.rebuild_phase, "rebuild_progress": st.rebuild_progress,
+                             "rebuild_epoch": st.rebuild_epoch, "epoch": st.epoch, "sequence": st.sequence}
+            rec.rebuild_phase = view.rebuild.phase
+            rec.rebuild_progress = view.rebuild.progress
+            rec.delta_bytes = view.counters.delta_bytes
+            rec.deltas = view.counters.deltas_applied
+            rec.snapshots = view.counters.snapshots_installed
+            if moved:
+                self._save_membership()
+        if view.has_replica:
+            self.hints.applied(view.node_id, view.epoch, view.sequence)
+
+    # -- freshness ---------------------------------------------------------------------------------
+    def is_stale(self, rec: NodeRecord, now: float, policy: Policy | None = None) -> bool:
+        policy = policy or self.policy
+        return (not rec.connected or not rec.synced or rec.awaiting is not None
+                or now - rec.last_progress > policy.stale_after_s)
+
+    def state_of(self, rec: NodeRecord, now: float) -> str:
+        if not rec.connected:
+            return "disconnected"
+        if not rec.synced:
+            return "syncing"
+        if rec.awaiting is not None:
+            return "syncing"
+        if rec.node_id in self.monitor.in_flight or rec.rebuild_phase in ("requested", "scanning", "streaming",
+                                                                           "awaiting-verify"):
+            return "rebuilding"
+        if now - rec.last_progress > self.policy.stale_after_s:
+            return "stale"
+        return "in-sync"
+
+    # -- lookups -----------------------------------------------------------------------------------
+    def candidates(self, keys: Sequence[bytes], now: float, mode: str | None = None) -> list[list[Candidate]]:
+        """Candidates per key under the freshness contract (see module docstring)."""
+        found = self.index.locate(keys, hash_positions)
+        hinted = self.hints.lookup_many(keys)
+        with self._lock:
+            policy = self.policy
+            mode = mode or policy.mode
+            recs = self.nodes
+            stale_ids = {n for n, r in recs.items() if self.is_stale(r, now, policy)}
+            addresses = {n: r.address for n, r in recs.items()}
+        stale_list = sorted(stale_ids) if mode == "safe" else []
+        out: list[list[Candidate]] = []
+        offsets = found.offsets.tolist()
+        names = found.nodes
+        for i in range(len(keys)):
+            listed = names[offsets[i]:offsets[i + 1]]
+            row = [Candidate(n, addresses.get(n, ""), n in stale_ids, False, True) for n in listed]
+            if hinted is not None and hinted[i]:
+                seen = set(listed)
+                for n in hinted[i]:
+                    if n not in seen:
+                        row.append(Candidate(n, addresses.get(n, ""), n in stale_ids, True, False))
+                        seen.add(n)
+            if stale_list:
+                seen = {c.node_id for c in row}
+                row.extend(Candidate(n, addresses.get(n, ""), True, False, False) for n in stale_list if n not in seen)
+            out.append(row)
+        return out
+
+    def indexed_nodes(self) -> list[str]:
+        return self.index.nodes()
+
+    def address_of(self, node_id: str) -> str | None:
+        with self._lock:
+            rec = self.nodes.get(node_id)
+            return rec.address if rec else None
+
+    def applied(self, node_id: str) -> tuple[int, int] | None:
+        with self._lock:
+            rec = self.nodes.get(node_id)
+            return (rec.epoch, rec.sequence) if rec is not None and rec.synced else None
+
+    def placement(self, now: float, exclude: set[str] = frozenset()) -> str | None:  # type: ignore[assignment]
+        """The connected, fresh node with the most free capacity (capacity - keys)."""
+        with self._lock:
+            live = [r for r in self.nodes.values() if r.node_id not in exclude and not self.is_stale(r, now)]
+            if not live:
+                live = [r for r in self.nodes.values() if r.node_id not in exclude and r.connected]
+            if not live:
+                return None
+            return max(live, key=lambda r: (r.capacity - r.key_count, r.node_id)).node_id
+
+    # -- accounting --------------------------------------------------------------------------------
+    def record_read(self, outcomes: list[ProbeOutcome]) -> None:
+        self.accounting.record_read(outcomes)
+
+    # -- policy and monitor --------------------------------------------------------------------------
+    def set_policy(self, policy: Policy) -> None:
+        with self._lock:
+            self.policy = policy
+
+    def views(self, now: float) -> list[NodeView]:
+        counters, _ = self.accounting.snapshot()
+        with self._lock:
+            out = []
+            for rec in self.nodes.values():
+                if not rec.synced or rec.geometry is None:
+                    continue
+                c = counters.get(rec.node_id)
+                out.append(NodeView(rec.node_id, rec.epoch, rec.key_count, max(1, rec.capacity), rec.fill,
+                                    rec.geometry.hashes, rec.geometry.bits,
+                                    c.lookups_checked if c else 0, c.false_positives if c else 0,
+                                    in_sync=not self.is_stale(rec, now)))
+            return out
+
+    def record_decisions(self, decisions: list[Decision]) -> None:
+        for d in decisions:
+            self.decisions.append(d)
+            log.info("monitor decision", extra={"node_id": d.node_id, "action": d.action, "detail": d.detail})
+
+    def records(self) -> list[NodeRecord]:
+        with self._lock:
+            return [NodeRecord(**{k: getattr(r, k) for k in r.__dataclass_fields__}) for r in self.nodes.values()]

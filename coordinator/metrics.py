@@ -1,0 +1,110 @@
+"""Prometheus text metrics of a coordinator, served on a separate port from a private registry.
+
+Event counters (lookups, candidates per lookup, probes, delta bytes, rebuilds) are bumped on
+the request path; per-node gauges (fill, predicted/observed FPR, lag, keys) are read from the
+fleet state at scrape time by a collector, so they are always consistent with FleetStatus.
+"""
+
+from __future__ import annotations
+
+import time
+from typing import Any, Callable, Iterable, Sequence
+
+from prometheus_client import CollectorRegistry, Counter, Histogram, start_http_server
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
+from prometheus_client.registry import Collector
+
+CANDIDATE_BUCKETS = (0, 1, 2, 3, 4, 6, 8, 16, 32, 64, 128, 256)
+
+
+class FleetCollector(Collector):
+    def __init__(self, fleet: Any, clock: Callable[[], float] = time.monotonic) -> None:
+        self.fleet = fleet
+        self.clock = clock
+
+    def collect(self) -> Iterable[Any]:
+        now = self.clock()
+        fleet = self.fleet
+        counters, _ = fleet.accounting.snapshot()
+        labels = ["node"]
+        fams = {
+            "fill": GaugeMetricFamily("shardsieve_coordinator_node_fill", "Fraction of set bits of the replica", labels=labels),
+            "pfpr": GaugeMetricFamily("shardsieve_coordinator_node_predicted_fpr", "fill^k of the replica", labels=labels),
+            "ofpr": GaugeMetricFamily("shardsieve_coordinator_node_observed_fpr",
+                                      "False positives over lookups checked against the node's filter", labels=labels),
+            "lag": GaugeMetricFamily("shardsieve_coordinator_node_lag_seconds",
+                                     "Time since the last applied change or heartbeat", labels=labels),
+            "stale": GaugeMetricFamily("shardsieve_coordinator_node_stale", "1 when the node is stale", labels=labels),
+            "keys": GaugeMetricFamily("shardsieve_coordinator_node_keys", "Keys the node reported", labels=labels),
+            "cap": GaugeMetricFamily("shardsieve_coordinator_node_capacity", "Keys the node's filter is sized for",
+                                     labels=labels),
+            "epoch": GaugeMetricFamily("shardsieve_coordinator_node_epoch", "Replica epoch", labels=labels),
+            "wasted": CounterMetricFamily("shardsieve_coordinator_node_wasted_probes",
+                                          "Probes to the node that found nothing", labels=labels),
+            "probes": CounterMetricFamily("shardsieve_coordinator_node_probes", "Probes sent to the node", labels=labels),
+            "dbytes": CounterMetricFamily("shardsieve_coordinator_node_delta_bytes", "Delta payload bytes applied",
+                                          labels=labels),
+        }
+        for rec in fleet.records():
+            n = [rec.node_id]
+            c = counters.get(rec.node_id)
+            fams["fill"].add_metric(n, rec.fill)
+            fams["pfpr"].add_metric(n, rec.predicted_fpr)
+            fams["ofpr"].add_metric(n, c.observed_fpr if c else 0.0)
+            fams["lag"].add_metric(n, max(0.0, now - rec.last_progress) if rec.last_progress > float("-inf") else -1.0)
+            fams["stale"].add_metric(n, 1.0 if fleet.is_stale(rec, now) else 0.0)
+            fams["keys"].add_metric(n, rec.key_count)
+            fams["cap"].add_metric(n, rec.capacity)
+            fams["epoch"].add_metric(n, rec.epoch)
+            fams["wasted"].add_metric(n, c.wasted_probes if c else 0)
+            fams["probes"].add_metric(n, c.probes if c else 0)
+            fams["dbytes"].add_metric(n, rec.delta_bytes)
+        yield from fams.values()
+        g = GaugeMetricFamily("shardsieve_coordinator_rebuilds_in_progress", "Rebuilds requested and not yet verified")
+        g.add_metric([], len(fleet.monitor.in_flight))
+        yield g
+        h = GaugeMetricFamily("shardsieve_coordinator_index_bytes", "Memory of the bit-sliced routing index")
+        h.add_metric([], fleet.index.memory_bytes())
+        yield h
+
+
+class Metrics:
+    """Request-path instruments in a private registry (several coordinators per process stay apart)."""
+
+    def __init__(self, fleet: Any) -> None:
+        self.registry = CollectorRegistry(auto_describe=True)
+        self.lookups = Counter("shardsieve_coordinator_lookups", "Keys looked up, by kind (locate, read, write, remove)",
+                               ["kind"], registry=self.registry)
+        self.candidates = Histogram("shardsieve_coordinator_candidates_per_lookup", "Candidates listed per key",
+                                    buckets=CANDIDATE_BUCKETS, registry=self.registry)
+        self.probes = Counter("shardsieve_coordinator_probes", "Probes sent, by outcome (hit, wasted, unreachable)",
+                              ["outcome"], registry=self.registry)
+        self.delta_bytes = Counter("shardsieve_coordinator_delta_bytes", "Delta payload bytes received",
+                                   registry=self.registry)
+        self.snapshots = Counter("shardsieve_coordinator_snapshots", "Snapshots installed", registry=self.registry)
+        self.rebuilds = Counter("shardsieve_coordinator_rebuilds", "Rebuild requests sent, by action (rebuild, shrink)",
+                                ["action"], registry=self.registry)
+        self.registry.register(FleetCollector(fleet))
+
+    def observe_locate(self, kind: str, counts: Sequence[int]) -> None:
+        self.lookups.labels(kind).inc(len(counts))
+        if len(counts) <= 64:
+            for c in counts:
+                self.candidates.observe(c)
+        else:  # large batches: a sample keeps LocateBatch cheap
+            step = len(counts) // 64
+            for c in counts[::step]:
+                self.candidates.observe(c)
+
+    def observe_probes(self, results: Sequence[Any]) -> None:
+        for r in results:
+            if not r.reached:
+                self.probes.labels("unreachable").inc()
+            elif r.reply.found:
+                self.probes.labels("hit").inc()
+            else:
+                self.probes.labels("wasted").inc()
+
+    def serve(self, host: str, port: int) -> Any:
+        server, _thread = start_http_server(port, addr=host, registry=self.registry)
+        return server

@@ -1,0 +1,119 @@
+"""Concurrent probes to node storage: cached channels, a thread pool, deadlines.
+
+A probe is one NodeStorage call to one candidate. `ask_all` sends the same call to every
+candidate at once and yields results as they arrive, so a read can stop at the first hit.
+"""
+
+from __future__ import annotations
+
+import threading
+from concurrent import futures
+from dataclasses import dataclass
+from typing import Any, Callable, Iterator, Sequence
+
+import grpc
+
+from shardsieve.v1 import storage_pb2_grpc
+
+UNREACHABLE_CODES = (grpc.StatusCode.UNAVAILABLE, grpc.StatusCode.DEADLINE_EXCEEDED,
+                     grpc.StatusCode.CANCELLED, grpc.StatusCode.UNKNOWN, grpc.StatusCode.INTERNAL,
+                     grpc.StatusCode.RESOURCE_EXHAUSTED)
+
+
+@dataclass
+class ProbeResult:
+    node_id: str
+    reply: Any = None
+    error: grpc.RpcError | None = None
+
+    @property
+    def reached(self) -> bool:
+        return self.error is None
+
+    @property
+    def code(self) -> grpc.StatusCode | None:
+        return self.error.code() if self.error is not None else None
+
+    def describe_error(self) -> str:
+        if self.error is None:
+            return ""
+        return f"{self.node_id}: {self.error.code().name} {self.error.details() or ''}".strip()
+
+
+class Prober:
+    def __init__(self, threads: int = 32) -> None:
+        self._pool = futures.ThreadPoolExecutor(max_workers=threads, thread_name_prefix="probe")
+        self._lock = threading.Lock()
+        self._stubs: dict[str, tuple[grpc.Channel, storage_pb2_grpc.NodeStorageStub]] = {}
+
+    def stub(self, address: str) -> storage_pb2_grpc.NodeStorageStub:
+        with self._lock:
+            entry = self._stubs.get(address)
+            if entry is None:
+                # Short reconnect backoff: gRPC's default grows to minutes, so a node restarted after a
+                # failed probe would be reported unreachable long after it serves again.
+                channel = grpc.insecure_channel(address, options=[
+                    ("grpc.enable_retries", 0),
+                    ("grpc.initial_reconnect_backoff_ms", 100),
+                    ("grpc.min_reconnect_backoff_ms", 100),
+                    ("grpc.max_reconnect_backoff_ms", 1000),
+                ])
+                entry = self._stubs[address] = (channel, storage_pb2_grpc.NodeStorageStub(channel))
+            return entry[1]
+
+    def call(self, node_id: str, address: str, method: str, request: Any, timeout: float) -> ProbeResult:
+        if not address:
+            return ProbeResult(node_id, error=_NoAddress(node_id))
+        try:
+            reply = getattr(self.stub(address), method)(request, timeout=timeout)
+            return ProbeResult(node_id, reply=reply)
+        except grpc.RpcError as exc:
+            return ProbeResult(node_id, error=exc)
+
+    def ask_all(self, targets: Sequence[tuple[str, str]], method: str, request: Any, timeout: float,
+                on_all_done: Callable[[list[ProbeResult]], None] | None = None) -> Iterator[ProbeResult]:
+        """Send request to every (node_id, address) at once; yield results as they complete.
+
+        on_all_done runs once every call finished, even if the caller stops iterating early
+        (so counters can account probes that completed after the first hit).
+        """
+        if not targets:
+            if on_all_done is not None:
+                on_all_done([])
+            return iter(())
+        pending = [self._pool.submit(self.call, nid, addr, method, request, timeout) for nid, addr in targets]
+        if on_all_done is not None:
+            remaining = [len(pending)]
+            lock = threading.Lock()
+
+            def done(_f: futures.Future[ProbeResult]) -> None:
+                with lock:
+                    remaining[0] -= 1
+                    last = remaining[0] == 0
+                if last:
+                    on_all_done([f.result() for f in pending])
+
+            for f in pending:
+                f.add_done_callback(done)
+        return (f.result() for f in futures.as_completed(pending))
+
+    def close(self) -> None:
+        self._pool.shutdown(wait=False, cancel_futures=True)
+        with self._lock:
+            for channel, _ in self._stubs.values():
+                channel.close()
+            self._stubs.clear()
+
+
+class _NoAddress(grpc.RpcError):
+    """A node known by id whose storage address was never learned."""
+
+    def __init__(self, node_id: str) -> None:
+        super().__init__(f"node {node_id} has no known storage address")
+        self.node_id = node_id
+
+    def code(self) -> grpc.StatusCode:
+        return grpc.StatusCode.UNAVAILABLE
+
+    def details(self) -> str:
+        return f"no storage address known for node {self.node_id}"

@@ -1,0 +1,208 @@
+"""Router servicer: Locate / LocateBatch / Read / Write / Remove over the fleet state.
+
+Reads probe every candidate at once and return at the first hit; a read that found nothing
+while some candidate could not be asked fails with UNAVAILABLE naming it (absence is not
+proven). A write without a node id first asks the candidates whether the key exists (so an
+overwrite lands where the key lives), else goes to placement; the node's ack becomes a
+read-your-writes hint.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from typing import Callable
+
+import grpc
+
+from coordinator.accounting import ProbeOutcome
+from coordinator.fleet import Candidate, Fleet
+from coordinator.probes import ProbeResult, Prober
+from shardsieve.v1 import routing_pb2, routing_pb2_grpc, storage_pb2
+
+log = logging.getLogger("shardsieve.coordinator.router")
+
+MAX_BATCH_KEYS = 100_000
+MAX_KEY_BYTES = 64 * 1024
+
+
+class RouterError(Exception):
+    def __init__(self, code: grpc.StatusCode, message: str) -> None:
+        super().__init__(message)
+        self.code = code
+        self.message = message
+
+
+def _check_key(key: bytes, what: str = "key") -> None:
+    if not key:
+        raise RouterError(grpc.StatusCode.INVALID_ARGUMENT, f"{what} must not be empty")
+    if len(key) > MAX_KEY_BYTES:
+        raise RouterError(grpc.StatusCode.INVALID_ARGUMENT,
+                          f"{what} has {len(key)} bytes; the largest accepted is {MAX_KEY_BYTES}")
+
+
+class Router:
+    """The routing logic behind the gRPC servicer (usable in-process by tests and benchmarks)."""
+
+    def __init__(self, fleet: Fleet, prober: Prober, *, read_deadline_s: float = 2.0, write_deadline_s: float = 5.0,
+                 clock: Callable[[], float] = time.monotonic, metrics: object | None = None) -> None:
+        self.fleet = fleet
+        self.prober = prober
+        self.read_deadline_s = read_deadline_s
+        self.write_deadline_s = write_deadline_s
+        self.clock = clock
+        self.metrics = metrics
+
+    # -- locate ------------------------------------------------------------------------------------
+    def locate(self, keys: list[bytes], kind: str = "locate") -> list[list[Candidate]]:
+        if len(keys) > MAX_BATCH_KEYS:
+            raise RouterError(grpc.StatusCode.INVALID_ARGUMENT,
+                              f"batch of {len(keys)} keys exceeds the limit of {MAX_BATCH_KEYS}; split it")
+        for i, key in enumerate(keys):
+            _check_key(key, f"key #{i}")
+        result = self.fleet.candidates(keys, self.clock())
+        if self.metrics is not None:
+            self.metrics.observe_locate(kind, [len(c) for c in result])  # type: ignore[attr-defined]
+        return result
+
+    # -- probing with accounting ----------------------------------------------------------------------
+    def _probe_get(self, key: bytes, cands: list[Candidate], deadline_s: float) -> tuple[ProbeResult | None, list[ProbeResult]]:
+        """Ask every candidate for key; return (first hit or None, results known so far)."""
+        indexed = set(self.fleet.indexed_nodes())
+        listed = {c.node_id: c for c in cands}
+
+        def account(results: list[ProbeResult]) -> None:
+            outcomes = []
+            by_node = {r.node_id: r for r in results}
+            for node_id, cand in listed.items():
+                r = by_node.get(node_id)
+                found = bool(r is not None and r.reached and r.reply.found)
+                outcomes.append(ProbeOutcome(node_id, consulted=node_id in indexed,
+                                             listed_by_filter=cand.listed_by_filter, probed=True, found=found,
+                                             reached=r is not None and r.reached))
+            for node_id in indexed - listed.keys():
+                outcomes.append(ProbeOutcome(node_id, consulted=True, listed_by_filter=False, probed=False))
+            self.fleet.record_read(outcomes)
+            if self.metrics is not None:
+                self.metrics.observe_probes(results)  # type: ignore[attr-defined]
+
+        targets = [(c.node_id, c.address) for c in cands]
+        seen: list[ProbeResult] = []
+        for result in self.prober.ask_all(targets, "Get", storage_pb2.GetRequest(key=key), deadline_s, account):
+            seen.append(result)
+            if result.reached and result.reply.found:
+                return result, seen
+        return None, seen
+
+    # -- read / write / remove ------------------------------------------------------------------------
+    def read(self, key: bytes, deadline_ms: int = 0) -> routing_pb2.ReadReply:
+        _check_key(key)
+        cands = self.locate([key], kind="read")[0]
+        deadline_s = deadline_ms / 1000.0 if deadline_ms else self.read_deadline_s
+        hit, seen = self._probe_get(key, cands, deadline_s)
+        wasted = sum(1 for r in seen if r.reached and not r.reply.found)
+        if hit is not None:
+            return routing_pb2.ReadReply(found=True, value=hit.reply.value, node_id=hit.node_id, probes=len(cands),
+                                         wasted_probes=wasted, candidates=len(cands))
+        failed = [r for r in seen if not r.reached]
+        if failed:
+            raise self._unreachable("read", key, failed)
+        return routing_pb2.ReadReply(found=False, probes=len(cands), wasted_probes=wasted, candidates=len(cands))
+
+    def write(self, key: bytes, value: bytes, node_id: str = "") -> routing_pb2.WriteReply:
+        _check_key(key)
+        if node_id:
+            address = self.fleet.address_of(node_id)
+            if address is None:
+                known = ", ".join(sorted(r.node_id for r in self.fleet.records())) or "none"
+                raise RouterError(grpc.StatusCode.INVALID_ARGUMENT, f"unknown node id {node_id!r} (known: {known})")
+            target = node_id
+        else:
+            cands = self.locate([key], kind="write")[0]
+            hit, seen = self._probe_get(key, cands, self.read_deadline_s)
+            if hit is not None:
+                target = hit.node_id
+            else:
+                failed = [r for r in seen if not r.reached]
+                if failed:
+                    raise self._unreachable("write (the key may exist there)", key, failed)
+                picked = self.fleet.placement(self.clock())
+                if picked is None:
+                    raise RouterError(grpc.StatusCode.UNAVAILABLE, "no node is connected; nowhere to place the write")
+                target = picked
+            address = self.fleet.address_of(target) or ""
+        result = self.prober.call(target, address, "Put", storage_pb2.PutRequest(key=key, value=value),
+                                  self.write_deadline_s)
+        if not result.reached:
+            raise self._node_error("write", target, result)
+        ack = result.reply
+        self.fleet.hints.add(key, target, ack.epoch, ack.sequence, applied=self.fleet.applied(target))
+        return routing_pb2.WriteReply(node_id=target, created=ack.created, epoch=ack.epoch, sequence=ack.sequence)
+
+    def remove(self, key: bytes) -> routing_pb2.RemoveReply:
+        _check_key(key)
+        cands = self.locate([key], kind="remove")[0]
+        targets = [(c.node_id, c.address) for c in cands]
+        removed, failed = [], []
+        for r in self.prober.ask_all(targets, "Delete", storage_pb2.DeleteRequest(key=key), self.write_deadline_s):
+            if not r.reached:
+                failed.append(r)
+            elif r.reply.created:
+                removed.append(r.node_id)
+        if failed:
+            raise self._unreachable("remove", key, failed, done=removed)
+        return routing_pb2.RemoveReply(node_ids=sorted(removed))
+
+    # -- errors ------------------------------------------------------------------------------------
+    def _unreachable(self, op: str, key: bytes, failed: list[ProbeResult], done: list[str] | None = None) -> RouterError:
+        invalid = [r for r in failed if r.code == grpc.StatusCode.INVALID_ARGUMENT]
+        if invalid:
+            return RouterError(grpc.StatusCode.INVALID_ARGUMENT, invalid[0].error.details())  # type: ignore[union-attr]
+        names = "; ".join(r.describe_error() for r in failed)
+        extra = f"; deleted on {', '.join(done)}" if done else ""
+        return RouterError(grpc.StatusCode.UNAVAILABLE,
+                           f"{op} of key {key[:64]!r} incomplete: candidate node(s) could not be asked ({names}){extra}; "
+                           "retry once they are reachable")
+
+    def _node_error(self, op: str, node_id: str, result: ProbeResult) -> RouterError:
+        code = result.code or grpc.StatusCode.UNAVAILABLE
+        if code == grpc.StatusCode.INVALID_ARGUMENT:
+            return RouterError(code, f"node {node_id} refused the {op}: {result.error.details()}")  # type: ignore[union-attr]
+        return RouterError(grpc.StatusCode.UNAVAILABLE, f"{op} to node {result.describe_error()}; not acknowledged")
+
+
+def _candidates_proto(cands: list[Candidate]) -> routing_pb2.LocateReply:
+    return routing_pb2.LocateReply(candidates=[
+        routing_pb2.Candidate(node_id=c.node_id, address=c.address, stale=c.stale, hinted=c.hinted) for c in cands])
+
+
+class RouterService(routing_pb2_grpc.RouterServicer):
+    def __init__(self, router: Router) -> None:
+        self.router = router
+
+    def _run(self, context: grpc.ServicerContext, fn: Callable[[], object]) -> object:
+        try:
+            return fn()
+        except RouterError as exc:
+            context.abort(exc.code, exc.message)
+        except OverflowError as exc:
+            context.abort(grpc.StatusCode.RESOURCE_EXHAUSTED, str(exc))
+        raise AssertionError("unreachable")
+
+    def Locate(self, request: routing_pb2.LocateRequest, context: grpc.ServicerContext) -> routing_pb2.LocateReply:
+        return self._run(context, lambda: _candidates_proto(self.router.locate([request.key])[0]))  # type: ignore[return-value]
+
+    def LocateBatch(self, request: routing_pb2.LocateBatchRequest, context: grpc.ServicerContext) -> routing_pb2.LocateBatchReply:
+        def run() -> routing_pb2.LocateBatchReply:
+            results = self.router.locate(list(request.keys))
+            return routing_pb2.LocateBatchReply(results=[_candidates_proto(c) for c in results])
+        return self._run(context, run)  # type: ignore[return-value]
+
+    def Read(self, request: routing_pb2.ReadRequest, context: grpc.ServicerContext) -> routing_pb2.ReadReply:
+        return self._run(context, lambda: self.router.read(request.key, request.deadline_ms))  # type: ignore[return-value]
+
+    def Write(self, request: routing_pb2.WriteRequest, context: grpc.ServicerContext) -> routing_pb2.WriteReply:
+        return self._run(context, lambda: self.router.write(request.key, request.value, request.node_id))  # type: ignore[return-value]
+
+    def Remove(self, request: routing_pb2.RemoveRequest, context: grpc.ServicerContext) -> routing_pb2.RemoveReply:
+        return self._run(context, lambda: self.router.remove(request.key))  # type: ignore[return-value]

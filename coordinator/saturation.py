@@ -1,0 +1,225 @@
+"""Saturation monitor: decide which node filters to rebuild (grow or shrink), and when.
+
+A plain object driven by ticks: `tick(now, nodes, policy)` takes a view of every node and
+returns the decisions taken (with the numbers behind them) and the rebuilds to request. The
+daemon sends the requests over the nodes' sync streams and keeps the decisions for the admin API.
+
+A node is saturated when (a) its predicted FPR fill^k is above ratio x target, (b) the lower
+end of the Wilson 95% interval of its observed FPR is above ratio x target, or (c) it holds
+more keys than its filter was sized for. A saturated node is rebuilt at growth x keys; a node
+holding fewer than shrink_below x capacity keys is rebuilt smaller when that gives a smaller
+ladder step. At most max_concurrent_rebuilds run at once, fleet-wide.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+from coordinator.accounting import wilson_interval
+from coordinator.policy import Policy
+from shardsieve.geometry import Geometry, GeometryError, geometry_for
+
+
+@dataclass(frozen=True)
+class NodeView:
+    """What the monitor needs to know about one node at one tick."""
+
+    node_id: str
+    epoch: int
+    key_count: int
+    capacity: int
+    fill: float
+    hashes: int
+    bits: int
+    lookups_checked: int = 0
+    false_positives: int = 0
+    in_sync: bool = True          # stream up and replica current: only such nodes are rebuilt
+
+    @property
+    def predicted_fpr(self) -> float:
+        return float(self.fill ** self.hashes)
+
+
+@dataclass(frozen=True)
+class Decision:
+    at: float
+    node_id: str
+    action: str                   # "flag", "rebuild", "shrink", "skip", "done"
+    detail: str
+
+
+@dataclass(frozen=True)
+class RebuildPlan:
+    node_id: str
+    capacity: int
+    target_fpr: float
+    geometry: Geometry | None
+    reason: str
+    queued: bool = False
+
+
+@dataclass
+class _InFlight:
+    started_at: float
+    epoch_before: int
+    capacity: int
+    reason: str
+
+
+@dataclass
+class TickResult:
+    decisions: list[Decision] = field(default_factory=list)
+    rebuilds: list[RebuildPlan] = field(default_factory=list)
+
+
+def saturation_reasons(node: NodeView, policy: Policy) -> list[str]:
+    """Why a node is saturated, each reason with its numbers; empty when it is not."""
+    limit = policy.saturation_ratio * policy.target_fpr
+    reasons = []
+    if node.predicted_fpr > limit:
+        reasons.append(f"predicted FPR {node.predicted_fpr:.4g} (fill {node.fill:.4f}^k={node.hashes}) "
+                       f"> {policy.saturation_ratio:g} x target {policy.target_fpr:g} = {limit:.4g}")
+    low, high = wilson_interval(node.false_positives, node.lookups_checked)
+    if node.lookups_checked and low > limit:
+        reasons.append(f"observed FPR {node.false_positives}/{node.lookups_checked} has Wilson 95% lower bound "
+                       f"{low:.4g} > {limit:.4g}")
+    if node.key_count > node.capacity:
+        reasons.append(f"keys {node.key_count} > capacity {node.capacity}")
+    return reasons
+
+
+def grow_capacity(key_count: int, policy: Policy) -> int:
+    return max(policy.min_capacity, math.ceil(policy.growth * key_count))
+
+
+def _geometry(capacity: int, target: float) -> Geometry | None:
+    try:
+        return geometry_for(capacity, target)
+    except (GeometryError, ValueError):
+        return None
+
+
+class SaturationMonitor:
+    """Flags saturated nodes and schedules rebuilds under a fleet-wide concurrency limit."""
+
+    def __init__(self, rebuild_timeout_s: float = 120.0, cooldown_s: float = 5.0) -> None:
+        self.rebuild_timeout_s = rebuild_timeout_s
+        self.cooldown_s = cooldown_s
+        self.in_flight: dict[str, _InFlight] = {}
+        self.flagged: dict[str, list[str]] = {}
+        self._last_done: dict[str, float] = {}
+        self._last_note: dict[str, str] = {}
+
+    # -- pure assessments ---------------------------------------------------------------------
+    def shrink_plan(self, node: NodeView, policy: Policy) -> RebuildPlan | None:
+        if node.capacity <= policy.min_capacity or node.key_count >= policy.shrink_below * node.capacity:
+            return None
+        capacity = grow_capacity(node.key_count, policy)
+        geometry = _geometry(capacity, policy.target_fpr)
+        if geometry is None or geometry.bits >= node.bits:
+            return None
+        return RebuildPlan(node.node_id, capacity, policy.target_fpr, geometry,
+                           f"shrink: keys {node.key_count} < {policy.shrink_below:g} x capacity {node.capacity}; "
+                           f"{node.bits} -> {geometry.bits} bits")
+
+    def grow_plan(self, node: NodeView, policy: Policy, reasons: list[str]) -> RebuildPlan:
+        capacity = grow_capacity(node.key_count, policy)
+        return RebuildPlan(node.node_id, capacity, policy.target_fpr, _geometry(capacity, policy.target_fpr),
+                           "; ".join(reasons) + f"; rebuild at {policy.growth:g} x {node.key_count} keys = {capacity}")
+
+    def plan(self, nodes: list[NodeView], policy: Policy, *, node_ids: list[str] | None = None,
+             flagged: bool = False, capacity: int = 0, target_fpr: float = 0.0) -> list[RebuildPlan]:
+        """Rebuilds an operator asked for (named nodes, or every flagged one), marked queued past the limit."""
+        by_id = {n.node_id: n for n in nodes}
+        chosen: list[NodeView] = []
+        if node_ids:
+            missing = [i for i in node_ids if i not in by_id]
+            if missing:
+                raise KeyError(", ".join(missing))
+            chosen = [by_id[i] for i in node_ids]
+        if flagged:
+            chosen += [n for n in nodes if saturation_reasons(n, policy) and n not in chosen]
+        target = target_fpr or policy.target_fpr
+        free = max(0, policy.max_concurrent_rebuilds - len(self.in_flight))
+        plans = []
+        for n in chosen:
+            cap = capacity or grow_capacity(n.key_count, policy)
+            reasons = saturation_reasons(n, policy)
+            reason = "operator request" + (": " + "; ".join(reasons) if reasons else "")
+            busy = n.node_id in self.in_flight
+            queued = busy or free <= 0
+            if not queued:
+                free -= 1
+            plans.append(RebuildPlan(n.node_id, cap, target, _geometry(cap, target), reason, queued))
+        return plans
+
+    # -- state changes ------------------------------------------------------------------------
+    def started(self, plan: RebuildPlan, epoch_before: int, now: float) -> None:
+        self.in_flight[plan.node_id] = _InFlight(now, epoch_before, plan.capacity, plan.reason)
+
+    def forget(self, node_id: str) -> None:
+        self.in_flight.pop(node_id, None)
+        self.flagged.pop(node_id, None)
+
+    def tick(self, now: float, nodes: list[NodeView], policy: Policy) -> TickResult:
+        """Assess every node; finish, time out, flag and start rebuilds. Returns what it decided."""
+        out = TickResult()
+        by_id = {n.node_id: n for n in nodes}
+        # Rebuilds in flight: done when the node moved to a later epoch; give up after the timeout.
+        for node_id, job in list(self.in_flight.items()):
+            node = by_id.get(node_id)
+            if node is not None and node.epoch > job.epoch_before:
+                del self.in_flight[node_id]
+                self._last_done[node_id] = now
+                out.decisions.append(Decision(now, node_id, "done",
+                                              f"epoch {job.epoch_before} -> {node.epoch}; capacity {node.capacity}, "
+                                              f"{node.key_count} keys, predicted FPR {node.predicted_fpr:.4g} "
+                                              f"(target {policy.target_fpr:g}) after {now - job.started_at:.1f}s"))
+            elif now - job.started_at > self.rebuild_timeout_s:
+                del self.in_flight[node_id]
+                self._last_done[node_id] = now   # retry only after the cooldown
+                out.decisions.append(Decision(now, node_id, "skip",
+                                              f"rebuild to capacity {job.capacity} not verified within "
+                                              f"{self.rebuild_timeout_s:g}s; slot released"))
+        # Flag transitions.
+        candidates: list[RebuildPlan] = []
+        for node in nodes:
+            reasons = saturation_reasons(node, policy)
+            was = node.node_id in self.flagged
+            if reasons and not was:
+                out.decisions.append(Decision(now, node.node_id, "flag", "; ".join(reasons)))
+            if reasons:
+                self.flagged[node.node_id] = reasons
+            else:
+                self.flagged.pop(node.node_id, None)
+            if node.node_id in self.in_flight or not node.in_sync:
+                continue
+            if now - self._last_done.get(node.node_id, -math.inf) < self.cooldown_s:
+                continue
+            if reasons:
+                candidates.append(self.grow_plan(node, policy, reasons))
+            else:
+                shrink = self.shrink_plan(node, policy)
+                if shrink is not None:
+                    candidates.append(shrink)
+        if not policy.auto_rebuild:
+            return out
+        # Start as many as the fleet-wide limit allows; most keys-over-capacity first.
+        candidates.sort(key=lambda p: -(by_id[p.node_id].key_count / max(1, by_id[p.node_id].capacity)))
+        for plan in candidates:
+            if len(self.in_flight) >= policy.max_concurrent_rebuilds:
+                note = (f"queued: {len(self.in_flight)} of {policy.max_concurrent_rebuilds} rebuild slots busy "
+                        f"({', '.join(sorted(self.in_flight))})")
+                if self._last_note.get(plan.node_id) != "queued":
+                    out.decisions.append(Decision(now, plan.node_id, "skip", note + "; " + plan.reason))
+                    self._last_note[plan.node_id] = "queued"
+                continue
+            self._last_note.pop(plan.node_id, None)
+            action = "shrink" if plan.reason.startswith("shrink") else "rebuild"
+            geo = f"; geometry {plan.geometry}" if plan.geometry else ""
+            out.decisions.append(Decision(now, plan.node_id, action,
+                                          f"capacity {plan.capacity} at target {plan.target_fpr:g}{geo}: {plan.reason}"))
+            self.started(plan, by_id[plan.node_id].epoch, now)
+            out.rebuilds.append(plan)
+        return out

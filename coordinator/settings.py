@@ -1,0 +1,101 @@
+"""Settings of the coordinator: flags > SHARDSIEVE_COORDINATOR_* environment > [coordinator] table > defaults."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+from coordinator.policy import MODES, Policy, PolicyError
+from shardsieve.config import ConfigError, setting
+
+ENV_PREFIX = "SHARDSIEVE_COORDINATOR_"
+SECTION = "coordinator"
+
+
+def _check_address(name: str, value: str) -> None:
+    host, sep, port = value.rpartition(":")
+    if not sep or not host or not port.isdigit() or not 0 <= int(port) <= 65535:
+        raise ConfigError(f"setting '{name}': {value!r} is not HOST:PORT with a port 0..65535")
+
+
+@dataclass(frozen=True)
+class CoordinatorSettings:
+    """Everything a coordinator process needs; `validate` names the first bad setting and why."""
+
+    id: str = setting("coordinator", "Name of this coordinator in status replies and logs.")
+    listen: str = setting("127.0.0.1:7400", "HOST:PORT of the Router, Admin, FilterSync and health services.")
+    metrics_port: int = setting(0, "Port of the Prometheus metrics endpoint on the listen host; 0: disabled.")
+    state_dir: Path | None = setting(None, "Directory where the coordinator remembers which nodes it has seen "
+                                           "(so after a restart they count as stale until they resync); empty: none.")
+    expect_node: list[str] = setting([], "NODE_ID=HOST:PORT of a node known before it connects (listed stale "
+                                         "until synced); repeat for several.")
+    token: str = setting("", "Bearer token required by the Admin API; empty: no token.", env="SHARDSIEVE_COORDINATOR_TOKEN")
+    token_file: Path | None = setting(None, "File holding the Admin API bearer token (first line).")
+    mode: str = setting("safe", "Lookup mode: 'safe' lists stale nodes in every candidate list, 'fast' leaves them out.")
+    stale_after_s: float = setting(2.0, "A node whose last applied change or heartbeat is older than this is stale (s).")
+    target_fpr: float = setting(0.01, "Fleet target false-positive rate, for saturation checks and rebuilds.")
+    saturation_ratio: float = setting(2.0, "Flag a node when its FPR exceeds this ratio x target.")
+    growth: float = setting(2.0, "Rebuild a saturated node at growth x its keys.")
+    shrink_below: float = setting(0.25, "Shrink a filter whose keys fell below this fraction of capacity (0: never).")
+    max_concurrent_rebuilds: int = setting(1, "Rebuilds running at once, fleet-wide.")
+    auto_rebuild: bool = setting(True, "Start rebuilds of flagged nodes without an operator.")
+    min_capacity: int = setting(1000, "Smallest capacity a rebuild asks for.")
+    monitor_interval_s: float = setting(1.0, "How often the saturation monitor runs (s).")
+    rebuild_timeout_s: float = setting(120.0, "Give up waiting for a requested rebuild after this long (s).")
+    read_deadline_ms: int = setting(2000, "Default deadline of a Read's probes (ms).")
+    write_deadline_ms: int = setting(5000, "Deadline of a write or delete sent to a node (ms).")
+    probe_threads: int = setting(32, "Threads probing nodes concurrently.")
+    grpc_workers: int = setting(32, "Threads serving gRPC requests.")
+    max_hints: int = setting(1_000_000, "Most read-your-writes hints held before writes are refused.")
+    log_level: str = setting("info", "Log level: debug, info, warning, error.")
+    log_format: str = setting("json", "Log format: 'json' (one object per line) or 'text'.")
+
+    def validate(self) -> None:
+        _check_address("listen", self.listen)
+        if not self.id or len(self.id) > 128:
+            raise ConfigError("setting 'id': must be 1..128 characters")
+        if not 0 <= self.metrics_port <= 65535:
+            raise ConfigError(f"setting 'metrics-port': must be in 0..65535, got {self.metrics_port}")
+        for item in self.expect_node:
+            node_id, sep, addr = item.partition("=")
+            if not sep or not node_id:
+                raise ConfigError(f"setting 'expect-node': {item!r} must look like NODE_ID=HOST:PORT")
+            _check_address("expect-node", addr)
+        if self.mode not in MODES:
+            raise ConfigError(f"setting 'mode': must be one of {', '.join(MODES)}, got {self.mode!r}")
+        for name in ("monitor_interval_s", "rebuild_timeout_s"):
+            value = getattr(self, name)
+            if not (value > 0 and math.isfinite(value)):
+                raise ConfigError(f"setting '{name.replace('_', '-')}': must be above 0, got {value}")
+        for name in ("read_deadline_ms", "write_deadline_ms", "probe_threads", "grpc_workers", "max_hints"):
+            if getattr(self, name) < 1:
+                raise ConfigError(f"setting '{name.replace('_', '-')}': must be at least 1, got {getattr(self, name)}")
+        if self.log_level not in ("debug", "info", "warning", "error"):
+            raise ConfigError(f"setting 'log-level': must be debug, info, warning or error, got {self.log_level!r}")
+        if self.log_format not in ("json", "text"):
+            raise ConfigError(f"setting 'log-format': must be 'json' or 'text', got {self.log_format!r}")
+        if self.token_file is not None and not self.token_file.is_file():
+            raise ConfigError(f"setting 'token-file': {self.token_file} is not a readable file")
+        try:
+            self.policy().validate()
+        except PolicyError as exc:
+            raise ConfigError(f"setting {exc}") from None
+
+    def policy(self) -> Policy:
+        return Policy(target_fpr=self.target_fpr, saturation_ratio=self.saturation_ratio, growth=self.growth,
+                      shrink_below=self.shrink_below, max_concurrent_rebuilds=self.max_concurrent_rebuilds,
+                      auto_rebuild=self.auto_rebuild, stale_after_s=self.stale_after_s, mode=self.mode,
+                      min_capacity=self.min_capacity)
+
+    def admin_token(self) -> str:
+        """The configured token (flag/env/file value, else the token file's first line); never logged."""
+        if self.token:
+            return self.token
+        if self.token_file is not None:
+            lines = self.token_file.read_text().splitlines()
+            return lines[0].strip() if lines else ""
+        return ""
+
+    def expected_nodes(self) -> dict[str, str]:
+        return dict(item.split("=", 1) for item in self.expect_node)

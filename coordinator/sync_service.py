@@ -1,0 +1,144 @@
+"""FilterSync servicer: drives shardsieve.sync.coordinator_side.CoordinatorSync from gRPC streams.
+
+Each stream gets a reader thread that feeds node messages into the protocol object (under one
+lock: the object is not thread-safe) and an outbox queue the response generator drains. The
+outbox of a node's current stream is also where rebuild requests go. After every message the
+node's record in the fleet is refreshed from the protocol object's view (freshness, hints).
+"""
+
+from __future__ import annotations
+
+import itertools
+import logging
+import queue
+import threading
+import time
+from typing import Any, Callable, Iterator
+
+import grpc
+
+from coordinator.fleet import Fleet
+from shardsieve.sync.coordinator_side import CoordinatorSync
+from shardsieve.sync.errors import SyncError
+from shardsieve.v1 import sync_pb2, sync_pb2_grpc
+
+log = logging.getLogger("shardsieve.coordinator.sync")
+
+_END = object()
+
+
+class _Failure:
+    def __init__(self, code: grpc.StatusCode, message: str) -> None:
+        self.code = code
+        self.message = message
+
+
+class SyncService(sync_pb2_grpc.FilterSyncServicer):
+    def __init__(self, fleet: Fleet, sync: CoordinatorSync | None = None, *,
+                 clock: Callable[[], float] = time.monotonic, metrics: Any = None) -> None:
+        self.fleet = fleet
+        self.sync = sync or CoordinatorSync(fleet)
+        self.lock = threading.Lock()
+        self.clock = clock
+        self.metrics = metrics
+        self._ids = itertools.count(1)
+        self._outbox: dict[str, queue.Queue[Any]] = {}
+        self._stopping = threading.Event()
+
+    # -- called by the daemon ---------------------------------------------------------------------
+    def send_rebuild(self, node_id: str, capacity: int, target_fpr: float, reason: str) -> None:
+        """Queue a RebuildRequest on node_id's stream; KeyError if it has none, ValueError on bad sizes."""
+        with self.lock:
+            outbox = self._outbox.get(node_id)
+            if outbox is None:
+                raise KeyError(f"node {node_id!r} has no open sync stream")
+            msg = self.sync.request_rebuild(node_id, capacity, target_fpr, reason, self.clock())
+            view = self.sync.node(node_id)
+        outbox.put(msg)
+        if view is not None:
+            self.fleet.observe(view)
+        if self.metrics is not None:
+            self.metrics.rebuilds.labels("shrink" if reason.startswith("shrink") else "rebuild").inc()
+
+    def refresh(self) -> None:
+        """Re-read every node's view (the clock moved; e.g. before a status reply)."""
+        with self.lock:
+            views = self.sync.nodes()
+        for v in views:
+            self.fleet.observe(v)
+
+    def stop(self) -> None:
+        self._stopping.set()
+        with self.lock:
+            boxes = list(self._outbox.values())
+        for box in boxes:
+            box.put(_END)
+
+    # -- the stream ----------------------------------------------------------------------------------
+    def Stream(self, request_iterator: Iterator[sync_pb2.NodeMessage], context: grpc.ServicerContext) -> Iterator[sync_pb2.CoordinatorMessage]:
+        stream_id = next(self._ids)
+        outbox: queue.Queue[Any] = queue.Queue()
+        state: dict[str, Any] = {"node": None}
+
+        def reader() -> None:
+            try:
+                for msg in request_iterator:
+                    now = self.clock()
+                    with self.lock:
+                        node_id = state["node"]
+                        if node_id is None:
+                            if msg.WhichOneof("body") != "hello":
+                                outbox.put(_Failure(grpc.StatusCode.FAILED_PRECONDITION,
+                                                    "the first message of a sync stream must be a Hello"))
+                                return
+                            out = self.sync.open(stream_id, msg.hello, now)
+                            node_id = state["node"] = msg.hello.node_id
+                            self._outbox[node_id] = outbox
+                            log.info("sync stream opened", extra={"node_id": node_id, "stream": stream_id,
+                                                                   "address": msg.hello.storage_address,
+                                                                   "epoch": msg.hello.epoch,
+                                                                   "sequence": msg.hello.sequence})
+                        else:
+                            out = self.sync.receive(node_id, stream_id, msg, now)
+                        view = self.sync.node(node_id)
+                    if self.metrics is not None and msg.WhichOneof("body") == "delta":
+                        self.metrics.delta_bytes.inc(len(msg.delta.payload))
+                    if view is not None:
+                        self.fleet.observe(view)
+                    for m in out:
+                        outbox.put(m)
+                outbox.put(_END)
+            except SyncError as exc:
+                code = getattr(grpc.StatusCode, exc.grpc_status_name, grpc.StatusCode.FAILED_PRECONDITION)
+                log.warning("sync stream refused", extra={"node_id": state["node"], "error": str(exc)})
+                outbox.put(_Failure(code, str(exc)))
+            except grpc.RpcError:
+                outbox.put(_END)   # the node went away
+            except Exception as exc:  # noqa: BLE001 - log, end this stream, keep serving others
+                log.exception("sync stream failed", extra={"node_id": state["node"]})
+                outbox.put(_Failure(grpc.StatusCode.INTERNAL, f"coordinator error: {exc}"))
+
+        thread = threading.Thread(target=reader, name=f"sync-{stream_id}", daemon=True)
+        thread.start()
+        try:
+            while context.is_active() and not self._stopping.is_set():
+                try:
+                    item = outbox.get(timeout=0.5)
+                except queue.Empty:
+                    continue
+                if item is _END:
+                    break
+                if isinstance(item, _Failure):
+                    context.abort(item.code, item.message)
+                yield item
+        finally:
+            node_id = state["node"]
+            if node_id is not None:
+                with self.lock:
+                    self.sync.close(node_id, stream_id, self.clock())
+                    if self._outbox.get(node_id) is outbox:
+                        del self._outbox[node_id]
+                    view = self.sync.node(node_id)
+                if view is not None:
+                    self.fleet.observe(view)
+                log.info("sync stream closed", extra={"node_id": node_id, "stream": stream_id})

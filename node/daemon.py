@@ -1,0 +1,187 @@
+"""Wiring of a node process: store, core, gRPC server + health, sync drivers, metrics, logs, shutdown.
+
+Start order (why): the gRPC server starts first with health NOT_SERVING so probes get an
+answer at once; the filter is then rebuilt from the store (progress logged), the new epoch
+persisted, health flips to SERVING, and only then do sync drivers open their streams.
+SIGTERM / SIGINT: health NOT_SERVING, sync drivers stop, the server drains in-flight calls
+(a grace period), the store closes. Nothing acknowledged is pending at that point: acks are
+sent only after the store commit returned.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import signal
+import sys
+import threading
+import time
+from concurrent import futures
+from typing import Any
+
+import grpc
+from grpc_health.v1 import health, health_pb2, health_pb2_grpc
+
+from node.core import Limits, NodeCore
+from node.service import NodeStorageService
+from node.settings import NodeSettings
+from node.store import StoreError, open_store
+from node.sync_driver import SyncDriver
+from shardsieve.v1 import storage_pb2_grpc
+
+log = logging.getLogger("shardsieve.node")
+
+HEALTH_SERVICES = ("", "shardsieve.v1.NodeStorage")
+_STD_ATTRS = set(logging.LogRecord("", 0, "", 0, "", (), None).__dict__) | {"message", "asctime"}
+
+
+class JsonFormatter(logging.Formatter):
+    """One JSON object per line: ts, level, logger, msg, plus every `extra` field."""
+
+    def __init__(self, node_id: str) -> None:
+        super().__init__()
+        self.node_id = node_id
+
+    def format(self, record: logging.LogRecord) -> str:
+        out: dict[str, Any] = {
+            "ts": time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(record.created)) + f".{int(record.msecs):03d}Z",
+            "level": record.levelname.lower(), "logger": record.name, "node": self.node_id,
+            "msg": record.getMessage(),
+        }
+        for key, value in record.__dict__.items():
+            if key not in _STD_ATTRS and not key.startswith("_"):
+                out[key] = value if isinstance(value, (int, float, str, bool, type(None))) else str(value)
+        if record.exc_info:
+            out["exc"] = self.formatException(record.exc_info)
+        return json.dumps(out, separators=(",", ":"))
+
+
+class TextFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        extras = " ".join(f"{k}={v}" for k, v in record.__dict__.items()
+                          if k not in _STD_ATTRS and not k.startswith("_"))
+        base = f"{time.strftime('%H:%M:%S', time.gmtime(record.created))} {record.levelname:<7} {record.getMessage()}"
+        text = f"{base} {extras}".rstrip()
+        if record.exc_info:
+            text += "\n" + self.formatException(record.exc_info)
+        return text
+
+
+def setup_logging(settings: NodeSettings) -> None:
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(JsonFormatter(settings.id) if settings.log_format == "json" else TextFormatter())
+    root = logging.getLogger()
+    root.handlers[:] = [handler]
+    root.setLevel(settings.log_level.upper())
+
+
+class NodeDaemon:
+    """One running node. start() returns once SERVING; stop() is idempotent."""
+
+    def __init__(self, settings: NodeSettings) -> None:
+        self.settings = settings
+        self.store = open_store(settings.store, settings.data, settings.sync_level)
+        self.core = NodeCore(settings.id, self.store, capacity=settings.capacity, target_fpr=settings.fpr,
+                             seed=settings.seed, history_limit=settings.history_limit,
+                             push_threshold=settings.push_threshold,
+                             push_interval=settings.push_interval_ms / 1000.0,
+                             limits=Limits(settings.max_key_bytes, settings.max_value_bytes, settings.max_batch),
+                             scan_batch=settings.scan_batch)
+        self.server = grpc.server(futures.ThreadPoolExecutor(max_workers=settings.grpc_workers,
+                                                             thread_name_prefix="grpc"),
+                                  options=[("grpc.max_receive_message_length", 64 << 20),
+                                           ("grpc.max_send_message_length", 64 << 20)])
+        self.health = health.HealthServicer()
+        storage_pb2_grpc.add_NodeStorageServicer_to_server(NodeStorageService(self.core), self.server)
+        health_pb2_grpc.add_HealthServicer_to_server(self.health, self.server)
+        self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
+        self.port = self.server.add_insecure_port(settings.listen)
+        if self.port == 0:
+            raise StoreError(f"cannot listen on {settings.listen} (address in use or not local)")
+        host = settings.listen.rpartition(":")[0]
+        self.address = f"{host}:{self.port}"
+        self.core.storage_address = settings.advertise or self.address
+        self.drivers: list[SyncDriver] = []
+        self.metrics_server: Any = None
+        self._stopped = threading.Event()
+
+    def _set_health(self, status: int) -> None:
+        for name in HEALTH_SERVICES:
+            self.health.set(name, status)
+
+    def start(self) -> None:
+        self.server.start()
+        log.info("listening", extra={"address": self.address, "data": str(self.settings.data),
+                                     "sync_level": self.settings.sync_level, "store": self.settings.store})
+        if self.settings.metrics_port:
+            from node.metrics import start_metrics
+
+            host = self.settings.listen.rpartition(":")[0]
+            self.metrics_server = start_metrics(self.core, host, self.settings.metrics_port,
+                                                lambda: self.drivers)
+            log.info("metrics endpoint", extra={"address": f"{host}:{self.settings.metrics_port}"})
+
+        def progress(keys: int, seconds: float) -> None:
+            log.info("loading filter from store", extra={"keys_scanned": keys, "seconds": round(seconds, 2)})
+
+        self.core.load(progress)
+        self._set_health(health_pb2.HealthCheckResponse.SERVING)
+        log.info("serving", extra={"address": self.address, "epoch": self.core.epoch,
+                                   "keys": self.core.key_count, "geometry": str(self.core.geometry)})
+        self.core.start_pusher(self.settings.push_interval_ms / 1000.0)
+        for addr in self.settings.coordinator:
+            driver = SyncDriver(self.core, addr, push_interval=self.settings.push_interval_ms / 1000.0,
+                                heartbeat_interval=self.settings.heartbeat_ms / 1000.0,
+                                backoff_min=self.settings.reconnect_min_ms / 1000.0,
+                                backoff_max=self.settings.reconnect_max_ms / 1000.0)
+            driver.start()
+            self.drivers.append(driver)
+
+    def stop(self, grace: float = 5.0) -> None:
+        if self._stopped.is_set():
+            return
+        self._stopped.set()
+        log.info("shutting down")
+        self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
+        self.core.stop_pusher()
+        for driver in self.drivers:
+            driver.stop()
+        self.server.stop(grace).wait(grace + 1)
+        for driver in self.drivers:
+            driver.join(2.0)
+        if self.metrics_server is not None:
+            try:
+                self.metrics_server.shutdown()
+            except Exception:  # noqa: BLE001 - best effort on the way out
+                pass
+        self.store.close()
+        log.info("stopped")
+
+
+def run(settings: NodeSettings) -> int:
+    """Run until SIGTERM/SIGINT; returns the process exit code."""
+    setup_logging(settings)
+    stop = threading.Event()
+
+    def on_signal(signum: int, _frame: object) -> None:
+        log.info("signal received", extra={"signal": signal.Signals(signum).name})
+        stop.set()
+
+    signal.signal(signal.SIGTERM, on_signal)
+    signal.signal(signal.SIGINT, on_signal)
+    try:
+        daemon = NodeDaemon(settings)
+    except (StoreError, OSError, RuntimeError, ValueError) as exc:
+        log.error("cannot start", extra={"error": str(exc)})
+        print(f"shardsieve node: {exc}", file=sys.stderr)
+        return 1
+    try:
+        daemon.start()
+        while not stop.wait(0.5):
+            pass
+    except Exception:
+        log.exception("fatal error")
+        daemon.stop(grace=1.0)
+        return 1
+    daemon.stop()
+    return 0

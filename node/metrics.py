@@ -1,0 +1,82 @@
+"""Prometheus text metrics of a node, read from NodeCore and the sync drivers at scrape time.
+
+A custom collector (rather than counters bumped on the write path) keeps the write path free
+of metric bookkeeping and makes every scrape consistent with Stats.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Callable, Iterable, Sequence
+
+from prometheus_client import CollectorRegistry, start_http_server
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
+from prometheus_client.registry import Collector
+
+
+class NodeCollector(Collector):
+    def __init__(self, core: Any, drivers: Callable[[], Sequence[Any]]) -> None:
+        self.core = core
+        self.drivers = drivers
+
+    def collect(self) -> Iterable[Any]:
+        core = self.core
+        node = core.node_id
+        if not core.ready:
+            g = GaugeMetricFamily("shardsieve_node_ready", "1 once the filter is loaded from the store", labels=["node"])
+            g.add_metric([node], 0.0)
+            yield g
+            return
+        s = core.stats()
+
+        def gauge(name: str, doc: str, value: float) -> GaugeMetricFamily:
+            g = GaugeMetricFamily(name, doc, labels=["node"])
+            g.add_metric([node], float(value))
+            return g
+
+        def counter(name: str, doc: str, value: float) -> CounterMetricFamily:
+            c = CounterMetricFamily(name, doc, labels=["node"])
+            c.add_metric([node], float(value))
+            return c
+
+        yield gauge("shardsieve_node_ready", "1 once the filter is loaded from the store", 1)
+        yield gauge("shardsieve_node_keys", "Keys in the store (and the filter)", s["key_count"])
+        yield gauge("shardsieve_node_capacity", "Keys the filter is sized for", s["capacity"])
+        yield gauge("shardsieve_node_filter_bits", "Filter size m in bits", s["geometry"].bits)
+        yield gauge("shardsieve_node_filter_hashes", "Filter hash count k", s["geometry"].hashes)
+        yield gauge("shardsieve_node_fill", "Fraction of filter bits set", s["fill"])
+        yield gauge("shardsieve_node_predicted_fpr", "Predicted false-positive rate fill^k", s["predicted_fpr"])
+        yield gauge("shardsieve_node_epoch", "Filter epoch", s["epoch"])
+        yield gauge("shardsieve_node_sequence", "Last cut delta sequence of the epoch", s["sequence"])
+        yield gauge("shardsieve_node_saturated_counters", "Counters pinned at 15", s["saturated_counters"])
+        yield counter("shardsieve_node_reads", "Keys read", s["reads"])
+        yield counter("shardsieve_node_wasted_probes", "Reads that found nothing", s["reads_missed"])
+        yield counter("shardsieve_node_writes", "Keys written (puts)", s["writes"])
+        yield counter("shardsieve_node_deletes", "Keys deleted (requests)", s["deletes"])
+        yield counter("shardsieve_node_bytes_pushed", "Delta and snapshot bytes sent to coordinators",
+                      s["bytes_pushed"])
+        yield gauge("shardsieve_node_rebuild_progress", "Rebuild progress 0..1 (0 when idle)", s["rebuild_progress"])
+        lag = GaugeMetricFamily("shardsieve_node_coordinator_lag", "Sequences cut but not acknowledged",
+                                labels=["node", "coordinator"])
+        connected = GaugeMetricFamily("shardsieve_node_coordinator_connected", "1 while the stream is open",
+                                      labels=["node", "coordinator"])
+        acks = CounterMetricFamily("shardsieve_node_coordinator_acks", "Acks received", labels=["node", "coordinator"])
+        reconnects = CounterMetricFamily("shardsieve_node_coordinator_reconnects", "Stream (re)connects",
+                                         labels=["node", "coordinator"])
+        for driver in self.drivers():
+            d = driver.status()
+            lag.add_metric([node, driver.address], float(d["lag"]))
+            connected.add_metric([node, driver.address], 1.0 if d["connected"] else 0.0)
+            acks.add_metric([node, driver.address], float(d["acks"]))
+            reconnects.add_metric([node, driver.address], float(d["connects"]))
+        yield lag
+        yield connected
+        yield acks
+        yield reconnects
+
+
+def start_metrics(core: Any, host: str, port: int, drivers: Callable[[], Sequence[Any]]) -> Any:
+    """Serve /metrics on host:port from a private registry; returns the server (has .shutdown())."""
+    registry = CollectorRegistry(auto_describe=False)
+    registry.register(NodeCollector(core, drivers))
+    server, _thread = start_http_server(port, addr=host, registry=registry)
+    return server

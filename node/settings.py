@@ -1,0 +1,90 @@
+"""Settings of the storage node: flags > SHARDSIEVE_NODE_* environment > [node] table of a TOML file > defaults."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+from shardsieve.config import ConfigError, setting
+
+ENV_PREFIX = "SHARDSIEVE_NODE_"
+SECTION = "node"
+
+
+def _check_address(name: str, value: str) -> None:
+    host, sep, port = value.rpartition(":")
+    if not sep or not host or not port.isdigit() or not 0 <= int(port) <= 65535:
+        raise ConfigError(f"setting '{name}': {value!r} is not HOST:PORT with a port 0..65535")
+
+
+@dataclass(frozen=True)
+class NodeSettings:
+    """Everything a node process needs; `validate` names the first bad setting and why."""
+
+    id: str = setting("", "Stable node id (letters, digits, '-', '_', '.'); required.")
+    listen: str = setting("127.0.0.1:7500", "HOST:PORT the NodeStorage gRPC service listens on (port 0: any free port).")
+    advertise: str = setting("", "HOST:PORT coordinators use to reach this node; empty: the listen address.")
+    data: Path = setting(Path("./node-data"), "Directory of the node's SQLite store.")
+    coordinator: list[str] = setting([], "Coordinator HOST:PORT to stream filter changes to; repeat for several.")
+    capacity: int = setting(100_000, "Keys the filter is sized for (a rebuild may replace it; the rebuilt size is kept).")
+    fpr: float = setting(0.01, "Target false-positive rate of the filter, in (0, 1).")
+    seed: int = setting(0, "Hash seed of the filter geometry (0..2^32-1).")
+    metrics_port: int = setting(0, "Port of the Prometheus metrics endpoint on the listen host; 0: disabled.")
+    push_interval_ms: int = setting(50, "Coalesce filter changes and push a delta at least this often (ms).")
+    push_threshold: int = setting(4096, "Push sooner once this many bits changed since the last delta.")
+    heartbeat_ms: int = setting(1000, "Send a heartbeat with node stats this often (ms).")
+    sync_level: str = setting("full", "Store durability: 'full' (survives process kill and power loss) or "
+                                      "'normal' (survives process kill; power loss may lose the last writes).")
+    store: str = setting("sqlite", "Store backend: 'sqlite' ('memory' is for tests and loses everything on exit).")
+    max_key_bytes: int = setting(1024, "Largest key accepted, in bytes.")
+    max_value_bytes: int = setting(1_048_576, "Largest value accepted, in bytes.")
+    max_batch: int = setting(1000, "Most items accepted in one batch request.")
+    scan_batch: int = setting(2000, "Keys per locked step of a rebuild scan (smaller: shorter write pauses).")
+    history_limit: int = setting(1024, "Deltas kept per epoch for lagging coordinators; beyond that they get a snapshot.")
+    reconnect_min_ms: int = setting(100, "First reconnect delay to a coordinator (ms); doubles per failure, jittered.")
+    reconnect_max_ms: int = setting(5000, "Largest reconnect delay to a coordinator (ms).")
+    log_level: str = setting("info", "Log level: debug, info, warning, error.")
+    log_format: str = setting("json", "Log format: 'json' (one object per line) or 'text'.")
+    grpc_workers: int = setting(16, "Threads serving gRPC requests.")
+
+    def validate(self) -> None:
+        if not self.id:
+            raise ConfigError("setting 'id' is required (--id, SHARDSIEVE_NODE_ID or id in [node])")
+        if not all(c.isalnum() or c in "-_." for c in self.id) or len(self.id) > 128:
+            raise ConfigError(f"setting 'id': {self.id!r} may hold only letters, digits, '-', '_', '.' (at most 128)")
+        _check_address("listen", self.listen)
+        if self.advertise:
+            _check_address("advertise", self.advertise)
+        for addr in self.coordinator:
+            _check_address("coordinator", addr)
+        if len(set(self.coordinator)) != len(self.coordinator):
+            raise ConfigError("setting 'coordinator': the same address is listed twice")
+        if self.capacity < 1:
+            raise ConfigError(f"setting 'capacity': must be at least 1, got {self.capacity}")
+        if not (0.0 < self.fpr < 1.0) or math.isnan(self.fpr):
+            raise ConfigError(f"setting 'fpr': must be strictly between 0 and 1, got {self.fpr}")
+        if not 0 <= self.seed <= 0xFFFFFFFF:
+            raise ConfigError(f"setting 'seed': must be in 0..4294967295, got {self.seed}")
+        if not 0 <= self.metrics_port <= 65535:
+            raise ConfigError(f"setting 'metrics-port': must be in 0..65535, got {self.metrics_port}")
+        positive = ("push_interval_ms", "push_threshold", "heartbeat_ms", "max_key_bytes", "max_value_bytes",
+                    "max_batch", "scan_batch", "history_limit", "reconnect_min_ms", "reconnect_max_ms", "grpc_workers")
+        for name in positive:
+            if getattr(self, name) < 1:
+                raise ConfigError(f"setting '{name.replace('_', '-')}': must be at least 1, got {getattr(self, name)}")
+        if self.reconnect_max_ms < self.reconnect_min_ms:
+            raise ConfigError("setting 'reconnect-max-ms': must not be below reconnect-min-ms")
+        if self.sync_level not in ("full", "normal"):
+            raise ConfigError(f"setting 'sync-level': must be 'full' or 'normal', got {self.sync_level!r}")
+        if self.store not in ("sqlite", "memory"):
+            raise ConfigError(f"setting 'store': must be 'sqlite' or 'memory', got {self.store!r}")
+        if self.log_level.lower() not in ("debug", "info", "warning", "error"):
+            raise ConfigError(f"setting 'log-level': must be debug, info, warning or error, got {self.log_level!r}")
+        if self.log_format not in ("json", "text"):
+            raise ConfigError(f"setting 'log-format': must be 'json' or 'text', got {self.log_format!r}")
+
+    @property
+    def storage_address(self) -> str:
+        """The address put in Hello; note a listen port 0 is resolved by the daemon."""
+        return self.advertise or self.listen

@@ -1,0 +1,164 @@
+"""One long-lived FilterSync.Stream per coordinator: the thin I/O driver around the node's NodeSync.
+
+Each coordinator gets its own thread, channel, outbound queue and backoff, so a slow or dead
+coordinator never holds back another, and writes never wait on any of them (writes only
+touch NodeCore; the driver pulls outgoing messages from it). The outbound queue is bounded
+in effect: the driver asks the protocol object for more only while fewer than
+`MAX_QUEUED` messages wait to be sent; the protocol object bounds the history it keeps for a
+lagging coordinator and switches it to a snapshot beyond that.
+
+Reconnects use jittered exponential backoff ("full jitter": sleep uniform(0, min(max, min*2^n)),
+AWS Architecture Blog, "Exponential Backoff And Jitter", 2015), reset after a stream that
+worked (an ack arrived).
+"""
+
+from __future__ import annotations
+
+import logging
+import queue
+import random
+import threading
+import time
+from typing import Any, Callable, Iterator
+
+import grpc
+
+from shardsieve.sync.errors import SyncError
+from shardsieve.v1 import sync_pb2, sync_pb2_grpc
+
+log = logging.getLogger("shardsieve.node.sync")
+
+MAX_QUEUED = 64
+_CLOSE = object()
+
+
+class SyncDriver:
+    """Drives the stream to one coordinator address until stop()."""
+
+    def __init__(self, core: Any, address: str, *, push_interval: float = 0.05, heartbeat_interval: float = 1.0,
+                 backoff_min: float = 0.1, backoff_max: float = 5.0, rng: random.Random | None = None,
+                 on_sent: Callable[[sync_pb2.NodeMessage, float], None] | None = None) -> None:
+        self.core = core
+        self.address = address
+        self.peer = f"coordinator@{address}"
+        self.push_interval = push_interval
+        self.heartbeat_interval = heartbeat_interval
+        self.backoff_min = backoff_min
+        self.backoff_max = backoff_max
+        self.rng = rng or random.Random()
+        self.on_sent = on_sent          # timestamp hook: (message, time.monotonic() when handed to gRPC)
+        self._stop = threading.Event()
+        self._wake = threading.Event()
+        self._thread = threading.Thread(target=self._run, name=f"sync-{address}", daemon=True)
+        self.connected = False
+        self.connects = 0
+        self.acks = 0
+        self.last_error = ""
+        core.listeners.append(self._wake.set)
+
+    # ------------------------------------------------------------------ lifecycle
+    def start(self) -> None:
+        self._thread.start()
+
+    def stop(self) -> None:
+        self._stop.set()
+        self._wake.set()
+
+    def join(self, timeout: float | None = None) -> None:
+        self._thread.join(timeout)
+
+    def status(self) -> dict[str, Any]:
+        return {"address": self.address, "connected": self.connected, "connects": self.connects,
+                "acks": self.acks, "lag": self.core.peer_lag(self.peer), "last_error": self.last_error}
+
+    # ------------------------------------------------------------------ loop
+    def _run(self) -> None:
+        failures = 0
+        while not self._stop.is_set():
+            worked = self._one_stream()
+            if self._stop.is_set():
+                break
+            failures = 0 if worked else failures + 1
+            ceiling = min(self.backoff_max, self.backoff_min * (2 ** min(failures, 20)))
+            delay = self.rng.uniform(self.backoff_min / 2, ceiling)
+            log.info("sync stream down, reconnecting", extra={"coordinator": self.address,
+                                                              "delay_s": round(delay, 3),
+                                                              "error": self.last_error})
+            self._stop.wait(delay)
+
+    def _one_stream(self) -> bool:
+        """Open, run and close one stream; True if the coordinator acknowledged something on it."""
+        outq: queue.Queue[Any] = queue.Queue()
+        got_ack = threading.Event()
+        reader_done = threading.Event()
+        channel = grpc.insecure_channel(self.address, options=[
+            ("grpc.max_send_message_length", 64 << 20), ("grpc.max_receive_message_length", 64 << 20),
+            ("grpc.keepalive_time_ms", 10_000), ("grpc.keepalive_timeout_ms", 5_000)])
+        call = None
+        try:
+            for msg in self.core.peer_open(self.peer, time.monotonic()):
+                outq.put(msg)
+            stub = sync_pb2_grpc.FilterSyncStub(channel)
+            call = stub.Stream(self._requests(outq))
+            self.connects += 1
+            reader = threading.Thread(target=self._read, args=(call, outq, got_ack, reader_done),
+                                      name=f"sync-read-{self.address}", daemon=True)
+            reader.start()
+            last_heartbeat = 0.0
+            while not self._stop.is_set() and not reader_done.is_set():
+                self._wake.wait(self.push_interval)
+                self._wake.clear()
+                now = time.monotonic()
+                if outq.qsize() < MAX_QUEUED:
+                    for msg in self.core.peer_poll(self.peer, now):
+                        outq.put(msg)
+                if now - last_heartbeat >= self.heartbeat_interval:
+                    outq.put(self.core.heartbeat())
+                    last_heartbeat = now
+            return got_ack.is_set()
+        except SyncError as exc:
+            self.last_error = f"{type(exc).__name__}: {exc}"
+            log.warning("sync protocol error, resetting stream", extra={"coordinator": self.address,
+                                                                        "error": self.last_error})
+            return False
+        finally:
+            self.connected = False
+            outq.put(_CLOSE)
+            if call is not None:
+                call.cancel()
+            self.core.peer_close(self.peer)
+            channel.close()
+
+    def _requests(self, outq: queue.Queue[Any]) -> Iterator[sync_pb2.NodeMessage]:
+        while True:
+            msg = outq.get()
+            if msg is _CLOSE:
+                return
+            if self.on_sent is not None:
+                self.on_sent(msg, time.monotonic())
+            yield msg
+
+    def _read(self, call: Any, outq: queue.Queue[Any], got_ack: threading.Event, done: threading.Event) -> None:
+        try:
+            for reply in call:
+                self.connected = True
+                if reply.WhichOneof("body") == "ack":
+                    self.acks += 1
+                    got_ack.set()
+                try:
+                    out = self.core.peer_receive(self.peer, reply, time.monotonic())
+                except SyncError as exc:
+                    self.last_error = f"{type(exc).__name__}: {exc}"
+                    log.warning("coordinator message refused, resetting stream",
+                                extra={"coordinator": self.address, "error": self.last_error})
+                    return
+                for msg in out:
+                    outq.put(msg)
+                self._wake.set()
+        except grpc.RpcError as exc:
+            code = exc.code() if hasattr(exc, "code") else None
+            if code != grpc.StatusCode.CANCELLED:
+                self.last_error = f"{code.name if code else 'error'}: {exc.details() if hasattr(exc, 'details') else exc}"
+        finally:
+            done.set()
+            self._wake.set()

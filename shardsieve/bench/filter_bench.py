@@ -1,0 +1,214 @@
+"""`shardsieve bench filter`: our Bloom filter against rbloom and the hashing floor, side by side.
+
+Every round runs all contenders on the same keys one after the other; each figure is the
+best of the rounds (the least disturbed by other work on a shared machine) and speeds are
+reported as ratios against the baseline measured in the same run.
+
+Baselines:
+  rbloom   Bloom(n, p, hash_func) with hash_func(key) = mmh3.hash128(key, signed=True),
+           insert with update(keys), query with [k in bloom for k in keys].
+  floor    128-bit mmh3 digests of all keys (joined and read with numpy.frombuffer): no
+           Bloom filter that hashes with mmh3 from Python can insert or query faster.
+Codec figures come from shardsieve.bench.codec_figures.measure_codec.
+"""
+
+from __future__ import annotations
+
+import gc
+import json
+import sys
+import time
+from collections.abc import Callable
+from typing import Any
+
+import click
+
+MUST_RATIO = 0.8
+GOAL_RATIO = 1.0
+MUST_ENTROPY = 1.03
+MUST_ZSTD = 0.85
+MUST_CODEC_RATE = 5e6
+
+
+def make_keys(n: int, prefix: bytes = b"harbour-parcel") -> list[bytes]:
+    """Invented demo keys: parcel ids of a fictional harbour courier."""
+    return [b"%s:%010d" % (prefix, i) for i in range(n)]
+
+
+def _best_of(fn: Callable[[], Any], rounds: int) -> float:
+    best = float("inf")
+    for _ in range(rounds):
+        gc.collect()
+        t0 = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t0)
+    return best
+
+
+def run_filter_bench(keys_count: int = 1_000_000, fpr: float = 0.01, rounds: int = 3,
+                     progress: Callable[[str], None] | None = None) -> dict[str, Any]:
+    """Measure insert and query of ours, rbloom and the hashing floor on the same keys."""
+    import mmh3
+    import numpy as np
+    import rbloom
+
+    from shardsieve.bloom import BloomFilter
+    from shardsieve.geometry import geometry_for
+    from shardsieve.hashing import CHUNK_KEYS
+
+    say = progress or (lambda _msg: None)
+    say(f"making {keys_count:,} keys")
+    keys = make_keys(keys_count)
+    geometry = geometry_for(keys_count, fpr)
+    digest = mmh3.mmh3_x64_128_digest
+
+    def hash_rbloom(key: bytes) -> int:
+        return mmh3.hash128(key, signed=True)
+
+    def ours_insert() -> BloomFilter:
+        bf = BloomFilter(geometry)
+        bf.add_batch(keys)
+        return bf
+
+    def rbloom_insert() -> Any:
+        bloom = rbloom.Bloom(keys_count, fpr, hash_rbloom)
+        bloom.update(keys)
+        return bloom
+
+    def floor_joined() -> Any:
+        return np.frombuffer(b"".join(map(digest, keys)), dtype="<u8")
+
+    def floor_chunked() -> Any:
+        return [np.frombuffer(b"".join(map(digest, keys[i:i + CHUNK_KEYS])), dtype="<u8")
+                for i in range(0, len(keys), CHUNK_KEYS)]
+
+    ours = ours_insert()
+    theirs = rbloom_insert()
+    ours_hits = ours.contains_batch(keys)
+    if not ours_hits.all():
+        raise RuntimeError("our filter reported a false negative: the benchmark result would be meaningless")
+
+    times: dict[str, float] = {name: float("inf") for name in
+                               ("ours_insert", "ours_query", "rbloom_insert", "rbloom_query", "floor")}
+    for r in range(rounds):
+        say(f"round {r + 1}/{rounds}: inserts")
+        times["ours_insert"] = min(times["ours_insert"], _best_of(ours_insert, 1))
+        times["rbloom_insert"] = min(times["rbloom_insert"], _best_of(rbloom_insert, 1))
+        say(f"round {r + 1}/{rounds}: queries")
+        times["ours_query"] = min(times["ours_query"], _best_of(lambda: ours.contains_batch(keys), 1))
+        times["rbloom_query"] = min(times["rbloom_query"], _best_of(lambda: [k in theirs for k in keys], 1))
+        say(f"round {r + 1}/{rounds}: hashing floor")
+        times["floor"] = min(times["floor"], _best_of(floor_joined, 1), _best_of(floor_chunked, 1))
+
+    rate = {name: keys_count / t for name, t in times.items()}
+    return {
+        "keys": keys_count,
+        "fpr": fpr,
+        "rounds": rounds,
+        "geometry_bits": geometry.bits,
+        "geometry_hashes": geometry.hashes,
+        "rbloom_bits": int(theirs.size_in_bits),
+        "ours_insert_per_s": rate["ours_insert"],
+        "ours_query_per_s": rate["ours_query"],
+        "rbloom_insert_per_s": rate["rbloom_insert"],
+        "rbloom_query_per_s": rate["rbloom_query"],
+        "hash_floor_per_s": rate["floor"],
+        "insert_ratio_vs_rbloom": rate["ours_insert"] / rate["rbloom_insert"],
+        "query_ratio_vs_rbloom": rate["ours_query"] / rate["rbloom_query"],
+        "insert_fraction_of_hash_floor": rate["ours_insert"] / rate["floor"],
+        "query_fraction_of_hash_floor": rate["ours_query"] / rate["floor"],
+    }
+
+
+def run_codec_figures(progress: Callable[[str], None] | None = None) -> dict[str, Any]:
+    """Codec size and speed figures, or an explanation when the codec benchmark is missing."""
+    try:
+        from shardsieve.bench.codec_figures import measure_codec
+    except ImportError as exc:
+        return {"codec_error": f"codec figures unavailable: shardsieve.bench.codec_figures cannot be imported ({exc})"}
+    if progress:
+        progress("delta codec at densities 1e-4, 1e-3, 1e-2")
+    figures = measure_codec()
+    return {
+        "delta_size_vs_entropy": figures.get("delta_size_vs_entropy"),
+        "delta_size_vs_zstd": figures.get("delta_size_vs_zstd"),
+        "codec_positions_per_s": figures.get("codec_positions_per_s"),
+        "codec_rows": figures.get("rows", []),
+    }
+
+
+def _verdict(value: float | None, must: float, goal: float | None = None, lower_is_better: bool = False) -> str:
+    if value is None:
+        return "n/a"
+    ok = value <= must if lower_is_better else value >= must
+    if not ok:
+        return "[red]FAIL[/red]"
+    if goal is not None and value < goal:
+        return "[yellow]must ok, goal missed[/yellow]"
+    return "[green]ok[/green]"
+
+
+def _render(result: dict[str, Any]) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console()
+    t = Table(title=f"Filter benchmark: {result['keys']:,} keys, p = {result['fpr']:g}, best of {result['rounds']} rounds "
+                    f"(ours m = 2^{result['geometry_bits'].bit_length() - 1}, k = {result['geometry_hashes']}; "
+                    f"rbloom m = {result['rbloom_bits']:,})")
+    t.add_column("figure")
+    t.add_column("value", justify="right")
+    t.add_column("bound")
+    t.add_column("verdict")
+    t.add_row("ours insert (keys/s)", f"{result['ours_insert_per_s']:,.0f}", "", "")
+    t.add_row("rbloom insert (keys/s)", f"{result['rbloom_insert_per_s']:,.0f}", "", "")
+    t.add_row("ours query (keys/s)", f"{result['ours_query_per_s']:,.0f}", "", "")
+    t.add_row("rbloom query (keys/s)", f"{result['rbloom_query_per_s']:,.0f}", "", "")
+    t.add_row("hashing floor (keys/s)", f"{result['hash_floor_per_s']:,.0f}", "", "")
+    t.add_row("insert_ratio_vs_rbloom", f"{result['insert_ratio_vs_rbloom']:.3f}", ">= 0.8 (goal 1.0)",
+              _verdict(result["insert_ratio_vs_rbloom"], MUST_RATIO, GOAL_RATIO))
+    t.add_row("query_ratio_vs_rbloom", f"{result['query_ratio_vs_rbloom']:.3f}", ">= 0.8 (goal 1.0)",
+              _verdict(result["query_ratio_vs_rbloom"], MUST_RATIO, GOAL_RATIO))
+    t.add_row("query_fraction_of_hash_floor", f"{result['query_fraction_of_hash_floor']:.3f}", "", "")
+    t.add_row("insert_fraction_of_hash_floor", f"{result['insert_fraction_of_hash_floor']:.3f}", "", "")
+    if "codec_error" in result:
+        t.add_row("delta codec", "-", "", f"[yellow]{result['codec_error']}[/yellow]")
+    elif "delta_size_vs_entropy" in result:
+        for row in result.get("codec_rows", []):
+            t.add_row(f"delta at d/m = {row['density']:g}: size vs entropy / vs zstd-19",
+                      f"{row['size_vs_entropy']:.4f} / {row['size_vs_zstd']:.3f}", "", "")
+        t.add_row("delta_size_vs_entropy (worst)", f"{result['delta_size_vs_entropy']:.4f}", "<= 1.03",
+                  _verdict(result["delta_size_vs_entropy"], MUST_ENTROPY, lower_is_better=True))
+        t.add_row("delta_size_vs_zstd (worst)", f"{result['delta_size_vs_zstd']:.3f}", "<= 0.85",
+                  _verdict(result["delta_size_vs_zstd"], MUST_ZSTD, lower_is_better=True))
+        t.add_row("codec_positions_per_s (worst)", f"{result['codec_positions_per_s']:,.0f}", ">= 5e6",
+                  _verdict(result["codec_positions_per_s"], MUST_CODEC_RATE))
+    console.print(t)
+
+
+@click.command("filter")
+@click.option("--json", "as_json", is_flag=True, help="Print the figures as one JSON object on stdout.")
+@click.option("--keys", "keys_count", type=click.IntRange(min=1000), default=1_000_000, show_default=True,
+              help="Keys to insert and query.")
+@click.option("--fpr", type=click.FloatRange(min=0, max=1, min_open=True, max_open=True), default=0.01,
+              show_default=True, help="Target false-positive rate for both filters.")
+@click.option("--rounds", type=click.IntRange(min=1), default=3, show_default=True,
+              help="Rounds; each figure is the best round.")
+@click.option("--skip-codec", is_flag=True, help="Leave out the delta codec figures.")
+def bench_filter(as_json: bool, keys_count: int, fpr: float, rounds: int, skip_codec: bool) -> None:
+    """Insert and query speed against rbloom and the mmh3 hashing floor, plus delta codec figures."""
+    from rich.console import Console
+    from rich.status import Status
+
+    err = Console(stderr=True)
+    with Status("starting", console=err) as status:
+        def progress(msg: str) -> None:
+            status.update(msg)
+
+        result = run_filter_bench(keys_count, fpr, rounds, progress)
+        if not skip_codec:
+            result.update(run_codec_figures(progress))
+    if as_json:
+        sys.stdout.write(json.dumps(result) + "\n")
+    else:
+        _render(result)

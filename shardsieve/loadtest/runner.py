@@ -1,0 +1,332 @@
+"""The I/O half of the load tester: seed nodes directly, wait for routing, read through a coordinator.
+
+Seeding writes to NODES (NodeStorage.BatchPut at the addresses FleetStatus lists), never through
+the coordinator, so the coordinator can only learn the keys from the nodes' filter deltas; the
+run then waits, with a deadline, until LocateBatch lists each key's owner before reading.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+from dataclasses import dataclass
+from typing import Callable, Sequence
+
+import grpc
+import numpy as np
+
+from shardsieve.client import EXIT_FAILURE, EXIT_UNREACHABLE, ClientError, CoordinatorClient, translate_error
+from shardsieve.loadtest.report import Tally
+from shardsieve.loadtest.workload import LookupStream, place_keys, seed_key
+
+Progress = Callable[[int], None]   # called with the number of items just completed
+
+
+@dataclass(frozen=True)
+class NodeInfo:
+    node_id: str
+    address: str
+    predicted_fpr: float
+    wasted_probes: int
+    state: str
+    stale: bool
+    connected: bool
+    key_count: int
+
+
+def fleet_view(client: CoordinatorClient) -> dict[str, NodeInfo]:
+    reply = client.fleet_status()
+    return {n.node_id: NodeInfo(n.node_id, n.address, n.predicted_fpr, n.wasted_probes, n.state,
+                                n.stale, n.connected, n.key_count) for n in reply.nodes}
+
+
+def wait_fleet_ready(client: CoordinatorClient, timeout_s: float, min_nodes: int = 1) -> dict[str, NodeInfo]:
+    """Wait until the coordinator knows >= min_nodes nodes, all connected and none stale."""
+    deadline = time.monotonic() + timeout_s
+    while True:
+        view = fleet_view(client)
+        ready = len(view) >= min_nodes and all(n.connected and not n.stale and n.address for n in view.values())
+        if ready:
+            return view
+        if time.monotonic() > deadline:
+            bad = [f"{n.node_id} ({n.state})" for n in view.values() if n.stale or not n.connected]
+            raise ClientError(
+                f"the fleet is not ready after {timeout_s:.0f}s ({len(view)} nodes known; not in sync: "
+                f"{', '.join(bad) or 'none'}): check `shardsieve status`, then retry", EXIT_FAILURE)
+        time.sleep(0.1)
+
+
+class NodeChannels:
+    """One channel + NodeStorage stub per node address (direct access for seeding)."""
+
+    def __init__(self, view: dict[str, NodeInfo], metadata: tuple[tuple[str, str], ...] = ()) -> None:
+        from shardsieve.v1 import storage_pb2_grpc
+        self.metadata = metadata
+        self._channels = {nid: grpc.insecure_channel(info.address) for nid, info in view.items()}
+        self.stubs = {nid: storage_pb2_grpc.NodeStorageStub(ch) for nid, ch in self._channels.items()}
+        self.addresses = {nid: info.address for nid, info in view.items()}
+
+    def close(self) -> None:
+        for ch in self._channels.values():
+            ch.close()
+
+    def call(self, node_id: str, what: str, method: Callable, request: object, timeout_s: float = 30.0):
+        try:
+            return method(request, timeout=timeout_s, metadata=self.metadata)
+        except grpc.RpcError as exc:
+            err = translate_error(exc, self.addresses[node_id], f"{what} on node {node_id}")
+            if err.exit_code == EXIT_UNREACHABLE:
+                err = ClientError(f"cannot reach node {node_id} at {self.addresses[node_id]}: "
+                                  f"check it is running (`shardsieve status`)", EXIT_UNREACHABLE)
+            raise err from None
+
+
+def seed(channels: NodeChannels, keys: Sequence[bytes], owners: Sequence[str], value_size: int = 64,
+         batch: int = 500, on_progress: Progress | None = None) -> None:
+    """BatchPut every key to its owner node, in batches."""
+    from shardsieve.v1 import storage_pb2
+    value = (b"shardsieve-loadtest-" * (value_size // 20 + 1))[:value_size]
+    by_node: dict[str, list[bytes]] = {}
+    for key, owner in zip(keys, owners):
+        by_node.setdefault(owner, []).append(key)
+    for node_id, node_keys in by_node.items():
+        stub = channels.stubs[node_id]
+        for i in range(0, len(node_keys), batch):
+            chunk = node_keys[i:i + batch]
+            req = storage_pb2.BatchPutRequest(items=[storage_pb2.PutRequest(key=k, value=value) for k in chunk])
+            channels.call(node_id, "BatchPut", stub.BatchPut, req)
+            if on_progress:
+                on_progress(len(chunk))
+
+
+def seed_new(channels: NodeChannels, node_ids: Sequence[str], count: int, rng: np.random.Generator,
+             run_id: str, value_size: int = 64, on_progress: Progress | None = None
+             ) -> tuple[list[bytes], list[str]]:
+    keys = [seed_key(run_id, i) for i in range(count)]
+    owners = place_keys(rng, count, sorted(node_ids))
+    seed(channels, keys, owners, value_size=value_size, on_progress=on_progress)
+    return keys, owners
+
+
+def scan_existing(channels: NodeChannels, limit: int, on_progress: Progress | None = None
+                  ) -> tuple[list[bytes], list[str]]:
+    """Reuse the keys already stored: ScanKeys on every node, up to `limit` keys in total.
+
+    A key present on several nodes is kept once, with its first owner; the others still count as
+    holders in the coordinator's read, so such keys are dropped to keep the prediction exact.
+    """
+    from shardsieve.v1 import storage_pb2
+    found: dict[bytes, list[str]] = {}
+    per_node = max(1, limit // max(1, len(channels.stubs)) + 1)
+    for node_id, stub in sorted(channels.stubs.items()):
+        after = b""
+        taken = 0
+        while taken < per_node:
+            reply = channels.call(node_id, "ScanKeys", stub.ScanKeys,
+                                  storage_pb2.ScanKeysRequest(limit=min(1000, per_node - taken), after=after))
+            for k in reply.keys:
+                found.setdefault(k, []).append(node_id)
+            taken += len(reply.keys)
+            if on_progress:
+                on_progress(len(reply.keys))
+            if reply.done or not reply.keys:
+                break
+            after = reply.keys[-1]
+    unique = [(k, owners[0]) for k, owners in found.items() if len(owners) == 1][:limit]
+    return [k for k, _ in unique], [o for _, o in unique]
+
+
+def wait_routable(client: CoordinatorClient, keys: Sequence[bytes], owners: Sequence[str], timeout_s: float,
+                  batch: int = 2000, on_progress: Progress | None = None) -> None:
+    """Block until LocateBatch lists each key's owner among its candidates, or fail at the deadline."""
+    deadline = time.monotonic() + timeout_s
+    pending = list(range(len(keys)))
+    while pending:
+        still: list[int] = []
+        for i in range(0, len(pending), batch):
+            idx = pending[i:i + batch]
+            reply = client.locate_batch([keys[j] for j in idx])
+            for j, result in zip(idx, reply.results):
+                if any(c.node_id == owners[j] for c in result.candidates):
+                    continue
+                still.append(j)
+        if on_progress:
+            on_progress(len(pending) - len(still))
+        pending = still
+        if not pending:
+            return
+        if time.monotonic() > deadline:
+            raise ClientError(
+                f"{len(pending)} of {len(keys)} seeded keys are still not routed to their node after "
+                f"{timeout_s:.0f}s: the nodes' deltas are not reaching the coordinator; check `shardsieve status`",
+                EXIT_FAILURE)
+        time.sleep(0.05)
+
+
+def run_reads(client: CoordinatorClient, stream: LookupStream, tally: Tally, concurrency: int,
+              count: int | None = None, duration_s: float | None = None, on_progress: Progress | None = None,
+              stop: threading.Event | None = None) -> float:
+    """Read through the coordinator from `concurrency` threads until count or duration is reached.
+
+    Returns the elapsed seconds. A connection failure to the coordinator aborts the run
+    (ClientError); a per-lookup UNAVAILABLE (a candidate could not be asked) is counted as an error.
+    """
+    from shardsieve.v1 import routing_pb2
+    if count is None and duration_s is None:
+        raise ValueError("give a lookup count or a duration")
+    stop = stop or threading.Event()
+    lock = threading.Lock()
+    issued = 0
+    failure: list[ClientError] = []
+    started = time.perf_counter()
+    end_at = started + duration_s if duration_s is not None else None
+    timeout = client.settings.timeout_s
+    read = client.router.Read
+    metadata = client.metadata
+    client._ensure_reachable()
+
+    def next_chunk(size: int = 64):
+        nonlocal issued
+        with lock:
+            if stop.is_set() or failure:
+                return []
+            if end_at is not None and time.perf_counter() >= end_at:
+                return []
+            n = size if count is None else min(size, count - issued)
+            if n <= 0:
+                return []
+            issued += n
+            return stream.take(n)
+
+    def worker() -> None:
+        while True:
+            chunk = next_chunk(8 if count is None else 32)
+            if not chunk:
+                return
+            done = 0
+            for lk in chunk:
+                if end_at is not None and time.perf_counter() >= end_at or stop.is_set():
+                    break
+                t0 = time.perf_counter()
+                try:
+                    reply = read(routing_pb2.ReadRequest(key=lk.key), timeout=timeout, metadata=metadata)
+                except grpc.RpcError as exc:
+                    err = translate_error(exc, client.address, "Read")
+                    if exc.code() == grpc.StatusCode.UNAVAILABLE and err.exit_code != EXIT_UNREACHABLE:
+                        with lock:
+                            tally.record_error()
+                        done += 1
+                        continue
+                    with lock:
+                        failure.append(err)
+                    stop.set()
+                    return
+                t1 = time.perf_counter()
+                with lock:
+                    tally.record(lk.owner, lk.key, reply.found, reply.probes, t1 - t0, t0 - started)
+                done += 1
+            if on_progress and done:
+                on_progress(done)
+
+    threads = [threading.Thread(target=worker, name=f"loadtest-{i}", daemon=True) for i in range(concurrency)]
+    for t in threads:
+        t.start()
+    try:
+        for t in threads:
+            while t.is_alive():
+                t.join(0.2)
+    except BaseException:  # Ctrl-C: let the workers finish their current lookup and stop
+        stop.set()
+        raise
+    elapsed = time.perf_counter() - started
+    if failure:
+        raise failure[0]
+    return elapsed
+
+
+# ---------------------------------------------------------------------------------------------
+# A whole run (used by `shardsieve loadtest` and `shardsieve demo`)
+# ---------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class LoadtestOptions:
+    keys: int = 10_000
+    reuse: bool = False
+    existing_share: float = 0.5
+    zipf_s: float = 0.0
+    concurrency: int = 8
+    count: int | None = None
+    duration_s: float | None = 10.0
+    value_size: int = 64
+    seed: int | None = None
+    ready_timeout_s: float = 60.0
+    routable_timeout_s: float = 120.0
+    confidence: float = 0.999
+
+
+@dataclass
+class LoadtestResult:
+    report: dict
+    times_s: list[float]
+    latency_ms: list[float]
+
+
+class Phases:
+    """Progress hooks; the CLI maps them to rich progress bars, tests leave them silent."""
+
+    def start(self, name: str, total: float | None) -> None: ...
+    def advance(self, amount: float) -> None: ...
+    def finish(self) -> None: ...
+
+
+def run_loadtest(client: CoordinatorClient, opts: LoadtestOptions, phases: Phases | None = None,
+                 stop: threading.Event | None = None) -> LoadtestResult:
+    """Seed (or reuse) keys, wait until they are routed, read, and build the report."""
+    from shardsieve.loadtest.workload import new_run_id
+
+    phases = phases or Phases()
+    rng = np.random.default_rng(opts.seed)
+    run_id = new_run_id() if opts.seed is None else f"s{opts.seed}"
+    view = wait_fleet_ready(client, opts.ready_timeout_s)
+    channels = NodeChannels(view, client.metadata)
+    try:
+        if opts.reuse:
+            phases.start("collecting existing keys", None)
+            keys, owners = scan_existing(channels, opts.keys, phases.advance)
+            phases.finish()
+            if not keys and opts.existing_share > 0:
+                raise ClientError("--reuse found no keys on the nodes: seed some first (drop --reuse)", EXIT_FAILURE)
+        else:
+            phases.start(f"seeding {opts.keys:,} keys on {len(view)} nodes", opts.keys)
+            keys, owners = seed_new(channels, list(view), opts.keys, rng, run_id, opts.value_size, phases.advance)
+            phases.finish()
+    finally:
+        channels.close()
+    if keys:
+        phases.start("waiting until the coordinator routes every key", len(keys))
+        wait_routable(client, keys, owners, opts.routable_timeout_s, on_progress=phases.advance)
+        phases.finish()
+        # Routing is complete; wait for the fleet to be in sync again so no node is listed as stale.
+        view = wait_fleet_ready(client, opts.ready_timeout_s)
+    fprs = {nid: info.predicted_fpr for nid, info in view.items()}
+    tally = Tally(fprs, confidence=opts.confidence)
+    stream = LookupStream(rng, keys, owners, run_id, hit_share=opts.existing_share if keys else 0.0,
+                          zipf_s=opts.zipf_s)
+    if opts.count is not None:
+        phases.start(f"{opts.count:,} lookups x {opts.concurrency} threads", opts.count)
+    else:
+        phases.start(f"reading for {opts.duration_s:g}s x {opts.concurrency} threads", None)
+    elapsed = run_reads(client, stream, tally, opts.concurrency, count=opts.count,
+                        duration_s=opts.duration_s if opts.count is None else None,
+                        on_progress=phases.advance, stop=stop)
+    phases.finish()
+    after = fleet_view(client)
+    wasted = {nid: max(0, after[nid].wasted_probes - info.wasted_probes)
+              for nid, info in view.items() if nid in after}
+    report = tally.build(elapsed, wasted)
+    report["stale_during_run"] = sorted(nid for nid, info in after.items() if info.stale or not info.connected)
+    report["seeded"] = 0 if opts.reuse else len(keys)
+    report["reused"] = len(keys) if opts.reuse else 0
+    report["popularity"] = f"zipf(s={opts.zipf_s:g})" if opts.zipf_s else "uniform"
+    report["existing_share"] = opts.existing_share
+    report["concurrency"] = opts.concurrency
+    return LoadtestResult(report, list(tally.series_t), list(tally.series_latency_ms))

@@ -1,0 +1,168 @@
+"""The bit-sliced routing index against per-node Bloom filter membership.
+
+Reference for every expected candidate list: the Bloom filter membership rule (a key may be
+in the set iff all k of its bits are set; Bloom, CACM 1970), evaluated node by node with
+shardsieve.bloom.BloomFilter.contains_batch, which shares no code with the index.
+"""
+
+from __future__ import annotations
+
+import threading
+
+import numpy as np
+import pytest
+
+from coordinator.routing_index import RoutingIndex, RoutingIndexError
+from shardsieve.bloom import BloomFilter, FilterDivergedError
+from shardsieve.geometry import Geometry
+from shardsieve.hashing import positions
+
+GEO = Geometry(bits=1 << 12, hashes=5)
+GEO_BIG = Geometry(bits=1 << 13, hashes=5)
+
+
+def _keys(prefix: str, n: int) -> list[bytes]:
+    return [f"{prefix}-{i}".encode() for i in range(n)]
+
+
+def _fleet(n_nodes: int, keys_per_node: int, geometry: Geometry = GEO) -> dict[str, BloomFilter]:
+    filters = {}
+    for i in range(n_nodes):
+        bf = BloomFilter(geometry)
+        bf.add_batch(_keys(f"n{i}", keys_per_node))
+        filters[f"node-{i}"] = bf
+    return filters
+
+
+def _reference(filters: dict[str, BloomFilter], keys: list[bytes]) -> list[set[str]]:
+    hits = {nid: bf.contains_batch(keys) for nid, bf in filters.items()}
+    return [{nid for nid in filters if hits[nid][i]} for i in range(len(keys))]
+
+
+@pytest.mark.parametrize("n_nodes", [1, 3, 8, 9, 16, 17, 33, 64, 65, 130])
+def test_locate_matches_per_node_membership(n_nodes: int) -> None:
+    filters = _fleet(n_nodes, 40)
+    index = RoutingIndex()
+    for nid, bf in filters.items():
+        index.install(nid, bf.geometry, bf.to_bytes())
+    probe = _keys("n0", 40) + _keys(f"n{n_nodes - 1}", 40) + _keys("absent", 300)
+    got = index.locate(probe, positions)
+    assert [set(c) for c in got.lists()] == _reference(filters, probe)
+    # No false negatives: each node's own keys list it (Bloom 1970: inserted keys always test positive).
+    assert all("node-0" in got.for_key(i) for i in range(40))
+
+
+def test_groups_by_geometry_and_moves_between_groups() -> None:
+    filters = _fleet(4, 30)
+    big = BloomFilter(GEO_BIG)
+    big.add_batch(_keys("big", 30))
+    filters["node-big"] = big
+    index = RoutingIndex()
+    for nid, bf in filters.items():
+        index.install(nid, bf.geometry, bf.to_bytes())
+    assert index.group_sizes() == {GEO: 4, GEO_BIG: 1}
+    probe = _keys("big", 30) + _keys("n2", 30) + _keys("none", 200)
+    assert [set(c) for c in index.locate(probe, positions).lists()] == _reference(filters, probe)
+
+    # node-1 is rebuilt into the larger geometry: it leaves its old group atomically.
+    moved = BloomFilter(GEO_BIG)
+    moved.add_batch(_keys("n1", 30))
+    index.install("node-1", GEO_BIG, moved.to_bytes())
+    filters["node-1"] = moved
+    assert index.group_sizes() == {GEO: 3, GEO_BIG: 2}
+    probe = _keys("n1", 30) + _keys("none", 200)
+    assert [set(c) for c in index.locate(probe, positions).lists()] == _reference(filters, probe)
+
+
+def test_apply_delta_in_place_equals_new_filter() -> None:
+    filters = _fleet(5, 20)
+    index = RoutingIndex()
+    for nid, bf in filters.items():
+        index.install(nid, bf.geometry, bf.to_bytes())
+    before = np.frombuffer(np.unpackbits(np.frombuffer(filters["node-2"].to_bytes(), np.uint8),
+                                         bitorder="little").tobytes(), np.uint8)
+    after_bf = BloomFilter(GEO)
+    after_bf.add_batch(_keys("n2", 5) + _keys("extra", 25))   # some keys gone, some new
+    after = np.unpackbits(np.frombuffer(after_bf.to_bytes(), np.uint8), bitorder="little")
+    set_pos = np.nonzero((before == 0) & (after == 1))[0]
+    cleared = np.nonzero((before == 1) & (after == 0))[0]
+    assert set_pos.size and cleared.size
+    index.apply("node-2", set_pos, cleared)
+    filters["node-2"] = after_bf
+    np.testing.assert_array_equal(index.column("node-2"), after)
+    probe = _keys("extra", 25) + _keys("n2", 20) + _keys("none", 200)
+    assert [set(c) for c in index.locate(probe, positions).lists()] == _reference(filters, probe)
+
+
+def test_bad_input_changes_nothing() -> None:
+    filters = _fleet(3, 20)
+    index = RoutingIndex()
+    for nid, bf in filters.items():
+        index.install(nid, bf.geometry, bf.to_bytes())
+    col = index.column("node-1").copy()
+    with pytest.raises(RoutingIndexError, match="outside the filter"):
+        index.apply("node-1", [1, 2, GEO.bits], [])
+    with pytest.raises(RoutingIndexError, match="bytes"):
+        index.install("node-1", GEO, b"\x00" * 10)
+    already_set = int(np.nonzero(col)[0][0])
+    already_clear = int(np.nonzero(col == 0)[0][0])
+    with pytest.raises(FilterDivergedError, match="already 1"):
+        index.apply("node-1", [already_clear, already_set], [])
+    with pytest.raises(FilterDivergedError, match="already 0"):
+        index.apply("node-1", [], [already_set, already_clear])
+    with pytest.raises(RoutingIndexError, match="install a snapshot first"):
+        index.apply("node-unknown", [1], [])
+    np.testing.assert_array_equal(index.column("node-1"), col)
+
+
+def test_remove_frees_slot_and_drops_empty_group() -> None:
+    filters = _fleet(9, 10)  # 9 nodes: a uint16 group
+    index = RoutingIndex()
+    for nid, bf in filters.items():
+        index.install(nid, bf.geometry, bf.to_bytes())
+    assert index.remove("node-4") and not index.remove("node-4")
+    probe = _keys("n4", 10)
+    assert all("node-4" not in c for c in index.locate(probe, positions).lists())
+    before = index.memory_bytes()
+    index.install("node-new", GEO, filters["node-4"].to_bytes())   # reuses the freed slot
+    assert index.memory_bytes() == before
+    assert all("node-new" in c for c in index.locate(probe, positions).lists())
+    for nid in list(index.nodes()):
+        index.remove(nid)
+    assert index.memory_bytes() == 0 and index.group_sizes() == {}
+
+
+@pytest.mark.parametrize("n_nodes", [8, 16, 32, 64, 256])
+def test_memory_is_m_over_8_per_node_at_full_width(n_nodes: int) -> None:
+    # A filter of m bits needs m/8 bytes (one bit per position, common practice); a full row of
+    # the bit-sliced layout holds exactly one bit per node per position.
+    index = RoutingIndex()
+    column = bytes(GEO.byte_size)
+    for i in range(n_nodes):
+        index.install(f"node-{i}", GEO, column)
+    assert index.memory_bytes() == n_nodes * GEO.bits // 8
+
+
+def test_install_is_atomic_for_concurrent_lookups() -> None:
+    # Two filters that both hold "shared", in different geometries: whichever is installed, and
+    # while the node moves between groups, "shared" must list the node.
+    a, b = BloomFilter(GEO), BloomFilter(GEO_BIG)
+    a.add_batch([b"shared"] + _keys("a", 200))
+    b.add_batch([b"shared"] + _keys("b", 200))
+    index = RoutingIndex()
+    index.install("node-x", GEO, a.to_bytes())
+    stop = threading.Event()
+
+    def swapper() -> None:
+        while not stop.is_set():
+            index.install("node-x", GEO_BIG, b.to_bytes())
+            index.install("node-x", GEO, a.to_bytes())
+
+    t = threading.Thread(target=swapper)
+    t.start()
+    try:
+        misses = sum("node-x" not in index.locate([b"shared"], positions).for_key(0) for _ in range(2000))
+    finally:
+        stop.set()
+        t.join()
+    assert misses == 0
