@@ -24,11 +24,11 @@ from coordinator.admin_service import AdminService
 from coordinator.fleet import Fleet
 from coordinator.metrics import Metrics
 from coordinator.probes import Prober
-from coordinator.router_service import Router, RouterService
+from coordinator.router_service import Router, RouterService, add_router_service
 from coordinator.saturation import Decision, RebuildPlan, SaturationMonitor
 from coordinator.settings import CoordinatorSettings
 from coordinator.sync_service import SyncService
-from shardsieve.v1 import admin_pb2_grpc, routing_pb2_grpc, sync_pb2_grpc
+from shardsieve.v1 import admin_pb2_grpc, sync_pb2_grpc
 
 log = logging.getLogger("shardsieve.coordinator")
 
@@ -93,7 +93,7 @@ class CoordinatorDaemon:
                                                              thread_name_prefix="grpc"),
                                   options=[("grpc.max_receive_message_length", 64 << 20),
                                            ("grpc.max_send_message_length", 64 << 20)])
-        routing_pb2_grpc.add_RouterServicer_to_server(RouterService(self.router), self.server)
+        add_router_service(RouterService(self.router), self.server)
         admin_pb2_grpc.add_AdminServicer_to_server(self.admin, self.server)
         sync_pb2_grpc.add_FilterSyncServicer_to_server(self.sync, self.server)
         self.health = health.HealthServicer()

@@ -71,6 +71,32 @@ class NodeRecord:
         return float(self.fill ** self.geometry.hashes) if self.geometry else 0.0
 
 
+def varint(value: int) -> bytes:
+    """Protobuf base-128 varint (protobuf encoding guide, "Base 128 Varints")."""
+    out = bytearray()
+    while True:
+        byte = value & 0x7F
+        value >>= 7
+        if value:
+            out.append(byte | 0x80)
+        else:
+            out.append(byte)
+            return bytes(out)
+
+
+def _cand_field(cache: dict[tuple[str, str, bool, bool], bytes], node_id: str, address: str, stale: bool,
+                hinted: bool) -> bytes:
+    """`candidates` field (number 1, length-delimited) of a LocateReply holding one Candidate."""
+    key = (node_id, address, stale, hinted)
+    field_bytes = cache.get(key)
+    if field_bytes is None:
+        from shardsieve.v1 import routing_pb2
+
+        body = routing_pb2.Candidate(node_id=node_id, address=address, stale=stale, hinted=hinted).SerializeToString()
+        field_bytes = cache[key] = b"\x0a" + varint(len(body)) + body
+    return field_bytes
+
+
 @dataclass(frozen=True)
 class Candidate:
     node_id: str
@@ -95,6 +121,7 @@ class Fleet:
         self.decisions: collections.deque[Decision] = collections.deque(maxlen=max_decisions)
         self.nodes: dict[str, NodeRecord] = {}
         self.state_dir = state_dir
+        self._wire_cache: dict[tuple[str, str, bool, bool], bytes] = {}
         for node_id, address in (expected or {}).items():
             self.nodes[node_id] = NodeRecord(node_id, address)
         if state_dir is not None:
@@ -202,25 +229,28 @@ class Fleet:
             return "syncing"
         if rec.awaiting is not None:
             return "syncing"
-        if rec.node_id in self.monitor.in_flight or rec.rebuild_phase in ("requested", "scanning", "streaming",
-                                                                           "awaiting-verify"):
+        # The node's latest heartbeat says whether it is rebuilding ("" when idle).
+        if rec.node_id in self.monitor.in_flight or rec.stats.get("rebuild_phase"):
             return "rebuilding"
         if now - rec.last_progress > self.policy.stale_after_s:
             return "stale"
         return "in-sync"
 
     # -- lookups -----------------------------------------------------------------------------------
-    def candidates(self, keys: Sequence[bytes], now: float, mode: str | None = None) -> list[list[Candidate]]:
-        """Candidates per key under the freshness contract (see module docstring)."""
+    def _lookup(self, keys: Sequence[bytes], now: float, mode: str | None) -> tuple[Any, Any, set[str], list[str], dict[str, str]]:
         found = self.index.locate(keys, hash_positions)
         hinted = self.hints.lookup_many(keys)
         with self._lock:
             policy = self.policy
             mode = mode or policy.mode
-            recs = self.nodes
-            stale_ids = {n for n, r in recs.items() if self.is_stale(r, now, policy)}
-            addresses = {n: r.address for n, r in recs.items()}
+            stale_ids = {n for n, r in self.nodes.items() if self.is_stale(r, now, policy)}
+            addresses = {n: r.address for n, r in self.nodes.items()}
         stale_list = sorted(stale_ids) if mode == "safe" else []
+        return found, hinted, stale_ids, stale_list, addresses
+
+    def candidates(self, keys: Sequence[bytes], now: float, mode: str | None = None) -> list[list[Candidate]]:
+        """Candidates per key under the freshness contract (see module docstring)."""
+        found, hinted, stale_ids, stale_list, addresses = self._lookup(keys, now, mode)
         out: list[list[Candidate]] = []
         offsets = found.offsets.tolist()
         names = found.nodes
@@ -238,6 +268,83 @@ class Fleet:
                 row.extend(Candidate(n, addresses.get(n, ""), True, False, False) for n in stale_list if n not in seen)
             out.append(row)
         return out
+
+    def candidates_wire(self, keys: Sequence[bytes], now: float, mode: str | None = None) -> tuple[list[bytes], int]:
+        """The same candidate lists, each already encoded as a LocateReply message (protobuf wire
+        format), plus the total number of candidates. Saves building a Python object per
+        candidate on the LocateBatch path; the encoding of each distinct Candidate is cached."""
+        found, hinted, stale_ids, stale_list, addresses = self._lookup(keys, now, mode)
+        enc = self._wire_cache
+        offsets = found.offsets.tolist()
+        names = found.nodes
+        out: list[bytes] = []
+        total = 0
+        extras_enc = b"".join(_cand_field(enc, n, addresses.get(n, ""), True, False) for n in stale_list)
+        stale_set = set(stale_list)
+        for i in range(len(keys)):
+            a, b = offsets[i], offsets[i + 1]
+            hint_row = hinted[i] if hinted is not None else None
+            if not stale_list and not hint_row:
+                if b - a == 1:
+                    n = names[a]
+                    out.append(_cand_field(enc, n, addresses.get(n, ""), n in stale_ids, False))
+                else:
+                    out.append(b"".join(_cand_field(enc, n, addresses.get(n, ""), n in stale_ids, False)
+                                        for n in names[a:b]))
+                total += b - a
+                continue
+            listed = names[a:b]
+            seen = set(listed)
+            parts = [_cand_field(enc, n, addresses.get(n, ""), n in stale_ids, False) for n in listed]
+            for n in hint_row or ():
+                if n not in seen:
+                    parts.append(_cand_field(enc, n, addresses.get(n, ""), n in stale_ids, True))
+                    seen.add(n)
+            if stale_list:
+                if seen & stale_set:
+                    parts.extend(_cand_field(enc, n, addresses.get(n, ""), True, False)
+                                 for n in stale_list if n not in seen)
+                    seen |= stale_set
+                else:
+                    parts.append(extras_enc)
+                    seen |= stale_set
+            total += len(seen)
+            out.append(b"".join(parts))
+        return out, total
+
+    def locate_batch_wire(self, keys: Sequence[bytes], now: float, mode: str | None = None) -> tuple[bytes, int]:
+        """A whole LocateBatchReply in protobuf wire format, and the number of candidates.
+
+        Fast path for the common case (no stale node listed, no hints): each key's reply is the
+        framed field of its one candidate, looked up from a per-call table of the nodes.
+        """
+        found, hinted, stale_ids, stale_list, addresses = self._lookup(keys, now, mode)
+        if stale_list or hinted is not None:
+            replies, total = self.candidates_wire(keys, now, mode)
+            return b"".join(b"\x0a" + varint(len(r)) + r for r in replies), total
+        enc = self._wire_cache
+        framed: dict[str, bytes] = {}
+        for n in set(found.nodes):
+            f = _cand_field(enc, n, addresses.get(n, ""), n in stale_ids, False)
+            framed[n] = b"\x0a" + varint(len(f)) + f
+        counts = np.diff(found.offsets)
+        names = found.nodes
+        if counts.size and int(counts.max()) <= 1:
+            parts = [b"\x0a\x00"] * len(keys)
+            where = np.flatnonzero(counts).tolist()
+            for i, n in zip(where, names):
+                parts[i] = framed[n]
+            return b"".join(parts), len(names)
+        offsets = found.offsets.tolist()
+        parts = []
+        for i in range(len(keys)):
+            a, b = offsets[i], offsets[i + 1]
+            if b - a == 1:
+                parts.append(framed[names[a]])
+            else:
+                body = b"".join(_cand_field(enc, n, addresses.get(n, ""), n in stale_ids, False) for n in names[a:b])
+                parts.append(b"\x0a" + varint(len(body)) + body)
+        return b"".join(parts), len(names)
 
     def indexed_nodes(self) -> list[str]:
         return self.index.nodes()

@@ -96,6 +96,12 @@ class Metrics:
             for c in counts[::step]:
                 self.candidates.observe(c)
 
+    def observe_locate_total(self, kind: str, keys: int, candidates: int) -> None:
+        """Batch path: count the keys and record the mean candidates per key once per batch."""
+        self.lookups.labels(kind).inc(keys)
+        if keys:
+            self.candidates.observe(candidates / keys)
+
     def observe_probes(self, results: Sequence[Any]) -> None:
         for r in results:
             if not r.reached:

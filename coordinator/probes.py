@@ -50,13 +50,18 @@ class Prober:
         with self._lock:
             entry = self._stubs.get(address)
             if entry is None:
-                # Short reconnect backoff: gRPC's default grows to minutes, so a node restarted after a
-                # failed probe would be reported unreachable long after it serves again.
+                # Short reconnect backoff and DNS re-resolution: gRPC's defaults (backoff growing to
+                # minutes, 30 s between DNS lookups) would keep a restarted node, possibly at a new
+                # address (a replaced container), reported unreachable long after it serves again.
                 channel = grpc.insecure_channel(address, options=[
                     ("grpc.enable_retries", 0),
                     ("grpc.initial_reconnect_backoff_ms", 100),
                     ("grpc.min_reconnect_backoff_ms", 100),
                     ("grpc.max_reconnect_backoff_ms", 1000),
+                    ("grpc.dns_min_time_between_resolutions_ms", 500),
+                    # Own subchannels: a fresh channel must not inherit a failed connection state
+                    # from a forgotten one to the same address (gRPC shares them process-wide).
+                    ("grpc.use_local_subchannel_pool", 1),
                 ])
                 entry = self._stubs[address] = (channel, storage_pb2_grpc.NodeStorageStub(channel))
             return entry[1]
@@ -64,11 +69,23 @@ class Prober:
     def call(self, node_id: str, address: str, method: str, request: Any, timeout: float) -> ProbeResult:
         if not address:
             return ProbeResult(node_id, error=_NoAddress(node_id))
+        stub = self.stub(address)
         try:
-            reply = getattr(self.stub(address), method)(request, timeout=timeout)
+            reply = getattr(stub, method)(request, timeout=timeout)
             return ProbeResult(node_id, reply=reply)
         except grpc.RpcError as exc:
+            if exc.code() == grpc.StatusCode.UNAVAILABLE:
+                self._forget(address, stub)
             return ProbeResult(node_id, error=exc)
+
+    def _forget(self, address: str, stub: storage_pb2_grpc.NodeStorageStub) -> None:
+        """Drop an unreachable node's cached channel, so the next probe resolves its name afresh
+        (a restarted node may come back at another IP; a cached channel would keep the old one).
+        Not closed here: calls of other threads may still use it; it closes when collected."""
+        with self._lock:
+            entry = self._stubs.get(address)
+            if entry is not None and entry[1] is stub:
+                del self._stubs[address]
 
     def ask_all(self, targets: Sequence[tuple[str, str]], method: str, request: Any, timeout: float,
                 on_all_done: Callable[[list[ProbeResult]], None] | None = None) -> Iterator[ProbeResult]:

@@ -18,7 +18,7 @@ import grpc
 from coordinator.accounting import ProbeOutcome
 from coordinator.fleet import Candidate, Fleet
 from coordinator.probes import ProbeResult, Prober
-from shardsieve.v1 import routing_pb2, routing_pb2_grpc, storage_pb2
+from shardsieve.v1 import routing_pb2, storage_pb2
 
 log = logging.getLogger("shardsieve.coordinator.router")
 
@@ -64,6 +64,30 @@ class Router:
         if self.metrics is not None:
             self.metrics.observe_locate(kind, [len(c) for c in result])  # type: ignore[attr-defined]
         return result
+
+    def _check_batch(self, keys: list[bytes]) -> None:
+        if len(keys) > MAX_BATCH_KEYS:
+            raise RouterError(grpc.StatusCode.INVALID_ARGUMENT,
+                              f"batch of {len(keys)} keys exceeds the limit of {MAX_BATCH_KEYS}; split it")
+        if keys and (min(map(len, keys)) == 0 or max(map(len, keys)) > MAX_KEY_BYTES):
+            for i, key in enumerate(keys):
+                _check_key(key, f"key #{i}")
+
+    def locate_wire(self, keys: list[bytes]) -> list[bytes]:
+        """Like locate, each key's candidates encoded as a LocateReply message."""
+        self._check_batch(keys)
+        replies, total = self.fleet.candidates_wire(keys, self.clock())
+        if self.metrics is not None:
+            self.metrics.observe_locate_total("locate", len(keys), total)  # type: ignore[attr-defined]
+        return replies
+
+    def locate_batch_wire(self, keys: list[bytes]) -> bytes:
+        """A whole LocateBatchReply, encoded (the gRPC LocateBatch path)."""
+        self._check_batch(keys)
+        reply, total = self.fleet.locate_batch_wire(keys, self.clock())
+        if self.metrics is not None:
+            self.metrics.observe_locate_total("locate", len(keys), total)  # type: ignore[attr-defined]
+        return reply
 
     # -- probing with accounting ----------------------------------------------------------------------
     def _probe_get(self, key: bytes, cands: list[Candidate], deadline_s: float) -> tuple[ProbeResult | None, list[ProbeResult]]:
@@ -171,12 +195,7 @@ class Router:
         return RouterError(grpc.StatusCode.UNAVAILABLE, f"{op} to node {result.describe_error()}; not acknowledged")
 
 
-def _candidates_proto(cands: list[Candidate]) -> routing_pb2.LocateReply:
-    return routing_pb2.LocateReply(candidates=[
-        routing_pb2.Candidate(node_id=c.node_id, address=c.address, stale=c.stale, hinted=c.hinted) for c in cands])
-
-
-class RouterService(routing_pb2_grpc.RouterServicer):
+class RouterService:
     def __init__(self, router: Router) -> None:
         self.router = router
 
@@ -189,14 +208,13 @@ class RouterService(routing_pb2_grpc.RouterServicer):
             context.abort(grpc.StatusCode.RESOURCE_EXHAUSTED, str(exc))
         raise AssertionError("unreachable")
 
-    def Locate(self, request: routing_pb2.LocateRequest, context: grpc.ServicerContext) -> routing_pb2.LocateReply:
-        return self._run(context, lambda: _candidates_proto(self.router.locate([request.key])[0]))  # type: ignore[return-value]
+    # Locate and LocateBatch answer with LocateReply / LocateBatchReply already in protobuf wire
+    # format (bytes); `add_router_service` registers a serializer that passes bytes through.
+    def Locate(self, request: routing_pb2.LocateRequest, context: grpc.ServicerContext) -> bytes:
+        return self._run(context, lambda: self.router.locate_wire([request.key])[0])  # type: ignore[return-value]
 
-    def LocateBatch(self, request: routing_pb2.LocateBatchRequest, context: grpc.ServicerContext) -> routing_pb2.LocateBatchReply:
-        def run() -> routing_pb2.LocateBatchReply:
-            results = self.router.locate(list(request.keys))
-            return routing_pb2.LocateBatchReply(results=[_candidates_proto(c) for c in results])
-        return self._run(context, run)  # type: ignore[return-value]
+    def LocateBatch(self, request: routing_pb2.LocateBatchRequest, context: grpc.ServicerContext) -> bytes:
+        return self._run(context, lambda: self.router.locate_batch_wire(list(request.keys)))  # type: ignore[return-value]
 
     def Read(self, request: routing_pb2.ReadRequest, context: grpc.ServicerContext) -> routing_pb2.ReadReply:
         return self._run(context, lambda: self.router.read(request.key, request.deadline_ms))  # type: ignore[return-value]
@@ -206,3 +224,25 @@ class RouterService(routing_pb2_grpc.RouterServicer):
 
     def Remove(self, request: routing_pb2.RemoveRequest, context: grpc.ServicerContext) -> routing_pb2.RemoveReply:
         return self._run(context, lambda: self.router.remove(request.key))  # type: ignore[return-value]
+
+
+def _passthrough(serialize: Callable[[object], bytes]) -> Callable[[object], bytes]:
+    def serializer(reply: object) -> bytes:
+        return reply if isinstance(reply, bytes) else serialize(reply)
+    return serializer
+
+
+def add_router_service(service: RouterService, server: grpc.Server) -> None:
+    """Register the Router service (like the generated add_RouterServicer_to_server, except that
+    Locate/LocateBatch may return pre-encoded bytes)."""
+    def handler(method: Callable[..., object], request_cls: type, reply_cls: type) -> grpc.RpcMethodHandler:
+        return grpc.unary_unary_rpc_method_handler(method, request_deserializer=request_cls.FromString,
+                                                   response_serializer=_passthrough(reply_cls.SerializeToString))
+    handlers = {
+        "Locate": handler(service.Locate, routing_pb2.LocateRequest, routing_pb2.LocateReply),
+        "LocateBatch": handler(service.LocateBatch, routing_pb2.LocateBatchRequest, routing_pb2.LocateBatchReply),
+        "Read": handler(service.Read, routing_pb2.ReadRequest, routing_pb2.ReadReply),
+        "Write": handler(service.Write, routing_pb2.WriteRequest, routing_pb2.WriteReply),
+        "Remove": handler(service.Remove, routing_pb2.RemoveRequest, routing_pb2.RemoveReply),
+    }
+    server.add_generic_rpc_handlers((grpc.method_handlers_generic_handler("shardsieve.v1.Router", handlers),))

@@ -153,22 +153,42 @@ class _Group:
     # -- lookups -----------------------------------------------------------------------------
     def match(self, positions: npt.NDArray[np.uint64]) -> npt.NDArray[np.unsignedinteger]:
         """AND of the k rows per key: (n, words) words whose set bits are candidate slots."""
-        rows = self.rows
-        acc = rows[positions[:, 0]]
-        for j in range(1, positions.shape[1]):
-            acc &= rows[positions[:, j]]
+        cols = np.ascontiguousarray(positions.T).astype(np.intp, copy=False)   # (k, n), one gather per hash
+        if self.words == 1:
+            rows = self.rows.reshape(-1)
+            acc = np.take(rows, cols[0])
+            for j in range(1, cols.shape[0]):
+                acc &= np.take(rows, cols[j])
+            return acc.reshape(-1, 1)
+        acc = np.take(self.rows, cols[0], axis=0)
+        for j in range(1, cols.shape[0]):
+            acc &= np.take(self.rows, cols[j], axis=0)
         return acc
 
     def decode(self, acc: npt.NDArray[np.unsignedinteger]) -> tuple[npt.NDArray[np.intp], npt.NDArray[np.intp]]:
-        """(key index, slot) pairs of every set bit in the AND results, sorted by key."""
+        """(key index, slot) pairs of every set bit in the AND results, sorted by key.
+
+        Most non-zero words hold exactly one bit (one candidate): its index is log2 of the word,
+        exact in float64 for every power of two below 2^64. Words with several bits are unpacked.
+        """
         keys, words = np.nonzero(acc)
         if keys.size == 0:
             return keys, words
         values = acc[keys, words]
-        bits = np.unpackbits(values.view(np.uint8).reshape(values.size, self.dtype.itemsize),
-                             axis=1, bitorder="little")
+        bpw = self.bits_per_word
+        single = (values & (values - self.dtype.type(1))) == 0
+        if single.all():
+            return keys, words * bpw + np.log2(values.astype(np.float64)).astype(np.intp)
+        multi = np.flatnonzero(~single)
+        one = np.flatnonzero(single)
+        mv = values[multi]
+        bits = np.unpackbits(mv.view(np.uint8).reshape(mv.size, self.dtype.itemsize), axis=1, bitorder="little")
         which, bit = np.nonzero(bits)
-        return keys[which], words[which] * self.bits_per_word + bit
+        all_keys = np.concatenate([keys[one], keys[multi][which]])
+        all_slots = np.concatenate([words[one] * bpw + np.log2(values[one].astype(np.float64)).astype(np.intp),
+                                    words[multi][which] * bpw + bit])
+        order = np.argsort(all_keys, kind="stable")
+        return all_keys[order], all_slots[order]
 
     @property
     def nbytes(self) -> int:

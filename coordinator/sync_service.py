@@ -44,6 +44,7 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
         self._ids = itertools.count(1)
         self._outbox: dict[str, queue.Queue[Any]] = {}
         self._stopping = threading.Event()
+        self._snapshots_seen: dict[str, int] = {}
 
     # -- called by the daemon ---------------------------------------------------------------------
     def send_rebuild(self, node_id: str, capacity: int, target_fpr: float, reason: str) -> None:
@@ -105,6 +106,11 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
                         self.metrics.delta_bytes.inc(len(msg.delta.payload))
                     if view is not None:
                         self.fleet.observe(view)
+                        if self.metrics is not None:
+                            installed = view.counters.snapshots_installed
+                            if installed > self._snapshots_seen.get(node_id, 0):
+                                self.metrics.snapshots.inc(installed - self._snapshots_seen.get(node_id, 0))
+                                self._snapshots_seen[node_id] = installed
                     for m in out:
                         outbox.put(m)
                 outbox.put(_END)

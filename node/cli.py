@@ -8,15 +8,16 @@ from pathlib import Path
 import click
 
 from node.settings import ENV_PREFIX, SECTION, NodeSettings
-from shardsieve.config import ConfigError, describe, load_settings
+from shardsieve.config import ConfigError, load_settings
 
-_EPILOG = ("Every setting can also come from the [node] table of the --config TOML file (key as written "
-           "below) or from an environment variable; flags win over the environment, which wins over the "
-           "file, which wins over the default.\n\n"
+_EPILOG = ("Every setting can also come from the [node] table of the --config TOML file (keys are the "
+           "option names without the leading dashes, e.g. push-interval-ms = 20) or from the environment "
+           "variable shown with each option; flags win over the environment, which wins over the file, "
+           "which wins over the default.\n\n"
            "Durability: with sync-level 'full' (default) a write is acknowledged only after SQLite "
            "fsynced its write-ahead log, so it survives a process kill and a power loss or OS crash; "
-           "'normal' survives a process kill but may lose the last acknowledged writes on power loss.\n\n"
-           "Settings:\n\n" + "\n\n".join(describe(NodeSettings, ENV_PREFIX).splitlines()))
+           "'normal' survives a process kill but may lose the last acknowledged writes on power loss. "
+           "List settings (coordinator) take a comma-separated list in the environment.")
 
 
 def _help(name: str) -> str:
@@ -26,37 +27,43 @@ def _help(name: str) -> str:
         if f.name == name:
             default = f.default if f.default is not dataclasses.MISSING else f.default_factory()  # type: ignore[misc]
             env = f"{ENV_PREFIX}{name.upper()}"
-            return f"{f.metadata['help']} [default: {default!r}; env {env}]"
+            if isinstance(default, list):
+                shown = ", ".join(default) or "none"
+            elif isinstance(default, str):
+                shown = repr(default) if default else "empty"
+            else:
+                shown = str(default)
+            return f"{f.metadata['help']} [default: {shown}; env {env}]"
     raise KeyError(name)
 
 
 @click.command("node", epilog=_EPILOG, context_settings={"max_content_width": 110})
 @click.option("--config", "config_file", type=click.Path(path_type=Path), default=None,
               help="TOML file whose [node] table holds settings (flags and environment win).")
-@click.option("--id", "id_", default=None, help=_help("id"))
-@click.option("--listen", default=None, help=_help("listen"))
-@click.option("--advertise", default=None, help=_help("advertise"))
-@click.option("--data", default=None, help=_help("data"))
-@click.option("--coordinator", multiple=True, help=_help("coordinator"))
-@click.option("--capacity", default=None, help=_help("capacity"))
-@click.option("--fpr", default=None, help=_help("fpr"))
-@click.option("--seed", default=None, help=_help("seed"))
-@click.option("--metrics-port", default=None, help=_help("metrics_port"))
-@click.option("--push-interval-ms", default=None, help=_help("push_interval_ms"))
-@click.option("--push-threshold", default=None, help=_help("push_threshold"))
-@click.option("--heartbeat-ms", default=None, help=_help("heartbeat_ms"))
-@click.option("--sync-level", default=None, help=_help("sync_level"))
-@click.option("--store", default=None, help=_help("store"))
-@click.option("--max-key-bytes", default=None, help=_help("max_key_bytes"))
-@click.option("--max-value-bytes", default=None, help=_help("max_value_bytes"))
-@click.option("--max-batch", default=None, help=_help("max_batch"))
-@click.option("--scan-batch", default=None, help=_help("scan_batch"))
-@click.option("--history-limit", default=None, help=_help("history_limit"))
-@click.option("--reconnect-min-ms", default=None, help=_help("reconnect_min_ms"))
-@click.option("--reconnect-max-ms", default=None, help=_help("reconnect_max_ms"))
-@click.option("--log-level", default=None, help=_help("log_level"))
-@click.option("--log-format", default=None, help=_help("log_format"))
-@click.option("--grpc-workers", default=None, help=_help("grpc_workers"))
+@click.option("--id", "id_", default=None, metavar="ID", help=_help("id"))
+@click.option("--listen", default=None, metavar="HOST:PORT", help=_help("listen"))
+@click.option("--advertise", default=None, metavar="HOST:PORT", help=_help("advertise"))
+@click.option("--data", default=None, metavar="DIR", help=_help("data"))
+@click.option("--coordinator", multiple=True, metavar="HOST:PORT", help=_help("coordinator"))
+@click.option("--capacity", default=None, metavar="N", help=_help("capacity"))
+@click.option("--fpr", default=None, metavar="P", help=_help("fpr"))
+@click.option("--seed", default=None, metavar="N", help=_help("seed"))
+@click.option("--metrics-port", default=None, metavar="N", help=_help("metrics_port"))
+@click.option("--push-interval-ms", default=None, metavar="N", help=_help("push_interval_ms"))
+@click.option("--push-threshold", default=None, metavar="N", help=_help("push_threshold"))
+@click.option("--heartbeat-ms", default=None, metavar="N", help=_help("heartbeat_ms"))
+@click.option("--sync-level", default=None, metavar="full|normal", help=_help("sync_level"))
+@click.option("--store", default=None, metavar="sqlite|memory", help=_help("store"))
+@click.option("--max-key-bytes", default=None, metavar="N", help=_help("max_key_bytes"))
+@click.option("--max-value-bytes", default=None, metavar="N", help=_help("max_value_bytes"))
+@click.option("--max-batch", default=None, metavar="N", help=_help("max_batch"))
+@click.option("--scan-batch", default=None, metavar="N", help=_help("scan_batch"))
+@click.option("--history-limit", default=None, metavar="N", help=_help("history_limit"))
+@click.option("--reconnect-min-ms", default=None, metavar="N", help=_help("reconnect_min_ms"))
+@click.option("--reconnect-max-ms", default=None, metavar="N", help=_help("reconnect_max_ms"))
+@click.option("--log-level", default=None, metavar="LEVEL", help=_help("log_level"))
+@click.option("--log-format", default=None, metavar="json|text", help=_help("log_format"))
+@click.option("--grpc-workers", default=None, metavar="N", help=_help("grpc_workers"))
 def node_command(config_file: Path | None, id_: str | None, **flags: object) -> None:
     """Run a storage node: serve puts/gets/deletes from a durable SQLite store, keep a counting
     Bloom filter of its keys exact, and stream the filter's changes to every coordinator.

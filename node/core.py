@@ -24,7 +24,7 @@ import time
 from dataclasses import dataclass, field
 from typing import Callable, Sequence
 
-from node.store import Store
+from node.store import Store, StoreError
 from shardsieve import hashing
 from shardsieve.bloom import CountingBloomFilter
 from shardsieve.geometry import Geometry, geometry_for
@@ -41,6 +41,10 @@ META_FPR = "target_fpr"
 
 class InvalidInput(ValueError):
     """A request breaks a limit (empty key, key/value too large, batch too long); nothing was written."""
+
+
+class LoadCancelled(RuntimeError):
+    """A stop was requested while the filter was being loaded from the store."""
 
 
 class NotReady(RuntimeError):
@@ -172,8 +176,10 @@ class NodeCore:
         return self.sync
 
     # ------------------------------------------------------------------ start-up
-    def load(self, progress: Callable[[int, float], None] | None = None) -> None:
-        """Scan the store into a fresh filter, persist a new epoch, then become ready."""
+    def load(self, progress: Callable[[int, float], None] | None = None,
+             cancel: threading.Event | None = None) -> None:
+        """Scan the store into a fresh filter, persist a new epoch, then become ready.
+        Raises LoadCancelled (nothing persisted) when `cancel` is set during the scan."""
         started = time.monotonic()
         capacity, target_fpr = self._initial
         geometry = geometry_for(capacity, target_fpr, self.seed)
@@ -183,6 +189,8 @@ class NodeCore:
         with self.lock:
             fresh = CountingBloomFilter(geometry)
             while True:
+                if cancel is not None and cancel.is_set():
+                    raise LoadCancelled(f"stopped while loading the filter ({total} keys scanned)")
                 keys = self.store.scan(after, 20_000)
                 if not keys:
                     break
@@ -276,10 +284,6 @@ class NodeCore:
                     ops, self._queue = self._queue, []
                 try:
                     results = self.store.write_batch([(o.kind, o.payload) for o in ops])
-                except BaseException as exc:
-                    for o in ops:
-                        o.error, o.done = exc, True
-                else:
                     writes = deletes = 0
                     for o, flags in zip(ops, results):      # the commit returned: durable
                         if o.kind == "put":
@@ -291,15 +295,33 @@ class NodeCore:
                         if changed:
                             self._apply(changed, add=o.kind == "put")
                         o.result = flags
-                    epoch, sequence = self._sync().pending_sequence
+                    epoch, sequence = self._stamp()
                     for o in ops:
                         o.epoch, o.sequence, o.done = epoch, sequence, True
                     with self._counter_lock:
                         self.counters.writes += writes
                         self.counters.deletes += deletes
+                except BaseException as exc:
+                    if not isinstance(exc, StoreError):
+                        log.exception("write failed after the store call", extra={"ops": len(ops)})
+                    for o in ops:   # every op of the group gets the error (a StoreError: nothing applied)
+                        if not o.done:
+                            o.error, o.done = exc, True
         if op.error is not None:
             raise op.error
         return op.result, op.epoch, op.sequence
+
+    def _stamp(self) -> tuple[int, int]:
+        """(epoch, sequence) a coordinator must have applied to hold the current filter state:
+        the next delta's when changes are pending since the last cut, else the last cut's (an
+        overwrite, a delete of a missing key, or a key whose bits were all set already, needs no
+        new delta; naming one that may never be cut would hold a read-your-writes hint forever).
+        "Nothing pending" is judged by the checksum, so a 2^-64 coincidence could only make a
+        coordinator drop its hint one push interval early."""
+        sync = self._sync()
+        if sync.filter.checksum == sync.checksum:
+            return sync.epoch, sync.sequence
+        return sync.pending_sequence
 
     def _apply(self, keys: list[bytes], add: bool) -> None:
         """Filter side of a committed write (caller holds the lock): every live filter, and a
@@ -360,9 +382,10 @@ class NodeCore:
             self._rebuild_thread.join(5.0)
 
     def _push_loop(self) -> None:
+        """Cut on a fixed cadence of push_interval, plus extra cuts when the size threshold fires."""
         next_cut = time.monotonic() + self.push_interval
         while not self._stop.is_set():
-            self._push_now.wait(max(0.0, next_cut - time.monotonic()))
+            early = self._push_now.wait(max(0.0, next_cut - time.monotonic()))
             self._push_now.clear()
             if self._stop.is_set():
                 return
@@ -370,7 +393,11 @@ class NodeCore:
                 self.cut()
             except Exception:  # noqa: BLE001 - keep pushing; the error is logged with its trace
                 log.exception("cutting a delta failed")
-            next_cut = time.monotonic() + self.push_interval
+            now = time.monotonic()
+            if not early or now >= next_cut:
+                next_cut += self.push_interval
+                if next_cut <= now:          # fell behind (a long lock hold): restart the cadence
+                    next_cut = now + self.push_interval
 
     # ------------------------------------------------------------------ per-coordinator (driver calls)
     def peer_open(self, peer: str, now: float) -> list[sync_pb2.NodeMessage]:

@@ -22,7 +22,7 @@ from typing import Any
 import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
 
-from node.core import Limits, NodeCore
+from node.core import Limits, LoadCancelled, NodeCore
 from node.service import NodeStorageService
 from node.settings import NodeSettings
 from node.store import StoreError, open_store
@@ -109,7 +109,9 @@ class NodeDaemon:
         for name in HEALTH_SERVICES:
             self.health.set(name, status)
 
-    def start(self) -> None:
+    def start(self, cancel: threading.Event | None = None) -> None:
+        """Serve health at once, load the filter (abandoned with LoadCancelled if cancel is set),
+        then SERVING and sync streams."""
         self.server.start()
         log.info("listening", extra={"address": self.address, "data": str(self.settings.data),
                                      "sync_level": self.settings.sync_level, "store": self.settings.store})
@@ -124,7 +126,7 @@ class NodeDaemon:
         def progress(keys: int, seconds: float) -> None:
             log.info("loading filter from store", extra={"keys_scanned": keys, "seconds": round(seconds, 2)})
 
-        self.core.load(progress)
+        self.core.load(progress, cancel)
         self._set_health(health_pb2.HealthCheckResponse.SERVING)
         log.info("serving", extra={"address": self.address, "epoch": self.core.epoch,
                                    "keys": self.core.key_count, "geometry": str(self.core.geometry)})
@@ -176,9 +178,13 @@ def run(settings: NodeSettings) -> int:
         print(f"shardsieve node: {exc}", file=sys.stderr)
         return 1
     try:
-        daemon.start()
+        daemon.start(stop)
         while not stop.wait(0.5):
             pass
+    except LoadCancelled as exc:
+        log.info("stopped before serving", extra={"reason": str(exc)})
+        daemon.stop(grace=1.0)
+        return 0
     except Exception:
         log.exception("fatal error")
         daemon.stop(grace=1.0)

@@ -63,6 +63,10 @@ class SyncDriver:
     def stop(self) -> None:
         self._stop.set()
         self._wake.set()
+        try:
+            self.core.listeners.remove(self._wake.set)
+        except ValueError:
+            pass
 
     def join(self, timeout: float | None = None) -> None:
         self._thread.join(timeout)
@@ -75,7 +79,12 @@ class SyncDriver:
     def _run(self) -> None:
         failures = 0
         while not self._stop.is_set():
-            worked = self._one_stream()
+            try:
+                worked = self._one_stream()
+            except Exception as exc:  # noqa: BLE001 - a driver bug must not end syncing for good
+                self.last_error = f"{type(exc).__name__}: {exc}"
+                log.exception("sync driver error", extra={"coordinator": self.address})
+                worked = False
             if self._stop.is_set():
                 break
             failures = 0 if worked else failures + 1
@@ -159,6 +168,9 @@ class SyncDriver:
             code = exc.code() if hasattr(exc, "code") else None
             if code != grpc.StatusCode.CANCELLED:
                 self.last_error = f"{code.name if code else 'error'}: {exc.details() if hasattr(exc, 'details') else exc}"
+        except Exception as exc:  # noqa: BLE001 - end this stream, keep the driver alive
+            self.last_error = f"{type(exc).__name__}: {exc}"
+            log.exception("sync stream reader failed", extra={"coordinator": self.address})
         finally:
             done.set()
             self._wake.set()

@@ -24,14 +24,14 @@ from bitarray import bitarray
 from shardsieve import checksum as _checksum
 from shardsieve.changeset import ChangeSet
 from shardsieve.geometry import Geometry
-from shardsieve.hashing import CHUNK_KEYS, _hash_indices, digests, key_positions, positions_from_digests
+from shardsieve.hashing import CHUNK_KEYS, digests, key_positions, positions_from_digests, positions_kn
 
 _S3 = np.uint64(3)
 _M7 = np.uint64(7)
 _ONE8 = np.uint8(1)
 _BIT_MASKS = np.array([1 << i for i in range(8)], dtype=np.uint8)
 _SCRATCH_MAX_BITS = 1 << 26  # bulk inserts use an m-byte scratch only up to 64 MiB
-_FLIP_LOG_MIN = 1 << 16  # flips logged before the log is netted (bounds its memory)
+_FLIP_LOG_MIN = 1 << 16  # flips a counting filter logs before it switches to a baseline copy
 _UNPACK_CHUNK = 1 << 20  # bytes of filter unpacked at a time when listing set positions
 
 Positions = npt.NDArray[np.uint64]
@@ -46,11 +46,6 @@ class FilterDivergedError(ValueError):
 def _endian(bits: bitarray) -> str:
     e = bits.endian  # an attribute in bitarray >= 3.4, a method before
     return e if isinstance(e, str) else e()
-
-
-def _kn_positions(d: npt.NDArray[np.uint64], geometry: Geometry) -> Positions:
-    """Positions of a digest chunk in (k, n) layout (rows are contiguous per hash index)."""
-    return positions_from_digests(d, geometry).T
 
 
 def _byte_and_shift(pos: Positions) -> tuple[npt.NDArray[np.int64], npt.NDArray[np.uint8]]:
@@ -91,6 +86,42 @@ def _clear_bits(buf: npt.NDArray[np.uint8], pos: Positions) -> None:
         keep = keep[still]
 
 
+def _byte_groups(pos: Positions) -> tuple[npt.NDArray[np.int64], npt.NDArray[np.uint8]]:
+    """For sorted positions: each distinct byte once, with the OR of its bit masks."""
+    byte, shift = _byte_and_shift(pos)
+    masks = _BIT_MASKS[shift]
+    first = np.empty(byte.size, dtype=np.bool_)
+    first[0] = True
+    np.not_equal(byte[1:], byte[:-1], out=first[1:])
+    starts = np.flatnonzero(first)
+    return byte[starts], np.bitwise_or.reduceat(masks, starts)
+
+
+def _or_sorted(buf: npt.NDArray[np.uint8], pos: Positions) -> None:
+    """Set the bits at sorted positions in one exact scatter (no repeated byte index)."""
+    if pos.size:
+        byte, mask = _byte_groups(pos)
+        buf[byte] |= mask
+
+
+def _and_not_sorted(buf: npt.NDArray[np.uint8], pos: Positions) -> None:
+    """Clear the bits at sorted positions in one exact scatter."""
+    if pos.size:
+        byte, mask = _byte_groups(pos)
+        buf[byte] &= ~mask
+
+
+def _strictly_increasing(arr: Positions, name: str) -> Positions:
+    """The positions sorted; FilterDivergedError when one repeats (it would flip twice)."""
+    if arr.size < 2:
+        return arr
+    if not bool(np.all(arr[1:] > arr[:-1])):
+        arr = np.sort(arr)
+        if not bool(np.all(arr[1:] != arr[:-1])):
+            raise FilterDivergedError(f"a position to {name} appears twice in the change set")
+    return arr
+
+
 def _test_bits(buf: npt.NDArray[np.uint8], pos: Positions) -> npt.NDArray[np.uint8]:
     """0/1 per position (any shape)."""
     byte, shift = _byte_and_shift(np.ascontiguousarray(pos))
@@ -114,6 +145,26 @@ def _contains_kn(buf: npt.NDArray[np.uint8], pos_kn: Positions) -> npt.NDArray[n
     return acc.view(np.bool_)
 
 
+def _positions_of_bytes(buf: npt.NDArray[np.uint8]) -> Positions:
+    """Sorted positions of the 1 bits of a little-endian bit buffer, a block at a time."""
+    parts = []
+    for start in range(0, buf.size, _UNPACK_CHUNK):
+        block = buf[start:start + _UNPACK_CHUNK]
+        nz = np.flatnonzero(block)
+        if nz.size == 0:
+            continue
+        if nz.size * 8 > block.size:   # dense: unpack the whole block
+            found = np.flatnonzero(np.unpackbits(block, bitorder="little")).astype(np.uint64)
+        else:                          # sparse: unpack only the non-zero bytes
+            bits = np.flatnonzero(np.unpackbits(block[nz], bitorder="little")).astype(np.uint64)
+            found = nz.astype(np.uint64)[bits >> _S3] * np.uint64(8) + (bits & _M7)
+        found += np.uint64(start * 8)
+        parts.append(found)
+    if not parts:
+        return np.zeros(0, dtype=np.uint64)
+    return np.concatenate(parts)
+
+
 def _sorted_unique(values: Positions) -> Positions:
     """np.unique via sort + diff (much faster than np.unique's generic path for uint64)."""
     if values.size == 0:
@@ -126,23 +177,30 @@ def _sorted_unique(values: Positions) -> Positions:
 
 
 def _unique_counts(values: Positions) -> tuple[Positions, npt.NDArray[np.int64]]:
+    """Sorted distinct values and how often each occurs (sort based; see _sorted_unique)."""
     s = np.sort(values.ravel())
     if s.size == 0:
         return s.astype(np.uint64), np.zeros(0, dtype=np.int64)
-    starts = np.flatnonzero(np.concatenate(([True], s[1:] != s[:-1])))
-    counts = np.diff(np.append(starts, s.size))
+    first = np.empty(s.size, dtype=np.bool_)
+    first[0] = True
+    np.not_equal(s[1:], s[:-1], out=first[1:])
+    starts = np.flatnonzero(first)
+    counts = np.empty(starts.size, dtype=np.int64)
+    counts[:-1] = starts[1:] - starts[:-1]
+    counts[-1] = s.size - starts[-1]
     return s[starts], counts
 
 
 class BloomFilter:
     """A Bloom filter of `geometry.bits` bits on a little-endian bitarray.
 
-    checksum (shardsieve.checksum) is kept incrementally by apply() and by small adds; a
-    bulk add_batch (more positions than m/64) marks it stale and the next read recomputes
-    it once from the bits, which is cheaper than sorting millions of positions.
+    `bits` is the live bitarray: read it freely, change it only through add*/apply so the
+    checksum stays true. checksum (shardsieve.checksum) is kept incrementally by apply()
+    and by small adds; a bulk add_batch (more positions than m/64) marks it stale and the
+    next read recomputes it once from the bits, cheaper than sorting millions of positions.
     """
 
-    __slots__ = ("geometry", "bits", "_buf", "_checksum")
+    __slots__ = ("geometry", "_bits", "_buf", "_checksum")
 
     def __init__(self, geometry: Geometry, bits: bitarray | None = None) -> None:
         geometry.validate()
@@ -159,12 +217,17 @@ class BloomFilter:
             if _endian(bits) != "little":
                 bits = bitarray(bits, endian="little")
             self._checksum = None
-        self.bits = bits
+        self._bits = bits
         self._buf = np.frombuffer(bits, dtype=np.uint8)
         spare = len(self._buf) * 8 - geometry.bits
         if spare:
             # bitarray does not promise zero pad bits in its buffer; our kernels read it raw
             self._buf[-1] &= np.uint8(0xFF >> spare)
+
+    @property
+    def bits(self) -> bitarray:
+        """The live bit vector (little-endian bitarray of length m)."""
+        return self._bits
 
     # -- checksum -------------------------------------------------------------------
     @property
@@ -193,12 +256,12 @@ class BloomFilter:
             # scatter is exact; one packbits then ORs the batch into the filter.
             scratch = np.zeros(g.bits, dtype=np.uint8)
             for start in range(0, n, CHUNK_KEYS):
-                pos = positions_from_digests(digests(keys[start:start + CHUNK_KEYS], g.seed), g)
-                scratch[pos.view(np.int64)] = 1
+                pos = positions_kn(digests(keys[start:start + CHUNK_KEYS], g.seed), g)
+                scratch[pos.reshape(-1).view(np.int64)] = 1
             np.bitwise_or(buf, np.packbits(scratch, bitorder="little"), out=buf)
             return
         for start in range(0, n, CHUNK_KEYS):
-            _set_bits(buf, positions_from_digests(digests(keys[start:start + CHUNK_KEYS], g.seed), g))
+            _set_bits(buf, positions_kn(digests(keys[start:start + CHUNK_KEYS], g.seed), g))
 
     def add_positions(self, pos: Positions) -> None:
         """Insert keys given as positions (n, k) from hashing.positions."""
@@ -224,7 +287,7 @@ class BloomFilter:
         buf = self._buf
         for start in range(0, n, CHUNK_KEYS):
             d = digests(keys[start:start + CHUNK_KEYS], g.seed)
-            out[start:start + d.shape[0]] = _contains_kn(buf, _kn_positions(d, g))
+            out[start:start + d.shape[0]] = _contains_kn(buf, positions_kn(d, g))
         return out
 
     def contains_positions(self, pos: Positions) -> npt.NDArray[np.bool_]:
@@ -232,8 +295,9 @@ class BloomFilter:
         pos = self._check_positions(pos)
         n = pos.shape[0]
         out = np.empty(n, dtype=np.bool_)
+        kn = pos.T  # contiguous rows when pos came from hashing.positions
         for start in range(0, n, CHUNK_KEYS):
-            out[start:start + CHUNK_KEYS] = _contains_kn(self._buf, np.ascontiguousarray(pos[start:start + CHUNK_KEYS].T))
+            out[start:start + CHUNK_KEYS] = _contains_kn(self._buf, kn[:, start:start + CHUNK_KEYS])
         return out
 
     def _check_positions(self, pos: Positions) -> Positions:
@@ -252,11 +316,11 @@ class BloomFilter:
     def apply(self, changes: ChangeSet) -> None:
         """Apply a change set all-or-nothing; FilterDivergedError (and no change) if it does not fit."""
         m = self.geometry.bits
-        s = np.asarray(changes.set_positions, dtype=np.uint64)
-        c = np.asarray(changes.cleared_positions, dtype=np.uint64)
+        s = _strictly_increasing(np.asarray(changes.set_positions, dtype=np.uint64), "set")
+        c = _strictly_increasing(np.asarray(changes.cleared_positions, dtype=np.uint64), "clear")
         for name, arr in (("set", s), ("cleared", c)):
-            if arr.size and int(arr.max()) >= m:
-                raise FilterDivergedError(f"{name} position {int(arr.max())} is outside the filter (m = {m})")
+            if arr.size and int(arr[-1]) >= m:
+                raise FilterDivergedError(f"{name} position {int(arr[-1])} is outside the filter (m = {m})")
         if s.size:
             already = np.flatnonzero(_test_bits(self._buf, s))
             if already.size:
@@ -267,14 +331,11 @@ class BloomFilter:
             if absent.size:
                 raise FilterDivergedError(
                     f"{absent.size} position(s) to clear are already 0 (first: {int(c[absent[0]])})")
-        # (set bits were all 0 and cleared bits all 1 above, so the two are disjoint)
-        for name, arr in (("set", s), ("clear", c)):
-            if arr.size > 1 and not bool(np.all(np.sort(arr)[1:] != np.sort(arr)[:-1])):
-                raise FilterDivergedError(f"a position to {name} appears twice in the change set")
-        checksum_before = self._checksum
-        self._flip_known(s, c)
-        if checksum_before is not None:
-            self._checksum = changes.checksum_after(checksum_before)
+        # (bits to set were all 0 and bits to clear all 1, so the two lists are disjoint)
+        _or_sorted(self._buf, s)
+        _and_not_sorted(self._buf, c)
+        if self._checksum is not None:
+            self._checksum ^= _checksum.xor_of(s) ^ _checksum.xor_of(c)
 
     def _flip_known(self, set_positions: Positions, cleared_positions: Positions) -> None:
         """Write bits known (by the caller) to flip: set ones are 0, cleared ones are 1, no duplicates."""
@@ -302,19 +363,7 @@ class BloomFilter:
 
     def set_positions(self) -> Positions:
         """Sorted uint64 positions of every set bit."""
-        parts = []
-        buf = self._buf
-        for start in range(0, buf.size, _UNPACK_CHUNK):
-            block = buf[start:start + _UNPACK_CHUNK]
-            nz = np.flatnonzero(block)
-            if nz.size == 0:
-                continue
-            unpacked = np.unpackbits(block[nz], bitorder="little").reshape(-1, 8)
-            rows, cols = np.nonzero(unpacked)
-            parts.append((nz[rows].astype(np.uint64) + np.uint64(start)) * np.uint64(8) + cols.astype(np.uint64))
-        if not parts:
-            return np.zeros(0, dtype=np.uint64)
-        return np.concatenate(parts)
+        return _positions_of_bytes(self._buf)
 
     # -- serialisation ------------------------------------------------------------------
     def to_bytes(self) -> bytes:
@@ -372,15 +421,19 @@ class CountingBloomFilter:
     bit. take_changes() returns exactly the bits whose 0/1 state differs from the last call.
     """
 
-    __slots__ = ("geometry", "_counters", "_view", "_flips", "_flip_count")
+    __slots__ = ("geometry", "_counters", "_view", "_flips", "_flip_count", "_baseline")
 
     def __init__(self, geometry: Geometry) -> None:
         geometry.validate()
         self.geometry = geometry
         self._counters = np.zeros((geometry.bits + 1) // 2, dtype=np.uint8)
         self._view = BloomFilter(geometry)
-        self._flips: list[Positions] = []  # positions flipped per operation since the last take
+        # Since the last take_changes: either a log of the positions each operation flipped
+        # (cheap for the usual trickle of writes) or, once the log outgrows m/64 entries
+        # (m/8 bytes), a copy of the 0/1 bytes as they were at the last take.
+        self._flips: list[Positions] = []
         self._flip_count = 0
+        self._baseline: npt.NDArray[np.uint8] | None = None
 
     @property
     def checksum(self) -> int:
@@ -447,27 +500,41 @@ class CountingBloomFilter:
         cleared_pos = np.concatenate(went_down) if went_down else np.zeros(0, dtype=np.uint64)
         if set_pos.size or cleared_pos.size:
             self._view._flip_known(set_pos, cleared_pos)
-            flipped = np.concatenate((set_pos, cleared_pos))
-            self._flips.append(flipped)
-            self._flip_count += flipped.size
-            if self._flip_count > max(_FLIP_LOG_MIN, self.geometry.bits // 8):
-                self._compact_flips()
+            if self._baseline is None:
+                self._flips.append(np.concatenate((set_pos, cleared_pos)))
+                self._flip_count += set_pos.size + cleared_pos.size
+                if self._flip_count > max(_FLIP_LOG_MIN, self.geometry.bits // 64):
+                    self._switch_to_baseline()
 
-    def _compact_flips(self) -> None:
-        """Net the flip log: a position flipped an even number of times is unchanged."""
+    def _net_flips(self) -> Positions:
+        """Positions flipped an odd number of times since the last take (sorted)."""
+        if not self._flips:
+            return np.zeros(0, dtype=np.uint64)
         uniq, counts = _unique_counts(np.concatenate(self._flips))
-        odd = uniq[(counts & 1) == 1]
-        self._flips = [odd] if odd.size else []
-        self._flip_count = int(odd.size)
+        return uniq[(counts & 1) == 1]
+
+    def _switch_to_baseline(self) -> None:
+        """Replace the flip log by the 0/1 bytes as of the last take (current bits, net flips undone)."""
+        baseline = self._view._buf.copy()
+        net = self._net_flips()
+        was_set = _test_bits(baseline, net).astype(np.bool_)
+        _clear_bits(baseline, net[was_set])
+        _set_bits(baseline, net[~was_set])
+        self._baseline = baseline
+        self._flips = []
+        self._flip_count = 0
 
     def take_changes(self) -> ChangeSet:
         """The bits whose 0/1 state differs from the previous call (or from empty at creation)."""
-        if not self._flips:
+        if self._baseline is not None:
+            changed = _positions_of_bytes(self._view._buf ^ self._baseline)
+            self._baseline = None
+        elif self._flips:
+            changed = self._net_flips()
+            self._flips = []
+            self._flip_count = 0
+        else:
             return ChangeSet()
-        self._compact_flips()
-        changed = self._flips[0] if self._flips else np.zeros(0, dtype=np.uint64)
-        self._flips = []
-        self._flip_count = 0
         now_set = _test_bits(self._view._buf, changed).astype(np.bool_)
         return ChangeSet(set_positions=changed[now_set], cleared_positions=changed[~now_set])
 

@@ -17,7 +17,7 @@ no 64-bit modulo.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+from collections.abc import Sequence
 from itertools import repeat
 
 import mmh3
@@ -31,7 +31,6 @@ CHUNK_KEYS = 32768  # keys per batch step: the (chunk, k) uint64 arrays stay cac
 _digest = mmh3.mmh3_x64_128_digest
 _LOW32 = np.uint64(0xFFFFFFFF)
 _S32 = np.uint64(32)
-_INDEX_CACHE: dict[int, npt.NDArray[np.uint64]] = {}
 
 
 def as_key_bytes(key: bytes | str) -> bytes:
@@ -43,14 +42,6 @@ def as_key_bytes(key: bytes | str) -> bytes:
     if isinstance(key, (bytearray, memoryview)):
         return bytes(key)
     raise TypeError(f"a key must be bytes or str, got {type(key).__name__}")
-
-
-def _hash_indices(k: int) -> npt.NDArray[np.uint64]:
-    idx = _INDEX_CACHE.get(k)
-    if idx is None:
-        idx = np.arange(k, dtype=np.uint64)
-        _INDEX_CACHE[k] = idx
-    return idx
 
 
 def digests(keys: Sequence[bytes | str], seed: int = 0) -> npt.NDArray[np.uint64]:
@@ -100,23 +91,39 @@ def reduce_range(g: npt.NDArray[np.uint64], bits: int, out: npt.NDArray[np.uint6
     return result
 
 
-def positions_from_digests(d: npt.NDArray[np.uint64], geometry: Geometry) -> npt.NDArray[np.uint64]:
-    """Steps 2 and 3 over an (n, 2) digest array: (n, k) uint64 positions."""
-    idx = _hash_indices(geometry.hashes)
-    with np.errstate(over="ignore"):
-        g = d[:, 1:2] * idx        # i * h2 mod 2^64, shape (n, k)
-        g += d[:, 0:1]             # + h1 mod 2^64
+def positions_kn(d: npt.NDArray[np.uint64], geometry: Geometry) -> npt.NDArray[np.uint64]:
+    """Steps 2 and 3 over an (n, 2) digest array, laid out (k, n): row i holds pos_i of every key.
+
+    Row-major per hash index keeps each row contiguous, so a query can AND k contiguous
+    rows and an insert can scatter one flat array.
+    """
+    k, n = geometry.hashes, d.shape[0]
+    g = np.empty((k, n), dtype=np.uint64)
+    g[0] = d[:, 0]                      # g_0 = h1
+    if k > 1:
+        h2 = np.ascontiguousarray(d[:, 1])
+        for i in range(1, k):           # g_i = g_(i-1) + h2 (mod 2^64): one add per row
+            np.add(g[i - 1], h2, out=g[i])
     return reduce_range(g, geometry.bits, out=g)
 
 
+def positions_from_digests(d: npt.NDArray[np.uint64], geometry: Geometry) -> npt.NDArray[np.uint64]:
+    """Steps 2 and 3 over an (n, 2) digest array: (n, k) uint64 positions (a transposed view)."""
+    return positions_kn(d, geometry).T
+
+
 def positions(keys: Sequence[bytes | str], geometry: Geometry) -> npt.NDArray[np.uint64]:
-    """Bit positions of every key: shape (len(keys), k), dtype uint64, row i belongs to keys[i]."""
+    """Bit positions of every key: shape (len(keys), k), dtype uint64, row i belongs to keys[i].
+
+    The array is the transpose of a C-ordered (k, n) array (Fortran order), which is what
+    BloomFilter.contains_positions consumes without copying.
+    """
     n = len(keys)
-    out = np.empty((n, geometry.hashes), dtype=np.uint64)
+    out = np.empty((geometry.hashes, n), dtype=np.uint64)
     for start in range(0, n, CHUNK_KEYS):
         chunk = keys[start:start + CHUNK_KEYS]
-        out[start:start + len(chunk)] = positions_from_digests(digests(chunk, geometry.seed), geometry)
-    return out
+        out[:, start:start + len(chunk)] = positions_kn(digests(chunk, geometry.seed), geometry)
+    return out.T
 
 
 def key_positions(key: bytes | str, geometry: Geometry) -> npt.NDArray[np.uint64]:
@@ -124,10 +131,3 @@ def key_positions(key: bytes | str, geometry: Geometry) -> npt.NDArray[np.uint64
     d = np.frombuffer(_digest(as_key_bytes(key), geometry.seed), dtype="<u8").astype(np.uint64).reshape(1, 2)
     return positions_from_digests(d, geometry)[0]
 
-
-def iter_chunks(keys: Sequence[bytes | str] | Iterable[bytes | str], size: int = CHUNK_KEYS) -> Iterable[Sequence[bytes | str]]:
-    """Slices of at most `size` keys (materialises non-sequence iterables once)."""
-    if not isinstance(keys, Sequence):
-        keys = list(keys)
-    for start in range(0, len(keys), size):
-        yield keys[start:start + size]

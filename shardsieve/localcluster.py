@@ -244,9 +244,20 @@ class LocalCluster:
 
     def wait_node_state(self, node_id: str, predicate: Any, timeout: float = 30.0, what: str = "node state") -> Any:
         """Wait until predicate(NodeStatus of node_id) is truthy; returns the NodeStatus."""
+        last: list[Any] = [None]
+
         def check() -> Any:
             for n in self.fleet_status().nodes:
-                if n.node_id == node_id and predicate(n):
-                    return n
+                if n.node_id == node_id:
+                    last[0] = n
+                    if predicate(n):
+                        return n
             return None
-        return wait_until(check, timeout, interval=0.05, message=f"{what} of {node_id}")
+
+        def describe() -> str:
+            n = last[0]
+            seen = "never listed" if n is None else (
+                f"state={n.state} stale={n.stale} epoch={n.epoch} sequence={n.sequence} keys={n.key_count} "
+                f"capacity={n.capacity} predicted_fpr={n.predicted_fpr:.4g} rebuild_phase={n.rebuild_phase!r}")
+            return f"{what} of {node_id} (last seen: {seen})"
+        return wait_until(check, timeout, interval=0.05, message=describe)

@@ -85,6 +85,13 @@ def farm_placement(node_ids: Sequence[str], seed: int = 1, moved_share: float = 
     for farm in FARMS:
         if rng.random() < moved_share:
             place[farm] = nodes[int(rng.integers(len(nodes)))]
+    # No shed left without a farm (when there are enough farms): the busiest node hands one over.
+    for node in nodes[:len(FARMS)]:
+        if node not in place.values():
+            counts = {n: list(place.values()).count(n) for n in nodes}
+            busiest = max(counts, key=lambda n: counts[n])
+            farm = next(f for f in FARMS if place[f] == busiest)
+            place[farm] = node
     return place
 
 

@@ -1,18 +1,18 @@
 """`shardsieve bench node`: node write throughput through gRPC vs in-process, and ack-to-push latency.
 
-Side by side in one run, on one node (an in-process NodeDaemon with its SQLite store in a
-temporary directory, streaming to an in-process test coordinator that runs the real
-CoordinatorSync):
-  1. direct: `clients` threads call NodeCore.put_many one key at a time (store commit + filter
-     update + sequence stamp, no network) -> direct_puts_per_s;
-  2. gRPC: `clients` threads, each with its own channel, call NodeStorage.Put one key at a
-     time -> grpc_puts_per_s and grpc_fraction_of_direct (the baseline, measured on the same
-     store in the same run);
+Side by side in one run, with the same settings (sync level, capacity, push interval):
+  1. direct (baseline): `clients` threads call NodeCore.put_many one key at a time in this
+     process (store commit + filter update + sequence stamp + group commit, the node's own
+     code, on a SQLite store of its own in a temporary directory) -> direct_puts_per_s;
+  2. gRPC: a real `shardsieve node` process streaming to an in-process test coordinator (the
+     real CoordinatorSync); `clients` threads, each with its own channel, call
+     NodeStorage.Put one key at a time -> grpc_puts_per_s and grpc_fraction_of_direct;
   3. ack-to-push: one client puts keys at random intervals; for each put, the time from the
-     client receiving its WriteAck(epoch, sequence) to the delta with that sequence being
-     handed to gRPC by the node's sync driver (a timestamp hook in SyncDriver) -> p50/p99 ms,
-     printed beside the push interval (the expected scale: a change waits on average half an
-     interval for the next cut). A delta that left before the ack reached the client counts 0.
+     client receiving its WriteAck(epoch, sequence) to the delta with that sequence arriving
+     at the test coordinator (so it includes one loopback hop after leaving the node) ->
+     p50/p99 ms, printed beside the push interval (expected scale: a change waits on average
+     half an interval for the next cut). A delta that arrived before the ack reached the
+     client counts as 0.
 The two throughput phases alternate (direct, gRPC, direct, gRPC) and are summed, so a noisy
 neighbour on a shared machine hits both about equally.
 """
@@ -61,25 +61,32 @@ def measure(puts: int = 2000, clients: int = 8, sync_level: str = "full", push_i
             latency_samples: int = 400, value_bytes: int = 100, seed: int = 1) -> dict[str, Any]:
     import grpc
 
-    from node.daemon import NodeDaemon
-    from node.settings import NodeSettings
-    from shardsieve.testing.procs import free_port
+    from node.core import NodeCore
+    from node.store import SqliteStore
+    from shardsieve.testing.procs import free_port, shardsieve_argv, start_daemon
     from shardsieve.testing.sync_peer import TestCoordinator
     from shardsieve.v1 import storage_pb2, storage_pb2_grpc
 
     rng = random.Random(seed)
     value = rng.randbytes(value_bytes)
+    capacity = max(10_000, 4 * puts)
     with tempfile.TemporaryDirectory(prefix="shardsieve-bench-node-") as tmp, TestCoordinator() as coord:
         port = free_port()
-        settings = NodeSettings(id="bench-node", listen=f"127.0.0.1:{port}", data=Path(tmp) / "data",
-                                coordinator=[coord.address], capacity=max(10_000, 4 * puts), fpr=0.01,
-                                push_interval_ms=push_interval_ms, sync_level=sync_level,
-                                grpc_workers=max(16, 2 * clients))
-        daemon = NodeDaemon(settings)
-        daemon.start()
+        address = f"127.0.0.1:{port}"
+        proc = start_daemon(shardsieve_argv(
+            "node", "--id", "bench-node", "--listen", address, "--data", str(Path(tmp) / "grpc-node"),
+            "--coordinator", coord.address, "--capacity", str(capacity), "--fpr", "0.01",
+            "--push-interval-ms", str(push_interval_ms), "--sync-level", sync_level,
+            "--grpc-workers", str(max(16, 2 * clients)), "--log-format", "text"),
+            Path(tmp) / "node.log", health_address=address)
+        # The baseline: the same node code (NodeCore: store commit + filter + stamp, group commit,
+        # pusher running) on its own SQLite store with the same settings, called in-process.
+        direct_store = SqliteStore(Path(tmp) / "direct-node", sync_level)
+        core = NodeCore("bench-direct", direct_store, capacity=capacity, target_fpr=0.01,
+                        push_interval=push_interval_ms / 1000.0)
+        core.load()
+        core.start_pusher()
         try:
-            core = daemon.core
-            address = daemon.address
             per_client = max(1, puts // (2 * clients))
             # --- throughput, alternating rounds ---------------------------------------------
             direct_s = grpc_s = 0.0
@@ -101,17 +108,15 @@ def measure(puts: int = 2000, clients: int = 8, sync_level: str = "full", push_i
             grpc_rate = grpc_n / grpc_s
             # --- ack-to-push latency ----------------------------------------------------------
             coord.wait_for_node("bench-node", 15)
-            sent: dict[tuple[int, int], float] = {}
+            arrived: dict[tuple[int, int], float] = {}
             lock = threading.Lock()
 
-            def on_sent(msg: Any, when: float) -> None:
+            def on_message(msg: Any, when: float) -> None:
                 if msg.WhichOneof("body") == "delta":
-                    key = (msg.delta.epoch, msg.delta.sequence)
                     with lock:
-                        sent.setdefault(key, when)
+                        arrived.setdefault((msg.delta.epoch, msg.delta.sequence), when)
 
-            driver = daemon.drivers[0]
-            driver.on_sent = on_sent
+            coord.on_message = on_message
             acks: list[tuple[int, int, float]] = []
             with grpc.insecure_channel(address) as ch:
                 stub = storage_pb2_grpc.NodeStorageStub(ch)
@@ -124,15 +129,17 @@ def measure(puts: int = 2000, clients: int = 8, sync_level: str = "full", push_i
             deadline = time.monotonic() + 10 + 5 * push_interval_ms / 1000.0
             while time.monotonic() < deadline:
                 with lock:
-                    if all((e, s) in sent for e, s, _ in acks):
+                    if all((e, s) in arrived for e, s, _ in acks):
                         break
                 time.sleep(push_interval_ms / 1000.0)
-            driver.on_sent = None
+            coord.on_message = None
             with lock:
-                lat = [max(0.0, sent[(e, s)] - t) * 1000.0 for e, s, t in acks if (e, s) in sent]
+                lat = [max(0.0, arrived[(e, s)] - t) * 1000.0 for e, s, t in acks if (e, s) in arrived]
             missing = len(acks) - len(lat)
         finally:
-            daemon.stop(grace=1.0)
+            core.stop_pusher()
+            direct_store.close()
+            proc.stop()
     arr = np.asarray(lat) if lat else np.asarray([float("nan")])
     return {
         "grpc_puts_per_s": round(grpc_rate, 1),

@@ -71,8 +71,8 @@ def render_report(report: Mapping[str, Any], out: Console) -> None:
     out.print(head)
 
     probes = Table(title="probes per lookup: measured vs predicted from the fleet's filters")
-    for col in ("keys", "measured", "predicted", "measured/predicted", f"{report['interval']['confidence']:.1%} "
-                "interval", "inside"):
+    conf = f"{report['interval']['confidence']:.1%}"
+    for col in ("keys", "measured", "predicted", "ratio", "first reads", f"{conf} interval", "inside"):
         probes.add_column(col, justify="right" if col != "keys" else "left")
     for label, side, m, p, r in (
         ("existing: 1 + Σ p_j (j ≠ owner)", "hit", report["probes_per_hit"], report["predicted_probes_per_hit"],
@@ -82,10 +82,12 @@ def render_report(report: Mapping[str, Any], out: Console) -> None:
         iv = report["interval"][side]
         rng = "-" if iv.get("low") is None else f"{iv['low']:.4f} .. {iv['high']:.4f}"
         inside = "-" if iv.get("inside") is None else ("yes" if iv["inside"] else "[bold red]NO[/]")
-        probes.add_row(label, _num(m, "{:.4f}"), _num(p, "{:.4f}"), _num(r), rng, inside)
+        probes.add_row(label, _num(m, "{:.4f}"), _num(p, "{:.4f}"), _num(r), _num(iv.get("measured"), "{:.4f}"),
+                       rng, inside)
     out.print(probes)
-    out.print(f"[dim]interval: {report['interval']['method']}; existing keys are checked on their first "
-              f"read only ({report['interval']['hit'].get('keys', 0):,} distinct keys)[/]")
+    out.print(f"[dim]check: {report['interval']['method']}. Existing keys count on their first read only "
+              f"({report['interval']['hit'].get('keys', 0):,} distinct keys): repeated reads repeat the same "
+              f"filter answers; absent keys are all fresh.[/]")
 
     nodes = Table(title="per node")
     for col in ("node", "predicted FPR", "wasted probes"):
@@ -94,6 +96,9 @@ def render_report(report: Mapping[str, Any], out: Console) -> None:
     for nid, p in report["predicted_fpr_per_node"].items():
         nodes.add_row(nid, fmt_rate(p), f"{wasted.get(nid, 0):,}")
     out.print(nodes)
+    if report.get("rebuilt_during_run"):
+        out.print(f"[yellow]filters replaced during the run: {', '.join(report['rebuilt_during_run'])} (the "
+                  f"prediction uses the filters at the start; turn auto_rebuild off for a clean measurement)[/]")
     if report.get("stale_during_run"):
         out.print(f"[yellow]stale or disconnected at the end of the run: {', '.join(report['stale_during_run'])} "
                   f"(safe mode lists them in every lookup, which inflates the measured probes)[/]")

@@ -324,16 +324,23 @@ def inspect_node(node: str, coordinator: str | None, token: str | None, config_f
 # ---------------------------------------------------------------------------------------------
 # rebuild
 # ---------------------------------------------------------------------------------------------
-def wait_for_rebuilds(client: CoordinatorClient, before: dict[str, int], timeout_s: float,
-                      show_progress: bool) -> dict[str, dict[str, Any]]:
-    """Poll FleetStatus until every node in `before` has a higher epoch and is not rebuilding."""
+def wait_for_rebuilds(client: CoordinatorClient, before: dict[str, int], queued: list[str], timeout_s: float,
+                      show_progress: bool, start: Callable[[list[str]], list[str]]) -> dict[str, dict[str, Any]]:
+    """Poll FleetStatus until every node in `before` has a higher epoch and is not rebuilding.
+
+    The coordinator does not start rebuilds it reported as queued (over the concurrent-rebuild
+    limit) by itself, so while some are queued this asks for them again; `start` returns the
+    node ids the coordinator accepted.
+    """
     deadline = time.monotonic() + timeout_s
     results: dict[str, dict[str, Any]] = {}
+    queued = list(queued)
     progress = Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),
                         TextColumn("{task.fields[phase]}"), TimeElapsedColumn(),
-                        console=Console(stderr=True), disable=not show_progress, transient=False)
+                        console=console(stderr=True), disable=not show_progress, transient=False)
     with progress:
-        tasks = {nid: progress.add_task(f"rebuild {nid}", total=1.0, phase="queued") for nid in before}
+        tasks = {nid: progress.add_task(f"rebuild {nid}", total=1.0, phase="queued" if nid in queued else "started")
+                 for nid in before}
         while True:
             reply = client.fleet_status()
             nodes = {n.node_id: n for n in reply.nodes}
@@ -342,19 +349,27 @@ def wait_for_rebuilds(client: CoordinatorClient, before: dict[str, int], timeout
                 if n is None:
                     raise ClientError(f"node {nid} left the fleet during its rebuild: check `shardsieve status`",
                                       EXIT_FAILURE)
+                if nid in queued:
+                    continue
                 done = n.epoch > epoch0 and n.state != "rebuilding"
                 if done and nid not in results:
                     results[nid] = {"node_id": nid, "epoch_before": epoch0, "epoch_after": n.epoch,
                                     "capacity": n.capacity, "fill": n.fill, "predicted_fpr": n.predicted_fpr,
                                     "geometry": message_to_dict(n.geometry)}
                 progress.update(tasks[nid], completed=1.0 if done else min(0.99, n.rebuild_progress),
-                                phase="swapped" if done else (n.rebuild_phase or n.state or "queued"))
+                                phase="swapped" if done else (n.rebuild_phase or n.state or "started"))
             if len(results) == len(before):
                 return results
+            if queued and reply.rebuilds_in_progress == 0:
+                for nid in start(queued):
+                    queued.remove(nid)
+                    before[nid] = nodes[nid].epoch
+                    progress.update(tasks[nid], phase="started")
             if time.monotonic() > deadline:
                 waiting = sorted(set(before) - set(results))
-                raise ClientError(f"rebuild of {', '.join(waiting)} did not finish within {timeout_s:.0f}s; it "
-                                  f"continues in the background: follow it with `shardsieve status`", EXIT_FAILURE)
+                raise ClientError(f"rebuild of {', '.join(waiting)} did not finish within {timeout_s:.0f}s; started "
+                                  f"ones continue in the background: follow them with `shardsieve status`",
+                                  EXIT_FAILURE)
             time.sleep(0.2)
 
 
@@ -391,8 +406,13 @@ def rebuild(nodes: tuple[str, ...], flagged: bool, capacity: int | None, fpr: fl
         plan = [message_to_dict(p) for p in reply.plan]
         results: dict[str, dict[str, Any]] = {}
         if wait and reply.plan:
+            def start(queued: list[str]) -> list[str]:
+                again = client.rebuild(queued, capacity=capacity or 0, target_fpr=fpr or 0.0)
+                return [p.node_id for p in again.plan if not p.queued]
+
             results = wait_for_rebuilds(client, {p.node_id: before.get(p.node_id, 0) for p in reply.plan},
-                                        wait_timeout, show_progress=not as_json)
+                                        [p.node_id for p in reply.plan if p.queued], wait_timeout,
+                                        show_progress=not as_json, start=start)
     if as_json:
         emit_json({"dry_run": reply.dry_run, "plan": plan,
                    "completed": [results[k] for k in sorted(results)] if wait else None})
@@ -412,6 +432,10 @@ def rebuild(nodes: tuple[str, ...], flagged: bool, capacity: int | None, fpr: fl
         r = results[nid]
         out.print(f"{nid}: epoch {r['epoch_before']} -> {r['epoch_after']}, capacity {fmt_count(r['capacity'])}, "
                   f"fill {r['fill']:.1%}, predicted FPR {fmt_rate(r['predicted_fpr'])}")
+    queued = [p.node_id for p in reply.plan if p.queued]
+    if queued and not wait and not reply.dry_run:
+        out.print(f"queued (over the policy's max_concurrent_rebuilds, not started): {', '.join(queued)} — "
+                  f"ask again once the running rebuild finished, or use --wait, which starts them in turn")
     if not wait and not reply.dry_run:
         out.print("follow it with `shardsieve status` (or rerun with --wait)")
 
@@ -441,7 +465,8 @@ def locate(key: str, hex_input: bool, coordinator: str | None, token: str | None
     if not cands:
         out.print(f"no node may hold {show_bytes(k)!r}: every filter rules it out")
         return
-    table = Table(title=f"candidates for {show_bytes(k)!r}")
+    out.print(f"candidates for {show_bytes(k)!r}:")
+    table = Table()
     for col in ("node", "address", "why listed"):
         table.add_column(col)
     for c in reply.candidates:

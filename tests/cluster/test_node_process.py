@@ -197,3 +197,103 @@ def test_unavailable_is_not_a_write(tmp_path: Path) -> None:
         with pytest.raises(grpc.RpcError) as info:
             storage_pb2_grpc.NodeStorageStub(ch).Put(storage_pb2.PutRequest(key=b"k", value=b"v"), timeout=2)
         assert info.value.code() in (grpc.StatusCode.UNAVAILABLE, grpc.StatusCode.DEADLINE_EXCEEDED)
+
+
+def test_not_serving_until_filter_loaded_then_holds_every_stored_key(tmp_path: Path) -> None:
+    """A store written before start: health answers NOT_SERVING while the filter is rebuilt
+    from it (writes get UNAVAILABLE meanwhile), then SERVING with every stored key in the filter."""
+    from node.store import SqliteStore
+    from shardsieve.testing.nodes import NodeProcess
+    from shardsieve.testing.procs import free_port, health_status, shardsieve_argv, start_daemon
+
+    data = tmp_path / "n6-data"
+    store = SqliteStore(data)
+    preload = [(f"crate/{i:07d}".encode(), b"") for i in range(150_000)]
+    store.put_many(preload)
+    store.close()
+    port = free_port()
+    address = f"127.0.0.1:{port}"
+    with TestCoordinator() as coord:
+        argv = shardsieve_argv("node", "--id", "n6", "--listen", address, "--data", str(data),
+                               "--coordinator", coord.address, "--capacity", "200000", "--log-format", "text")
+        proc = start_daemon(argv, tmp_path / "n6.log")          # no health wait: watch it ourselves
+        node = NodeProcess("n6", address, data, tmp_path / "n6.log", argv, proc=proc)
+        try:
+            seen: list[int | None] = []
+            refused: list[grpc.StatusCode] = []
+
+            def serving() -> bool:
+                status = health_status(address, timeout=0.5)
+                seen.append(status)
+                if status == 2 and not refused:   # NOT_SERVING: a write must be refused
+                    try:
+                        put(node.stub(), b"too/early")
+                    except grpc.RpcError as exc:
+                        refused.append(exc.code())
+                return status == 1
+
+            wait_until(serving, 60, interval=0.01, message=lambda: "SERVING\n" + proc.log_tail())
+            # grpc.health.v1: 2 = NOT_SERVING, 1 = SERVING
+            assert 2 in seen, f"never saw NOT_SERVING before SERVING: {seen[:20]}"
+            assert refused == [grpc.StatusCode.UNAVAILABLE]
+            log_text = proc.log_text()
+            assert "loading filter from store" in log_text
+            assert log_text.index("filter loaded from store") < log_text.index("INFO    serving ")
+            stub = node.stub()
+            assert stub.Stats(storage_pb2.NodeStatsRequest()).stats.key_count == len(preload)
+            coord.wait_for_node("n6", 30)
+            wait_until(lambda: coord.replica("n6") is not None and coord.view("n6").epoch >= 1, 30)
+            replica = coord.replica("n6")
+            assert all(replica.contains_batch([k for k, _ in preload]))   # no false negative
+            assert stub.Get(storage_pb2.GetRequest(key=b"too/early")).found is False
+        finally:
+            proc.stop()
+
+
+def test_metrics_endpoint_matches_stats(tmp_path: Path) -> None:
+    import urllib.request
+
+    from shardsieve.testing.procs import free_port
+
+    mport = free_port()
+    node = start_node(tmp_path, "n7", extra=["--metrics-port", str(mport)])
+    try:
+        stub = node.stub()
+        stub.BatchPut(storage_pb2.BatchPutRequest(
+            items=[storage_pb2.PutRequest(key=f"m{i}".encode(), value=b"") for i in range(37)]))
+        stub.Get(storage_pb2.GetRequest(key=b"absent"))
+        text = urllib.request.urlopen(f"http://127.0.0.1:{mport}/metrics", timeout=5).read().decode()
+        values = {line.split("{")[0]: float(line.rsplit(" ", 1)[1])
+                  for line in text.splitlines() if line and not line.startswith("#")}
+        stats = stub.Stats(storage_pb2.NodeStatsRequest()).stats
+        assert values["shardsieve_node_keys"] == stats.key_count == 37
+        assert values["shardsieve_node_wasted_probes_total"] == stats.reads_missed == 1
+        assert values["shardsieve_node_fill"] == pytest.approx(stats.fill)
+    finally:
+        node.stop()
+
+
+def test_a_stalled_coordinator_does_not_hold_back_another(tmp_path: Path) -> None:
+    """Two coordinators; one swallows every message (never acks). The other still gets every
+    change; once the stalled one recovers it converges too (from history or a snapshot)."""
+    with TestCoordinator() as fast, TestCoordinator() as slow:
+        node = start_node(tmp_path, "n8", coordinators=[fast.address, slow.address],
+                          extra=["--capacity", "3000", "--history-limit", "8"])
+        try:
+            fast.wait_for_node("n8")
+            slow.wait_for_node("n8")
+            slow.drop_messages = True
+            stub = node.stub()
+            ack = None
+            for i in range(30):   # 30 separate pushes > history-limit 8: the slow one falls off the history
+                reply = stub.BatchPut(storage_pb2.BatchPutRequest(
+                    items=[storage_pb2.PutRequest(key=f"p{i}/{j}".encode(), value=b"") for j in range(10)]))
+                ack = reply.acks[-1]
+                wait_until(lambda a=ack: fast.sync.covers("n8", a.epoch, a.sequence), 10,
+                           message=lambda: "the fast coordinator keeps up\n" + node.log_tail())
+            assert_copy_equals_node(fast, node, ack)
+            assert not slow.sync.covers("n8", ack.epoch, ack.sequence)
+            slow.drop_messages = False
+            assert_copy_equals_node(slow, node, ack)
+        finally:
+            node.stop()

@@ -267,10 +267,19 @@ class ContainerCluster:
         return new
 
     def pause(self, d: Daemon) -> None:
+        """Freeze every process of the container (docker pause): it holds its sockets but answers nothing."""
         d.wrapped.pause()
 
     def unpause(self, d: Daemon) -> None:
         d.wrapped.unpause()
+
+    def disconnect(self, d: Daemon) -> None:
+        """Cut the container off the private network (docker network disconnect): a network partition."""
+        self.network._unwrap_network.disconnect(d.wrapped.id, force=True)
+
+    def reconnect(self, d: Daemon) -> None:
+        """Join the network again under the same alias (its address there may change)."""
+        self.network.connect(d.wrapped.id, network_aliases=[d.alias])
 
     # -- observing -------------------------------------------------------------------------------------
     def fleet(self, coordinator: Daemon, timeout: float = 3.0) -> dict[str, admin_pb2.NodeStatus]:
@@ -313,8 +322,17 @@ class ContainerCluster:
         return Driver(coordinator, history)
 
     # -- teardown ------------------------------------------------------------------------------------
+    def ip_of(self, d: Daemon) -> str:
+        try:
+            d.wrapped.reload()
+            nets = d.wrapped.attrs["NetworkSettings"]["Networks"]
+            return ", ".join(f"{v.get('IPAddress')}" for v in nets.values()) or "no network"
+        except Exception as exc:  # noqa: BLE001 - diagnostics only
+            return f"unknown ({exc})"
+
     def dump_logs(self) -> str:
-        return "\n".join(f"===== {d.name} ({d.kind}) =====\n{d.logs(80)}" for d in self.daemons.values())
+        return "\n".join(f"===== {d.name} ({d.kind}, {self.ip_of(d)}) =====\n{d.logs(80)}"
+                         for d in self.daemons.values())
 
     def close(self) -> None:
         """Remove every container, the network and the volumes this cluster made (labels find strays)."""
@@ -362,9 +380,11 @@ def cluster(docker_client, request) -> Iterator[ContainerCluster]:  # noqa: ANN0
 class Driver:
     """Writes and reads through one coordinator's Router, recording each outcome in a history.
 
-    `history` is a shardsieve.testing.history.History; every acknowledged write and every read
-    (with its start and end time) goes into it, so its checks decide what counts as a lost or
-    falsely absent key.
+    `history` is a shardsieve.testing.history.History: every acknowledged write and every read
+    reply (found or not found, with start and end times) goes into it, and its `assert_ok`
+    decides whether an acknowledged key was ever reported absent or a value was invented.
+    Failed calls are not replies: a failed write is not recorded as acknowledged, a failed read
+    is returned to the test (which checks it is a clear UNAVAILABLE where one is due).
     """
 
     def __init__(self, coordinator: Daemon, history, timeout: float = 5.0) -> None:  # noqa: ANN001
@@ -376,33 +396,29 @@ class Driver:
         """Write through the coordinator; the owning node id when acknowledged, None when not."""
         from shardsieve.v1 import routing_pb2
 
-        started = time.monotonic()
+        start = self.history.now()
         try:
             reply = self.coordinator.router().Write(routing_pb2.WriteRequest(key=key, value=value),
                                                     timeout=self.timeout)
-        except grpc.RpcError as exc:
-            self.history.write_failed(key, value, started, time.monotonic(), str(exc.code()))
+        except grpc.RpcError:
             return None
-        self.history.write_acked(key, value, started, time.monotonic(), node=reply.node_id)
+        self.history.write(key, value, start, node_id=reply.node_id, via="coordinator")
         return reply.node_id
 
     def read(self, key: bytes, deadline_ms: int = 0) -> tuple[str, bytes | None, str]:
         """Read through the coordinator (safe mode): ("found", value, node) / ("absent", None, "") /
-        ("error", None, "<grpc code>: <details>")."""
+        ("error", None, "<grpc code name>: <details>")."""
         from shardsieve.v1 import routing_pb2
 
-        started = time.monotonic()
+        start = self.history.now()
         try:
             reply = self.coordinator.router().Read(routing_pb2.ReadRequest(key=key, deadline_ms=deadline_ms),
                                                    timeout=self.timeout)
         except grpc.RpcError as exc:
-            outcome = ("error", None, f"{exc.code().name}: {exc.details()}")
-            self.history.read_failed(key, started, time.monotonic(), outcome[2])
-            return outcome
+            return ("error", None, f"{exc.code().name}: {exc.details()}")
+        self.history.read(key, reply.found, reply.value if reply.found else None, start, node_id=reply.node_id)
         if reply.found:
-            self.history.read_found(key, reply.value, started, time.monotonic())
             return ("found", reply.value, reply.node_id)
-        self.history.read_absent(key, started, time.monotonic())
         return ("absent", None, "")
 
     def locate(self, keys: list[bytes]) -> list[list]:  # noqa: ANN201 - list of Candidate protos per key

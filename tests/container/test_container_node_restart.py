@@ -71,4 +71,4 @@ def test_killed_node_restarts_on_its_volume_with_every_acknowledged_write(cluste
     for i in range(KEYS):
         outcome = driver.read(key_of(i))
         assert outcome[:2] == ("found", value_of(i)), (i, outcome)
-    history.check()
+    history.assert_ok()

@@ -1,5 +1,5 @@
-"""A node is cut off (its container frozen with docker pause): the coordinator must not turn
-"cannot ask" into "not found".
+"""A node is cut off — its container frozen (docker pause) or taken off the network (docker
+network disconnect): the coordinator must not turn "cannot ask" into "not found".
 
 Reference: the Router contract in proto/shardsieve/v1/routing.proto ("UNAVAILABLE when a
 candidate that may hold the key could not be asked: absence cannot be proven then") and the safe
@@ -30,7 +30,8 @@ def value_of(i: int) -> bytes:
     return f"bed-{i % 11}|sown-day-{i % 365}".encode()
 
 
-def test_cut_off_node_is_stale_and_unavailable_never_absent_then_heals(cluster, report_time) -> None:
+@pytest.mark.parametrize("how", ["pause", "disconnect"])
+def test_cut_off_node_is_stale_and_unavailable_never_absent_then_heals(cluster, report_time, how: str) -> None:
     coordinator = cluster.start_coordinator()
     nodes = [cluster.start_node(f"node-{i}", [coordinator.alias]) for i in (1, 2, 3)]
     cluster.wait_synced(coordinator, nodes)
@@ -46,10 +47,10 @@ def test_cut_off_node_is_stale_and_unavailable_never_absent_then_heals(cluster, 
     assert victim_keys and other_keys, f"placement: {set(owners.values())}"
 
     cut = time.monotonic()
-    cluster.pause(victim)
+    cluster.pause(victim) if how == "pause" else cluster.disconnect(victim)
     wait_until(lambda: cluster.fleet(coordinator)[victim.alias].stale, 20, interval=0.05,
                message=f"{victim.alias} to be reported stale")
-    report_time("partition: cut -> coordinator reports the node stale", time.monotonic() - cut)
+    report_time(f"partition ({how}): cut -> coordinator reports the node stale", time.monotonic() - cut)
 
     # Safe mode lists the cut-off node, marked stale, for its keys (and every other key).
     for key, candidates in zip(victim_keys, driver.locate(victim_keys)):
@@ -67,13 +68,13 @@ def test_cut_off_node_is_stale_and_unavailable_never_absent_then_heals(cluster, 
         assert driver.read(key, deadline_ms=600)[0] == "found"
 
     healed = time.monotonic()
-    cluster.unpause(victim)
+    cluster.unpause(victim) if how == "pause" else cluster.reconnect(victim)
     cluster.wait_synced(coordinator, [victim])
-    report_time("partition: heal -> coordinator in sync with the node", time.monotonic() - healed)
+    report_time(f"partition ({how}): heal -> coordinator in sync with the node", time.monotonic() - healed)
 
     for key, candidates in zip(victim_keys, driver.locate(victim_keys)):
         assert any(c.node_id == victim.alias and not c.stale for c in candidates), (key, candidates)
     for i in range(KEYS):
         outcome = driver.read(key_of(i))
         assert outcome[:2] == ("found", value_of(i)), (i, outcome)
-    history.check()
+    history.assert_ok()

@@ -63,4 +63,4 @@ def test_two_coordinators_route_every_key_and_one_survives_the_other(cluster) ->
     for i in extra:
         outcome = via_second.read(key_of(i))
         assert outcome[:2] == ("found", value_of(i)), (i, outcome)
-    history.check()
+    history.assert_ok()

@@ -49,7 +49,7 @@ PEER = "coordinator-a"
 RTO = 0.5                     # node retransmit timer (simulated seconds)
 NEED_RETRY = 0.3              # coordinator NeedSnapshot repeat interval
 _PLAN = {"write": 30, "exchange": 45, "heartbeat": 5, "reconnect": 3, "disconnect": 3, "restart": 2,
-         "node_restart": 1.5, "rebuild": 4, "idle": 3}
+         "node_restart": 1.5, "rebuild": 6, "idle": 3}
 _ACTIONS = list(_PLAN)
 _WEIGHTS = list(_PLAN.values())
 _POSITIONS: dict = {}
@@ -73,10 +73,11 @@ class Simulation:
         self.now = 0.0
         self.loss = rng.choice((0.0, 0.05, 0.15, 0.3))
         self.dup = rng.choice((0.0, 0.05, 0.2))
-        self.reorder = rng.choice((0, 1, 3))
+        self.reorder = rng.choice((0, 1, 3, 8))
         self.universe = [f"parcel-{i:03d}" for i in range(rng.randint(8, 48))]
         self.live: set[str] = set()
-        self.added_at: dict[str, tuple[int, int]] = {}
+        self.added_at: dict[str, tuple[list[tuple[int, int]], int]] = {}
+        self.seen: set[str] = set()   # live keys the coordinator has applied (promise 1 holds for them)
         geometry = Geometry(bits=rng.choice((1024, 2048, 4096)), hashes=rng.randint(2, 7), seed=rng.randint(0, 9))
         self.filter = CountingBloomFilter(geometry)
         initial = sorted(rng.sample(self.universe, rng.randint(0, len(self.universe) // 2)))
@@ -85,7 +86,7 @@ class Simulation:
         self.live.update(initial)
         self.config = NodeSyncConfig(max_history_deltas=rng.randint(1, 8), max_history_bytes=rng.choice((64, 400, 4000)),
                                      max_in_flight_bytes=rng.choice((60, 300, 1 << 20)), retransmit_after_s=RTO,
-                                     max_chunk_bytes=rng.choice((16, 64, 1 << 20)), max_rebuild_attempts=3)
+                                     max_chunk_bytes=rng.choice((16, 32, 64, 1 << 20)), max_rebuild_attempts=3)
         self.node = NodeSync(NODE, "127.0.0.1:7001", self.filter, epoch=rng.randint(1, 3), capacity=100,
                              target_fpr=0.01, key_count=len(self.live), config=self.config)
         self.new_filter: CountingBloomFilter | None = None  # during a rebuild: dual-written
@@ -99,6 +100,7 @@ class Simulation:
 
     # ------------------------------------------------------------------ parts
     def _new_coordinator(self) -> None:
+        self.seen = set()   # a restarted coordinator promises nothing about what it never applied
         self.sink = DictReplicaSink()
         self.coord = CoordinatorSync(self.sink, CoordinatorSyncConfig(need_snapshot_retry_s=NEED_RETRY))
 
@@ -179,7 +181,7 @@ class Simulation:
     def pull(self, reliable: bool) -> None:
         if self.link is None:
             return
-        budget = self.rng.choice((100, 1000, 1 << 20)) if not reliable else 1 << 20
+        budget = self.rng.choice((40, 100, 1000, 1 << 20)) if not reliable else 1 << 20
         for msg in self.node.outgoing(PEER, self.now, budget):
             self.send(self.link.to_coord, msg, reliable)
 
@@ -248,12 +250,20 @@ class Simulation:
             return
         replica = self.sink.replicas[NODE]
         bits = replica.bits
+        epoch, sequence = pos
         for key in self.live:
-            hint = self.added_at.get(key)
-            if hint is not None and pos >= hint and not all(
-                    bits[int(p)] for p in self.positions(key, replica.geometry)[0]):
-                raise AssertionError(
-                    f"promise 1 broken: key {key!r} added at {hint}, replica at {pos} does not hold it")
+            if key not in self.seen:
+                added = self.added_at.get(key)
+                if added is None:
+                    continue
+                points, highest = added
+                if epoch > highest or any(epoch == e and sequence >= q for e, q in points):
+                    self.seen.add(key)   # the coordinator applied a state holding the key
+                else:
+                    continue
+            if not all(bits[int(p)] for p in self.positions(key, replica.geometry)[0]):
+                raise AssertionError(f"promise 1 broken: key {key!r} (added at {self.added_at.get(key)}) was "
+                                     f"applied by the coordinator, yet the replica at {pos} does not hold it")
 
     # ------------------------------------------------------------------ schedule
     def step(self) -> None:
@@ -267,6 +277,10 @@ class Simulation:
         elif action == "exchange":
             # one round trip's worth of traffic, each message exposed to loss/dup/reorder
             self.pull(reliable=False)
+            if rng.random() < 0.3:   # writes racing with a transfer in progress
+                self.write_all()
+                self.node.cut(self.now, key_count=len(self.live))
+                self.pull(reliable=False)
             for _ in range(rng.randint(1, 4)):
                 self.deliver_to_coord(reliable=False)
             for _ in range(rng.randint(1, 4)):
@@ -304,10 +318,14 @@ class Simulation:
         self.live.difference_update(removed)
         for key in removed:
             self.added_at.pop(key, None)
+            self.seen.discard(key)
         self.live.update(added)
-        point = self.node.pending_sequence   # the WriteAck point: the replica holds the keys from here on
+        # every state cut from now on, in every live epoch, holds the added keys; so does
+        # every epoch begun later
+        points = ([(e, q + 1) for e, q in self.node.live_positions], self.node.highest_epoch)
         for key in added:
-            self.added_at[key] = point
+            self.added_at[key] = points
+            self.seen.discard(key)
 
     def rows(self, keys: list[str], geometry: Geometry):
         return np.concatenate([self.positions(key, geometry) for key in keys])

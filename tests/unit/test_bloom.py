@@ -191,3 +191,13 @@ def test_pad_bits_of_the_buffer_never_show() -> None:
     assert bf.set_positions().size == 1029
     assert bf.to_bytes()[-1] == 0b00011111
     assert bf.contains(b"anything")    # a full filter says "maybe" to every key
+
+
+def test_apply_rejects_repeated_positions_and_accepts_unsorted() -> None:
+    bf = BloomFilter(G)
+    with pytest.raises(FilterDivergedError, match="appears twice"):
+        bf.apply(ChangeSet(np.array([7, 5, 7], dtype=np.uint64), np.zeros(0, dtype=np.uint64)))
+    assert bf.set_count() == 0
+    bf.apply(ChangeSet(np.array([9, 3, 8], dtype=np.uint64), np.zeros(0, dtype=np.uint64)))
+    assert bf.set_positions().tolist() == [3, 8, 9]
+    assert bf.checksum == checksum.xor_of([3, 8, 9])

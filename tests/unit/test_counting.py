@@ -132,28 +132,33 @@ def test_change_sets_drive_a_replica_with_matching_checksum() -> None:
     assert cbf.checksum == checksum.xor_of(cbf.bloom().set_positions())
 
 
-def test_flip_log_compaction_keeps_changes_exact(monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setattr(bloom, "_FLIP_LOG_MIN", 16)
+@pytest.mark.parametrize("takes_between", [False, True])
+def test_many_flips_switch_to_a_baseline_and_stay_exact(monkeypatch: pytest.MonkeyPatch, takes_between: bool) -> None:
+    monkeypatch.setattr(bloom, "_FLIP_LOG_MIN", 16)     # switch after a few flips
     cbf = CountingBloomFilter(G)
-    before = cbf.bloom()
-    compactions = 0
-    original = CountingBloomFilter._compact_flips
-
-    def counting(self: CountingBloomFilter) -> None:
-        nonlocal compactions
-        compactions += 1
-        original(self)
-
-    monkeypatch.setattr(CountingBloomFilter, "_compact_flips", counting)
-    for i in range(300):                   # far more flips than G.bits // 8: the log compacts
+    replica = BloomFilter(G)
+    switched = False
+    for i in range(300):
         cbf.add(b"churn-%d" % i)
         cbf.remove(b"churn-%d" % i)
         cbf.add(b"keep-%d" % i)
+        switched |= cbf._baseline is not None
+        if takes_between and i % 97 == 0:
+            replica.apply(cbf.take_changes())
+    assert switched
     change = cbf.take_changes()
-    assert compactions > 2
-    before.apply(change)
-    assert before == cbf.bloom()
-    assert change == ChangeSet.of(cbf.bloom().set_positions())
+    replica.apply(change)
+    assert replica == cbf.bloom() and replica.checksum == cbf.checksum
+    assert cbf._baseline is None and cbf.take_changes().is_empty
+    if not takes_between:
+        assert change == ChangeSet.of(cbf.bloom().set_positions())
+    # removing everything afterwards is reported as clears only
+    for i in range(300):
+        cbf.remove(b"keep-%d" % i)
+    last = cbf.take_changes()
+    assert last.set_positions.size == 0
+    replica.apply(last)
+    assert replica.set_count() == 0
 
 
 def test_bloom_is_a_copy() -> None:

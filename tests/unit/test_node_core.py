@@ -97,6 +97,12 @@ def test_ack_sequence_is_the_delta_that_carries_the_write() -> None:
     assert (deltas[0].epoch, deltas[0].sequence) == (ack.epoch, ack.sequence)
     ack2 = core.put_many([(b"k2", b"v")])[0]
     assert ack2.sequence == ack.sequence + 1
+    core.cut()
+    # nothing changed in the filter: the ack names the delta already cut, not one that may never come
+    over = core.put_many([(b"k1", b"new value")])[0]
+    gone = core.delete_many([b"never-there"])[0]
+    assert (over.sequence, gone.sequence) == (ack2.sequence, ack2.sequence)
+    assert core.cut() == []
 
 
 @pytest.mark.parametrize("bad, limit", [
@@ -197,3 +203,72 @@ def test_no_key_missing_from_the_routed_filter_during_rebuild() -> None:
         core.put_many([(f"b{random.random()}".encode()[:16], b"v")])
         keys = [k for b in iter_all_keys(store) for k in b]
         assert bool(np.all(core.filter.contains_batch(keys)))
+
+
+class GatedStore(MemoryStore):
+    """A MemoryStore whose first write_batch waits for a gate; records every transaction."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        import threading
+
+        self.gate = threading.Event()
+        self.entered = threading.Event()
+        self.transactions: list[int] = []
+        self.fail_next = False
+
+    def write_batch(self, ops):  # type: ignore[no-untyped-def]
+        if not self.transactions:
+            self.entered.set()
+            self.gate.wait(10)
+        if self.fail_next:
+            self.fail_next = False
+            from node.store import StoreError
+
+            raise StoreError("disk full (simulated)")
+        self.transactions.append(len(ops))
+        return super().write_batch(ops)
+
+
+def test_concurrent_writers_share_one_commit() -> None:
+    """Group commit: writers queued behind a commit in progress go out together in the next one."""
+    import threading
+
+    store = GatedStore()
+    core = make_core(store)  # type: ignore[arg-type]
+    results: dict[int, object] = {}
+
+    def write(i: int) -> None:
+        results[i] = core.put_many([(f"g{i}".encode(), b"v")])[0]
+
+    first = threading.Thread(target=write, args=(0,))
+    first.start()
+    assert store.entered.wait(10)
+    others = [threading.Thread(target=write, args=(i,)) for i in range(1, 6)]
+    for t in others:
+        t.start()
+    from shardsieve.testing.procs import wait_until
+
+    wait_until(lambda: len(core._queue) == 5, 10, message="five writers queued")
+    store.gate.set()
+    for t in [first, *others]:
+        t.join(10)
+    assert store.transactions == [1, 5]
+    assert all(r.created for r in results.values())  # type: ignore[attr-defined]
+    assert len({(r.epoch, r.sequence) for r in results.values()}) == 1  # type: ignore[attr-defined]
+    assert counters(core.filter) == counters(reference_filter(store, core.geometry))
+
+
+def test_failed_commit_fails_the_group_and_changes_nothing() -> None:
+    from node.store import StoreError
+
+    store = GatedStore()
+    store.gate.set()
+    core = make_core(store)  # type: ignore[arg-type]
+    core.put_many([(b"before", b"1")])
+    checksum, keys = core.filter.checksum, core.key_count
+    store.fail_next = True
+    with pytest.raises(StoreError, match="disk full"):
+        core.put_many([(b"lost", b"1")])
+    assert core.filter.checksum == checksum and core.key_count == keys and store.get(b"lost") is None
+    assert core.put_many([(b"after", b"1")])[0].created   # the node keeps working
