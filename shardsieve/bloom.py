@@ -28,6 +28,7 @@ from shardsieve.hashing import CHUNK_KEYS, digests, key_positions, positions_fro
 
 _S3 = np.uint64(3)
 _M7 = np.uint64(7)
+_M7_8 = np.uint8(7)
 _ONE8 = np.uint8(1)
 _BIT_MASKS = np.array([1 << i for i in range(8)], dtype=np.uint8)
 _SCRATCH_MAX_BITS = 1 << 26  # bulk inserts use an m-byte scratch only up to 64 MiB
@@ -51,7 +52,8 @@ def _endian(bits: bitarray) -> str:
 def _byte_and_shift(pos: Positions) -> tuple[npt.NDArray[np.int64], npt.NDArray[np.uint8]]:
     """Byte index (as int64, positions are < 2^40) and bit-in-byte of every position."""
     byte = (pos >> _S3).view(np.int64)
-    shift = (pos & _M7).astype(np.uint8)
+    shift = pos.astype(np.uint8)   # low 8 bits (a 1-byte pass), then the bit in byte
+    shift &= _M7_8
     return byte, shift
 
 
@@ -133,7 +135,8 @@ def _contains_kn(buf: npt.NDArray[np.uint8], pos_kn: Positions) -> npt.NDArray[n
     acc: npt.NDArray[np.uint8] | None = None
     for row in pos_kn:
         byte = (row >> _S3).view(np.int64)
-        shift = (row & _M7).astype(np.uint8)
+        shift = row.astype(np.uint8)
+        shift &= _M7_8
         bit = buf.take(byte)
         bit >>= shift
         if acc is None:

@@ -74,6 +74,8 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
     workdir.mkdir(parents=True, exist_ok=True)
     out = console(stderr=as_json)
     previous_term = signal.signal(signal.SIGTERM, _on_sigterm)
+    # Ctrl-C must stop the fleet even when SIGINT was inherited as ignored (e.g. started with `&`).
+    previous_int = signal.signal(signal.SIGINT, signal.default_int_handler)
     node_ids = [f"shed-{i + 1}" for i in range(nodes)]
     recs = scenario.records(records, seed)
     # Filters sized for an even share of the records; the cooperative's placement is uneven, so the
@@ -143,6 +145,7 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
         if not keep or report is None:
             cluster.stop()
         signal.signal(signal.SIGTERM, previous_term)
+        signal.signal(signal.SIGINT, previous_int)
 
 
 def _print_next_steps(out: Console, address: str, workdir: Path, keep: bool, token: str | None,

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import math
+from collections.abc import Callable
 
 import click
 
@@ -46,7 +47,8 @@ def _parse_fpr(ctx: click.Context, param: click.Parameter, value: str | None) ->
     return fpr
 
 
-def _whole(option: str, what: str, default: int | None = None):  # noqa: ANN202 - click callback factory
+def _whole(option: str, what: str, default: int | None = None) -> Callable[[click.Context, click.Parameter, str | None], int]:
+    """A click callback parsing a whole number >= 1 (our own message instead of click's three lines)."""
     def check(ctx: click.Context, param: click.Parameter, value: str | None) -> int:
         if value is None:
             if default is None:
@@ -88,11 +90,11 @@ def _render(p: Plan) -> None:
 
 
 @click.command("plan")
-@click.option("--keys", "keys", type=str, default=None, callback=_whole("--keys", "expected keys per node"),
+@click.option("--keys", "keys", type=str, default=None, metavar="N", callback=_whole("--keys", "expected keys per node"),
               help="Expected keys per node (each node's filter is sized for this many).")
-@click.option("--fpr", "fpr", type=str, default=None, callback=_parse_fpr,
+@click.option("--fpr", "fpr", type=str, default=None, metavar="P", callback=_parse_fpr,
               help="Target false-positive rate per node filter, strictly between 0 and 1.")
-@click.option("--nodes", "nodes", type=str, default=None, callback=_whole("--nodes", "the number of nodes", 1),
+@click.option("--nodes", "nodes", type=str, default=None, metavar="K", callback=_whole("--nodes", "the number of nodes", 1),
               help="Nodes in the fleet (K)  [default: 1]")
 @click.option("--json", "as_json", is_flag=True, help="Print the figures as one JSON object.")
 def plan(keys: int, fpr: float, nodes: int, as_json: bool) -> None:

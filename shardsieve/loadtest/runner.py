@@ -109,30 +109,32 @@ def seed_new(channels: NodeChannels, node_ids: Sequence[str], count: int, rng: n
     return keys, owners
 
 
-def scan_existing(channels: NodeChannels, limit: int, on_progress: Progress | None = None
-                  ) -> tuple[list[bytes], list[str]]:
-    """Reuse the keys already stored: ScanKeys on every node, up to `limit` keys in total.
+def scan_existing(channels: NodeChannels, limit: int, on_progress: Progress | None = None,
+                  page: int = 1000) -> tuple[list[bytes], list[str]]:
+    """Reuse the keys already stored: ScanKeys on every node, page by page in turn, up to `limit`.
 
-    A key present on several nodes is kept once, with its first owner; the others still count as
-    holders in the coordinator's read, so such keys are dropped to keep the prediction exact.
+    Taking pages in turn keeps the sample spread over the nodes. A key present on several nodes
+    is dropped: the coordinator's read would count every holder, so its prediction is not 1 + ...
     """
     from shardsieve.v1 import storage_pb2
     found: dict[bytes, list[str]] = {}
-    per_node = max(1, limit // max(1, len(channels.stubs)) + 1)
-    for node_id, stub in sorted(channels.stubs.items()):
-        after = b""
-        taken = 0
-        while taken < per_node:
+    cursors: dict[str, bytes] = {node_id: b"" for node_id in sorted(channels.stubs)}
+    while cursors and len(found) < limit:
+        for node_id in list(cursors):
+            want = min(page, limit - len(found))
+            if want <= 0:
+                break
+            stub = channels.stubs[node_id]
             reply = channels.call(node_id, "ScanKeys", stub.ScanKeys,
-                                  storage_pb2.ScanKeysRequest(limit=min(1000, per_node - taken), after=after))
+                                  storage_pb2.ScanKeysRequest(limit=want, after=cursors[node_id]))
             for k in reply.keys:
                 found.setdefault(k, []).append(node_id)
-            taken += len(reply.keys)
             if on_progress:
                 on_progress(len(reply.keys))
             if reply.done or not reply.keys:
-                break
-            after = reply.keys[-1]
+                del cursors[node_id]
+            else:
+                cursors[node_id] = reply.keys[-1]
     unique = [(k, owners[0]) for k, owners in found.items() if len(owners) == 1][:limit]
     return [k for k, _ in unique], [o for _, o in unique]
 

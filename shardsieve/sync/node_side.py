@@ -639,9 +639,12 @@ class NodeSync:
 
     def _on_ack(self, p: _Peer, epoch: int, sequence: int, now: float, verified_id: int | None = None) -> None:
         """Ack and SnapshotVerified: the coordinator's replica is at (epoch, sequence)."""
-        if self._live(epoch) is None:
-            return  # an epoch already retired or abandoned: a late message
         snap = p.snapshot
+        if self._live(epoch) is None:
+            if p.stream_epoch is not None and epoch > p.stream_epoch and snap is None and p.wanted is None:
+                # the coordinator installed a rebuild we then abandoned: move it back by a snapshot
+                p.wanted = (PURPOSE_RESYNC, f"coordinator follows abandoned epoch {epoch}")
+            return  # otherwise an epoch already retired: a late message
         if snap is not None and epoch == snap.epoch and sequence >= snap.sequence and (
                 snap.all_sent or verified_id == snap.snapshot_id):
             # the coordinator installed this snapshot (or holds a later state of its epoch)

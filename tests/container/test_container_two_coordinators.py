@@ -47,7 +47,8 @@ def test_two_coordinators_route_every_key_and_one_survives_the_other(cluster) ->
     keys = list(owners)
     for driver in (via_first, via_second):
         for key, candidates in zip(keys, driver.locate(keys)):
-            assert any(c.node_id == owners[key] and not c.stale for c in candidates), (driver.coordinator.alias, key)
+            assert any(c.node_id == owners[key] and not c.stale for c in candidates), \
+                (driver.coordinator.alias, key, owners[key], candidates)
         for i in range(KEYS):
             outcome = driver.read(key_of(i))
             assert outcome[:2] == ("found", value_of(i)), (driver.coordinator.alias, i, outcome)
