@@ -220,8 +220,12 @@ def measure_write_to_routable(writes: int, push_interval_ms: int, log: Callable[
                           extra_coordinator_args=["--auto-rebuild", "false"]) as cluster:
             router = cluster.router()
             node = cluster.storage("node-1")
+            phase = np.random.default_rng(7)
             for i in range(writes):
                 key = f"routable-{i}".encode()
+                # Real writes arrive at random phases of the node's push timer; writing right after the
+                # previous one became routable would line every write up just after a push (worst case).
+                time.sleep(float(phase.uniform(0.0, push_interval_ms / 1000.0)))
                 node.Put(storage_pb2.PutRequest(key=key, value=b"x"), timeout=5)
                 t0 = time.perf_counter()   # the write is acknowledged; now wait until it is routable
                 deadline = t0 + 5.0

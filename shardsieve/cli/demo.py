@@ -76,7 +76,7 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
     previous_term = signal.signal(signal.SIGTERM, _on_sigterm)
     # Ctrl-C must stop the fleet even when SIGINT was inherited as ignored (e.g. started with `&`).
     previous_int = signal.signal(signal.SIGINT, signal.default_int_handler)
-    node_ids = [f"shed-{i + 1}" for i in range(nodes)]
+    node_ids = [f"shed-{i + 1:02d}" for i in range(nodes)]
     recs = scenario.records(records, seed)
     # Filters sized for an even share of the records; the cooperative's placement is uneven, so the
     # busiest sheds end up over capacity and show as saturated (auto-rebuild is off, to explore it).

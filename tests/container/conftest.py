@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import itertools
 import os
+import threading
 import time
 from dataclasses import dataclass, field
 from typing import Callable, Iterator
@@ -169,6 +170,11 @@ class ContainerCluster:
         self.network = Network(docker_network_kw={"labels": {LABEL: tag}}).create()
         self.daemons: dict[str, Daemon] = {}
         self.volumes: set[str] = set()
+        # Highest (epoch, sequence) a node acknowledged a write with, per node: a coordinator is in
+        # sync with a node only once it applied that far (the node's Stats show only the last delta
+        # cut; a write's change may still be pending for one push interval).
+        self.acked: dict[str, tuple[int, int]] = {}
+        self._acked_lock = threading.Lock()
 
     # -- starting ------------------------------------------------------------------------------------
     def _run(self, d: Daemon, internal_port: int) -> None:
@@ -291,9 +297,16 @@ class ContainerCluster:
         stats = node.storage().Stats(storage_pb2.NodeStatsRequest(), timeout=timeout).stats
         return int(stats.epoch), int(stats.sequence)
 
+    def note_ack(self, node_id: str, epoch: int, sequence: int) -> None:
+        with self._acked_lock:
+            self.acked[node_id] = max(self.acked.get(node_id, (0, 0)), (epoch, sequence))
+
     def synced(self, coordinator: Daemon, nodes: list[Daemon]) -> bool:
-        """True when the coordinator is in sync with each node up to the node's position read just before."""
-        positions = {n.alias: self.node_position(n) for n in nodes}
+        """True when the coordinator is in sync with each node: connected, fresh, and applied up to
+        both the node's own position (read just before) and every write the node acknowledged."""
+        with self._acked_lock:
+            acked = dict(self.acked)
+        positions = {n.alias: max(self.node_position(n), acked.get(n.alias, (0, 0))) for n in nodes}
         fleet = self.fleet(coordinator)
         for node_id, pos in positions.items():
             st = fleet.get(node_id)
@@ -319,7 +332,7 @@ class ContainerCluster:
         return time.monotonic() - t0
 
     def driver(self, coordinator: Daemon, history) -> "Driver":  # noqa: ANN001
-        return Driver(coordinator, history)
+        return Driver(coordinator, history, self)
 
     # -- teardown ------------------------------------------------------------------------------------
     def ip_of(self, d: Daemon) -> str:
@@ -387,9 +400,10 @@ class Driver:
     is returned to the test (which checks it is a clear UNAVAILABLE where one is due).
     """
 
-    def __init__(self, coordinator: Daemon, history, timeout: float = 5.0) -> None:  # noqa: ANN001
+    def __init__(self, coordinator: Daemon, history, cluster: ContainerCluster, timeout: float = 5.0) -> None:  # noqa: ANN001
         self.coordinator = coordinator
         self.history = history
+        self.cluster = cluster
         self.timeout = timeout
 
     def write(self, key: bytes, value: bytes) -> str | None:
@@ -403,6 +417,7 @@ class Driver:
         except grpc.RpcError:
             return None
         self.history.write(key, value, start, node_id=reply.node_id, via="coordinator")
+        self.cluster.note_ack(reply.node_id, reply.epoch, reply.sequence)
         return reply.node_id
 
     def read(self, key: bytes, deadline_ms: int = 0) -> tuple[str, bytes | None, str]:

@@ -1,0 +1,361 @@
+"""Unit tests of the coordinator end of the sync protocol (CoordinatorSync): one rule per test.
+
+Requirement sources named beside the assertions: issue 4 (coordinator) point 1, issue 3
+point 5 (rebuild), docs/sync-protocol.md for the rules it derives. The node side is driven
+by hand-made messages (deltas encoded with the project codec from change sets written out
+here), so each rule is tested in isolation. Filter contents are checked against an
+independent computation of the hash scheme with mmh3 directly (MurmurHash3 x64 128,
+Kirsch & Mitzenmacher 2006 double hashing, multiply-shift range reduction).
+"""
+
+from __future__ import annotations
+
+import mmh3
+import pytest
+
+from shardsieve.bloom import BloomFilter
+from shardsieve.changeset import ChangeSet
+from shardsieve.codec import encode_delta
+from shardsieve.geometry import Geometry
+from shardsieve.snapshot import encode_snapshot
+from shardsieve.sync.coordinator_side import CoordinatorSync, CoordinatorSyncConfig, DictReplicaSink
+from shardsieve.sync.errors import (
+    HelloTwice,
+    InvalidHello,
+    MalformedMessage,
+    NotOpened,
+    StaleStream,
+    UnsupportedProtocolVersion,
+    WrongNodeId,
+)
+from shardsieve.v1 import filter_pb2, sync_pb2
+
+NODE = "node-kestrel-4"
+G = Geometry(bits=1024, hashes=4, seed=1)
+G2 = Geometry(bits=4096, hashes=6, seed=1)
+R = sync_pb2
+
+
+def reference_positions(key: str, g: Geometry) -> list[int]:
+    """Positions by the published recipe, computed here from mmh3 alone."""
+    digest = mmh3.mmh3_x64_128_digest(key.encode(), g.seed)
+    h1 = int.from_bytes(digest[:8], "little")
+    h2 = int.from_bytes(digest[8:], "little")
+    return sorted({(((h1 + i * h2) % 2**64) * g.bits) >> 64 for i in range(g.hashes)})
+
+
+class FakeNode:
+    """Produces the messages a node would send, from explicit change sets."""
+
+    def __init__(self, geometry: Geometry = G, epoch: int = 1) -> None:
+        self.geometry = geometry
+        self.epoch = epoch
+        self.sequence = 0
+        self.bloom = BloomFilter(geometry)
+        self.snapshot_ids = 100
+
+    def hello(self, floor: int = 0, node_id: str = NODE, version: int = 1) -> sync_pb2.Hello:
+        return sync_pb2.Hello(node_id=node_id, storage_address="10.0.0.9:7100", geometry=self.geometry.to_proto(),
+                              epoch=self.epoch, sequence=self.sequence, checksum=self.bloom.checksum, key_count=3,
+                              capacity=90, target_fpr=0.01, push_interval_ms=50, protocol_version=version,
+                              history_floor=floor)
+
+    def add_key(self, key: str) -> sync_pb2.NodeMessage:
+        """The delta that adds key (only the bits not set yet)."""
+        new = [p for p in reference_positions(key, self.geometry) if not self.bloom.bits[p]]
+        return self.delta(ChangeSet.of(new, []))
+
+    def delta(self, changes: ChangeSet) -> sync_pb2.NodeMessage:
+        self.bloom.apply(changes)
+        self.sequence += 1
+        return sync_pb2.NodeMessage(delta=filter_pb2.Delta(
+            epoch=self.epoch, sequence=self.sequence, payload=encode_delta(changes, self.geometry.bits),
+            checksum=self.bloom.checksum, key_count=self.sequence))
+
+    def snapshot(self, purpose=filter_pb2.SNAPSHOT_PURPOSE_RESYNC, chunk: int = 1 << 20) -> list[sync_pb2.NodeMessage]:
+        self.snapshot_ids += 1
+        enc = encode_snapshot(self.bloom, max_chunk_bytes=chunk)
+        return [sync_pb2.NodeMessage(snapshot_chunk=filter_pb2.SnapshotChunk(
+            snapshot_id=self.snapshot_ids, epoch=self.epoch, sequence=self.sequence,
+            geometry=self.geometry.to_proto(), encoding=enc.encoding, purpose=purpose, chunk_index=i,
+            chunk_count=enc.chunk_count, total_bytes=enc.total_bytes, data=data, checksum=self.bloom.checksum,
+            key_count=7, capacity=90)) for i, data in enumerate(enc.chunks)]
+
+
+def kinds(messages) -> list[str]:
+    return [m.WhichOneof("body") for m in messages]
+
+
+def reasons(messages) -> list[str]:
+    return [R.SnapshotReason.Name(m.need_snapshot.reason) for m in messages if m.WhichOneof("body") == "need_snapshot"]
+
+
+def send_all(sync: CoordinatorSync, messages, stream=1, now=0.0) -> list[sync_pb2.CoordinatorMessage]:
+    out = []
+    for m in messages:
+        out += sync.receive(NODE, stream, m, now)
+    return out
+
+
+def synced(keys=("box-1",)) -> tuple[CoordinatorSync, DictReplicaSink, FakeNode]:
+    sink = DictReplicaSink()
+    sync = CoordinatorSync(sink, CoordinatorSyncConfig(need_snapshot_retry_s=1.0))
+    node = FakeNode()
+    for key in keys:
+        node.add_key(key)
+    sync.open(1, node.hello(floor=node.sequence), 0.0)
+    send_all(sync, node.snapshot())
+    return sync, sink, node
+
+
+# ----------------------------------------------------------------------------- opening
+
+
+def test_first_contact_asks_for_a_snapshot_and_installs_it() -> None:
+    sink = DictReplicaSink()
+    sync = CoordinatorSync(sink)
+    node = FakeNode()
+    node.add_key("box-1")
+    out = sync.open(1, node.hello(floor=1), 0.0)
+    assert reasons(out) == ["SNAPSHOT_REASON_NO_REPLICA"]          # issue 4 point 1
+    assert out[0].node_id == NODE
+    replies = send_all(sync, node.snapshot(chunk=8))
+    assert kinds(replies) == ["ack"] and (replies[0].ack.epoch, replies[0].ack.sequence) == (1, 1)
+    assert Geometry.from_proto(replies[0].ack.geometry) == G
+    bits = sink.replicas[NODE].bits
+    assert all(bits[p] for p in reference_positions("box-1", G))   # reference: mmh3 directly
+    view = sync.node(NODE)
+    assert view.connected and view.has_replica and (view.epoch, view.sequence) == (1, 1)
+    assert view.counters.snapshots_installed == 1 and view.counters.need_snapshot == {"NO_REPLICA": 1}
+
+
+@pytest.mark.parametrize("hello, error", [
+    (FakeNode().hello(node_id=""), InvalidHello),
+    (FakeNode().hello(version=2), UnsupportedProtocolVersion),
+    (sync_pb2.Hello(node_id=NODE, protocol_version=1, geometry=filter_pb2.Geometry(bits=1000, hashes=4, scheme=1)),
+     InvalidHello),
+    (sync_pb2.Hello(node_id=NODE, protocol_version=1), InvalidHello),
+])
+def test_bad_hellos_are_refused_and_change_nothing(hello, error) -> None:
+    sync = CoordinatorSync(DictReplicaSink())
+    with pytest.raises(error):                 # issue 4 point 1 / ARCHITECTURE promise 5
+        sync.open(1, hello, 0.0)
+    assert sync.node_ids() == []
+
+
+def test_reconnect_within_history_is_acked_at_the_replica_position() -> None:
+    sync, sink, node = synced()
+    sync.close(NODE, 1, 1.0)
+    assert not sync.node(NODE).connected and NODE in sink.replicas   # the replica stays (issue 4 point 3c)
+    node.add_key("box-2")
+    out = sync.open(2, node.hello(floor=1), 2.0)
+    assert kinds(out) == ["ack"] and out[0].ack.sequence == 1       # catch up from delta 2
+
+
+def test_reconnect_below_the_history_floor_needs_a_snapshot() -> None:
+    sync, _, node = synced()
+    sync.close(NODE, 1)
+    node.add_key("box-2")
+    node.add_key("box-3")
+    out = sync.open(2, node.hello(floor=2), 0.0)
+    assert reasons(out) == ["SNAPSHOT_REASON_BEHIND_HISTORY"]
+
+
+def test_reconnect_with_a_new_epoch_needs_a_snapshot() -> None:
+    sync, _, node = synced()
+    sync.close(NODE, 1)
+    node.epoch = 2
+    out = sync.open(2, node.hello(), 0.0)
+    assert reasons(out) == ["SNAPSHOT_REASON_UNKNOWN_EPOCH"]
+
+
+def test_a_restarted_coordinator_asks_every_node_for_a_snapshot() -> None:
+    _, _, node = synced()
+    fresh = CoordinatorSync(DictReplicaSink())      # all soft state lost
+    assert reasons(fresh.open(1, node.hello(floor=node.sequence), 0.0)) == ["SNAPSHOT_REASON_NO_REPLICA"]
+
+
+# ----------------------------------------------------------------------------- deltas
+
+
+def test_deltas_apply_in_order_and_are_acked() -> None:
+    sync, sink, node = synced()
+    out = send_all(sync, [node.add_key("box-2"), node.add_key("box-3")], now=5.0)
+    assert [(m.ack.epoch, m.ack.sequence) for m in out] == [(1, 2), (1, 3)]
+    assert sink.replicas[NODE] == node.bloom
+    assert sync.node(NODE).last_applied_at == 5.0 and sync.node(NODE).counters.deltas_applied == 2
+
+
+def test_duplicates_are_acked_and_ignored() -> None:
+    sync, sink, node = synced()
+    d2 = node.add_key("box-2")
+    send_all(sync, [d2])
+    before = sink.replicas[NODE].copy()
+    out = send_all(sync, [d2, d2])
+    assert [m.ack.sequence for m in out] == [2, 2]                 # issue 4 point 1: ack and ignore
+    assert sink.replicas[NODE] == before and sync.node(NODE).counters.duplicates == 2
+
+
+def test_a_gap_asks_for_a_snapshot_once_per_retry_interval() -> None:
+    sync, sink, node = synced()
+    node.add_key("box-2")                                          # delta 2 lost
+    d3, d4 = node.add_key("box-3"), node.add_key("box-4")
+    before = sink.replicas[NODE].copy()
+    assert reasons(sync.receive(NODE, 1, d3, 0.0)) == ["SNAPSHOT_REASON_GAP"]   # issue 4 point 1
+    assert sync.receive(NODE, 1, d4, 0.5) == []                   # one request per retry interval
+    assert reasons(sync.receive(NODE, 1, d4, 1.5)) == ["SNAPSHOT_REASON_GAP"]
+    assert sink.replicas[NODE] == before and sync.node(NODE).sequence == 1
+    send_all(sync, node.snapshot())
+    assert sync.node(NODE).awaiting_snapshot is None and sink.replicas[NODE] == node.bloom
+
+
+def test_a_bad_payload_asks_for_a_snapshot_and_changes_nothing() -> None:
+    sync, sink, node = synced()
+    d2 = node.add_key("box-2")
+    d2.delta.payload = d2.delta.payload[:-1] + bytes([d2.delta.payload[-1] ^ 0x40])   # fails the CRC
+    before = sink.replicas[NODE].copy()
+    assert reasons(sync.receive(NODE, 1, d2, 0.0)) == ["SNAPSHOT_REASON_BAD_PAYLOAD"]
+    assert sink.replicas[NODE] == before and sync.node(NODE).sequence == 1
+
+
+def test_a_checksum_mismatch_asks_for_a_snapshot_before_touching_the_sink() -> None:
+    sync, sink, node = synced()
+    d2 = node.add_key("box-2")
+    d2.delta.checksum ^= 1
+    applied = []
+
+    class Spy(DictReplicaSink):
+        def apply(self, node_id, changes):
+            applied.append(node_id)
+
+    sync.sink = Spy()
+    assert reasons(sync.receive(NODE, 1, d2, 0.0)) == ["SNAPSHOT_REASON_CHECKSUM_MISMATCH"]   # issue 4 point 1
+    assert applied == [] and sync.node(NODE).sequence == 1
+
+
+def test_a_delta_that_does_not_fit_the_replica_is_a_checksum_mismatch() -> None:
+    sync, sink, node = synced(keys=("box-1",))
+    # clearing a bit that is 0 in the replica, with a checksum that agrees with the claim:
+    # the sink refuses it all-or-nothing
+    zero = next(p for p in range(G.bits) if not sink.replicas[NODE].bits[p])
+    changes = ChangeSet.of([], [zero])
+    msg = sync_pb2.NodeMessage(delta=filter_pb2.Delta(
+        epoch=1, sequence=2, payload=encode_delta(changes, G.bits),
+        checksum=changes.checksum_after(sink.replicas[NODE].checksum)))
+    before = sink.replicas[NODE].copy()
+    assert reasons(sync.receive(NODE, 1, msg, 0.0)) == ["SNAPSHOT_REASON_CHECKSUM_MISMATCH"]
+    assert sink.replicas[NODE] == before
+
+
+def test_a_delta_of_an_unknown_epoch_asks_for_a_snapshot() -> None:
+    sync, _, node = synced()
+    node.epoch = 3
+    node.sequence = 0
+    assert reasons(sync.receive(NODE, 1, node.add_key("box-2"), 0.0)) == ["SNAPSHOT_REASON_UNKNOWN_EPOCH"]
+
+
+# ----------------------------------------------------------------------------- stream rules
+
+
+def test_protocol_violations_raise_and_change_nothing() -> None:
+    sync, sink, node = synced()
+    d2 = node.add_key("box-2")
+    with pytest.raises(HelloTwice):
+        sync.receive(NODE, 1, sync_pb2.NodeMessage(hello=node.hello()), 0.0)
+    with pytest.raises(WrongNodeId):                       # stream 1 belongs to NODE
+        sync.receive("node-other-1", 1, d2, 0.0)
+    with pytest.raises(NotOpened):                         # a delta before any Hello
+        sync.receive(NODE, 99, d2, 0.0)
+    with pytest.raises(MalformedMessage):
+        sync.receive(NODE, 1, sync_pb2.NodeMessage(), 0.0)
+    with pytest.raises(HelloTwice):                        # the same stream id opened again
+        sync.open(1, node.hello(), 0.0)
+    assert sync.node(NODE).sequence == 1 and sink.replicas[NODE] != node.bloom
+
+
+def test_a_newer_stream_takes_over_and_the_old_one_is_stale() -> None:
+    sync, sink, node = synced()
+    d2 = node.add_key("box-2")
+    sync.open(2, node.hello(floor=1), 0.0)
+    with pytest.raises(StaleStream):
+        sync.receive(NODE, 1, d2, 0.0)
+    assert kinds(sync.receive(NODE, 2, d2, 0.0)) == ["ack"]
+    sync.close(NODE, 1)                                    # closing the old stream does not disconnect
+    assert sync.node(NODE).connected and sync.node(NODE).counters.stream_takeovers == 1
+
+
+def test_heartbeats_are_stored_and_answered_with_the_position() -> None:
+    sync, _, node = synced()
+    out = sync.receive(NODE, 1, sync_pb2.NodeMessage(heartbeat=sync_pb2.Heartbeat(stats=sync_pb2.NodeStats(
+        key_count=3, reads=40, reads_missed=2, epoch=1, sequence=4))), 7.0)
+    assert kinds(out) == ["ack"] and out[0].ack.sequence == 1   # lets the node resend 2..4
+    view = sync.node(NODE)
+    assert view.stats.reads_missed == 2 and view.last_heard_at == 7.0
+
+
+def test_covers_tells_when_a_read_your_writes_hint_can_go() -> None:
+    sync, _, node = synced()
+    assert sync.covers(NODE, 1, 1) and not sync.covers(NODE, 1, 2)   # issue 4 point 3b
+    send_all(sync, [node.add_key("box-2")])
+    assert sync.covers(NODE, 1, 2) and not sync.covers(NODE, 2, 0) and sync.covers(NODE, 0, 50)
+
+
+# ----------------------------------------------------------------------------- snapshots and rebuild
+
+
+def test_a_snapshot_older_than_the_replica_is_not_installed() -> None:
+    sync, sink, node = synced()
+    old_snapshot = node.snapshot(chunk=4)
+    d2 = node.add_key("box-2")
+    send_all(sync, old_snapshot[:1])           # assembly starts at sequence 1...
+    send_all(sync, [d2])                        # ...the replica moves on to 2
+    out = send_all(sync, old_snapshot[1:])      # completing it must not take delta 2 back
+    assert kinds(out)[-1] == "ack" and out[-1].ack.sequence == 2
+    assert sink.replicas[NODE] == node.bloom
+
+
+def test_rebuild_snapshot_swaps_in_a_new_geometry_and_is_verified() -> None:
+    sync, sink, node = synced()
+    msg = sync.request_rebuild(NODE, 400, 0.01, "fill above target", 3.0)
+    assert msg.rebuild.capacity == 400 and msg.node_id == NODE
+    assert sync.node(NODE).rebuild.phase == "requested"
+    new = FakeNode(G2, epoch=2)
+    for key in ("box-1", "box-2"):
+        new.add_key(key)
+    chunks = new.snapshot(purpose=filter_pb2.SNAPSHOT_PURPOSE_REBUILD, chunk=16)
+    assert len(chunks) > 1
+    out = send_all(sync, chunks[:1])
+    # old-epoch deltas keep applying while the new snapshot assembles (issue 3 point 5)
+    out += send_all(sync, [node.add_key("box-2")])
+    assert sync.node(NODE).sequence == 2 and sync.node(NODE).epoch == 1
+    out = send_all(sync, chunks[1:], now=4.0)
+    assert kinds(out) == ["snapshot_verified", "ack"]
+    assert out[0].snapshot_verified.epoch == 2 and out[1].ack.epoch == 2
+    replica = sink.replicas[NODE]
+    assert replica.geometry == G2 and all(replica.bits[p] for p in reference_positions("box-2", G2))
+    view = sync.node(NODE)
+    assert view.rebuild.phase == "switched" and view.geometry == G2 and view.epoch == 2
+    assert send_all(sync, [node.add_key("box-3")]) == []     # late old-epoch deltas are ignored
+
+
+def test_a_corrupt_snapshot_is_rejected_and_the_replica_stays() -> None:
+    sync, sink, node = synced()
+    new = FakeNode(G2, epoch=2)
+    new.add_key("box-1")
+    chunks = new.snapshot(purpose=filter_pb2.SNAPSHOT_PURPOSE_REBUILD)
+    chunks[0].snapshot_chunk.checksum ^= 0xFF
+    before = sink.replicas[NODE].copy()
+    out = send_all(sync, chunks)
+    assert kinds(out) == ["snapshot_rejected"] and out[0].snapshot_rejected.snapshot_id == new.snapshot_ids
+    assert sink.replicas[NODE] == before and sync.node(NODE).epoch == 1
+    assert send_all(sync, chunks) == []                      # late repeats of the refused attempt
+
+
+def test_request_rebuild_refuses_bad_sizes_and_unknown_nodes() -> None:
+    sync, _, _ = synced()
+    with pytest.raises(ValueError, match="capacity"):
+        sync.request_rebuild(NODE, 0, 0.01, "x", 0.0)
+    with pytest.raises(ValueError, match="target_fpr"):
+        sync.request_rebuild(NODE, 10, 1.5, "x", 0.0)
+    with pytest.raises(KeyError):
+        sync.request_rebuild("node-nobody", 10, 0.01, "x", 0.0)
