@@ -81,7 +81,8 @@ class CoordinatorDaemon:
     def __init__(self, settings: CoordinatorSettings) -> None:
         self.settings = settings
         self.fleet = Fleet(settings.policy(), state_dir=settings.state_dir, expected=settings.expected_nodes(),
-                           monitor=SaturationMonitor(rebuild_timeout_s=settings.rebuild_timeout_s),
+                           monitor=SaturationMonitor(rebuild_timeout_s=settings.rebuild_timeout_s,
+                                                      shrink_grace_s=settings.shrink_grace_s),
                            max_hints=settings.max_hints)
         self.metrics = Metrics(self.fleet)
         self.prober = Prober(settings.probe_threads)

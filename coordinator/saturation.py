@@ -103,9 +103,14 @@ def _geometry(capacity: int, target: float) -> Geometry | None:
 class SaturationMonitor:
     """Flags saturated nodes and schedules rebuilds under a fleet-wide concurrency limit."""
 
-    def __init__(self, rebuild_timeout_s: float = 120.0, cooldown_s: float = 5.0) -> None:
+    def __init__(self, rebuild_timeout_s: float = 120.0, cooldown_s: float = 5.0,
+                 shrink_grace_s: float = 300.0) -> None:
         self.rebuild_timeout_s = rebuild_timeout_s
         self.cooldown_s = cooldown_s
+        # A node must stay under the shrink threshold this long before it is shrunk: a node that
+        # just started empty (or is being filled) keeps the capacity its operator gave it.
+        self.shrink_grace_s = shrink_grace_s
+        self._below_since: dict[str, float] = {}
         self.in_flight: dict[str, _InFlight] = {}
         self.flagged: dict[str, list[str]] = {}
         self._last_done: dict[str, float] = {}
@@ -160,6 +165,7 @@ class SaturationMonitor:
 
     def forget(self, node_id: str) -> None:
         self.in_flight.pop(node_id, None)
+        self._below_since.pop(node_id, None)
         self.flagged.pop(node_id, None)
 
     def tick(self, now: float, nodes: list[NodeView], policy: Policy) -> TickResult:
@@ -198,10 +204,13 @@ class SaturationMonitor:
             if now - self._last_done.get(node.node_id, -math.inf) < self.cooldown_s:
                 continue
             if reasons:
+                self._below_since.pop(node.node_id, None)
                 candidates.append(self.grow_plan(node, policy, reasons))
             else:
                 shrink = self.shrink_plan(node, policy)
-                if shrink is not None:
+                if shrink is None:
+                    self._below_since.pop(node.node_id, None)
+                elif now - self._below_since.setdefault(node.node_id, now) >= self.shrink_grace_s:
                     candidates.append(shrink)
         if not policy.auto_rebuild:
             return out

@@ -42,6 +42,8 @@ class CoordinatorSettings:
     auto_rebuild: bool = setting(True, "Start rebuilds of flagged nodes without an operator.")
     min_capacity: int = setting(1000, "Smallest capacity a rebuild asks for.")
     monitor_interval_s: float = setting(1.0, "How often the saturation monitor runs (s).")
+    shrink_grace_s: float = setting(300.0, "A node must stay below the shrink threshold this long before it is "
+                                    "shrunk (s), so a node that starts empty keeps its configured capacity.")
     rebuild_timeout_s: float = setting(120.0, "Give up waiting for a requested rebuild after this long (s).")
     read_deadline_ms: int = setting(2000, "Default deadline of a Read's probes (ms).")
     write_deadline_ms: int = setting(5000, "Deadline of a write or delete sent to a node (ms).")
@@ -64,6 +66,8 @@ class CoordinatorSettings:
             _check_address("expect-node", addr)
         if self.mode not in MODES:
             raise ConfigError(f"setting 'mode': must be one of {', '.join(MODES)}, got {self.mode!r}")
+        if not (self.shrink_grace_s >= 0 and math.isfinite(self.shrink_grace_s)):
+            raise ConfigError(f"setting 'shrink-grace-s': must be 0 or more, got {self.shrink_grace_s}")
         for name in ("monitor_interval_s", "rebuild_timeout_s"):
             value = getattr(self, name)
             if not (value > 0 and math.isfinite(value)):

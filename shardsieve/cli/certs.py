@@ -38,7 +38,12 @@ class IssuedFiles:
     admin_token_file: Path | None
 
 
+RESERVED = frozenset({"ca", "coordinator", "operator", "admin", "node-tokens"})
+
+
 def _check_id(node_id: str) -> None:
+    if node_id in RESERVED:
+        raise click.BadParameter(f"node id {node_id!r} would clash with a file of the CA, coordinator or tools")
     if not node_id or len(node_id) > 128 or not all(c.isalnum() or c in "-_." for c in node_id):
         raise click.BadParameter(f"node id {node_id!r} may hold only letters, digits, '-', '_', '.' (1..128)")
 
@@ -54,7 +59,7 @@ def _write(path: Path, data: bytes, private: bool) -> None:
 
 def make_dev_pki(out: Path, node_ids: Sequence[str], *, hosts: Sequence[str] = DEFAULT_HOSTS,
                  days: int = 30, tokens: bool = True, force: bool = False) -> IssuedFiles:
-    """Write ca.pem, coordinator.pem/-key.pem, operator.pem/-key.pem and node <id>.pem/-key.pem
+    """Write ca.pem, coordinator.pem/-key.pem, operator.pem/-key.pem and <node-id>.pem/-key.pem
     for each node id into `out` (plus token files when `tokens`). ECDSA P-256 keys; every
     certificate carries the given hosts as subject alternative names and may act as TLS
     server and client. Refuses to overwrite unless `force`."""
@@ -123,7 +128,7 @@ def make_dev_pki(out: Path, node_ids: Sequence[str], *, hosts: Sequence[str] = D
     _write(out / "ca-key.pem", pem_key(ca_key), private=True)
     coord = issue("coordinator", "coordinator")
     oper = issue("operator", "operator")
-    nodes = {nid: issue(nid, f"node-{nid}") for nid in node_ids}
+    nodes = {nid: issue(nid, nid) for nid in node_ids}
     tokens_file, token_files, admin_file = None, {}, None
     if tokens:
         node_tokens = {nid: secrets.token_urlsafe(32) for nid in node_ids}
@@ -131,7 +136,7 @@ def make_dev_pki(out: Path, node_ids: Sequence[str], *, hosts: Sequence[str] = D
         _write(tokens_file, ("# NODE_ID TOKEN: the coordinator's node-token-file\n" + "".join(
             f"{nid} {tok}\n" for nid, tok in node_tokens.items())).encode(), private=True)
         for nid, tok in node_tokens.items():
-            token_files[nid] = out / f"node-{nid}.token"
+            token_files[nid] = out / f"{nid}.token"
             _write(token_files[nid], f"{tok}\n".encode(), private=True)
         admin_file = out / "admin.token"
         _write(admin_file, f"{secrets.token_urlsafe(32)}\n".encode(), private=True)
@@ -169,14 +174,14 @@ def certs(out: Path, count: int | None, node_ids: tuple[str, ...], hosts: tuple[
     for nid, (c, k) in files.node_certs.items():
         click.echo(f"  node {nid:<12} {c.name} / {k.name}")
     if files.node_tokens_file is not None:
-        click.echo(f"  sync tokens       {files.node_tokens_file.name} (coordinator), node-<id>.token (each node)")
+        click.echo(f"  sync tokens       {files.node_tokens_file.name} (coordinator), <node-id>.token (each node)")
         click.echo(f"  admin token       {files.admin_token_file.name if files.admin_token_file else ''}")
     d = files.directory
     click.echo("\nmutual TLS, e.g.:")
     click.echo(f"  shardsieve coordinator --tls-cert {d}/coordinator.pem --tls-key {d}/coordinator-key.pem "
                f"--tls-ca {d}/ca.pem --tls-client-auth true")
     first = ids[0]
-    click.echo(f"  shardsieve node --id {first} --tls-cert {d}/node-{first}.pem --tls-key {d}/node-{first}-key.pem "
+    click.echo(f"  shardsieve node --id {first} --tls-cert {d}/{first}.pem --tls-key {d}/{first}-key.pem "
                f"--tls-ca {d}/ca.pem --coordinator 127.0.0.1:7400 ...")
     click.echo(f"  shardsieve status --tls-ca {d}/ca.pem --tls-cert {d}/operator.pem --tls-key {d}/operator-key.pem")
     sys.stdout.flush()

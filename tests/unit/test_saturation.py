@@ -75,7 +75,7 @@ def test_rebuild_times_out_and_releases_the_slot() -> None:
 
 
 def test_shrink_only_when_a_smaller_ladder_step_results() -> None:
-    monitor = SaturationMonitor()
+    monitor = SaturationMonitor(shrink_grace_s=0.0)
     big = _view("n1", 100, 100_000)
     result = monitor.tick(0.0, [big], POLICY)
     assert [d.action for d in result.decisions] == ["shrink"]
@@ -83,6 +83,17 @@ def test_shrink_only_when_a_smaller_ladder_step_results() -> None:
     assert plan.capacity == 200 and plan.geometry is not None and plan.geometry.bits < big.bits
     # At min capacity there is nothing smaller to go to.
     assert SaturationMonitor().tick(0.0, [_view("n2", 1, 100)], POLICY).rebuilds == []
+
+
+def test_shrink_waits_for_the_grace_period_and_resets_when_keys_return() -> None:
+    monitor = SaturationMonitor(shrink_grace_s=60.0)
+    empty = _view("n1", 0, 100_000)
+    assert monitor.tick(0.0, [empty], POLICY).rebuilds == []        # just started empty: keep its capacity
+    assert monitor.tick(59.0, [empty], POLICY).rebuilds == []
+    filled = _view("n1", 50_000, 100_000)
+    assert monitor.tick(61.0, [filled], POLICY).rebuilds == []       # back above the threshold: clock resets
+    assert monitor.tick(62.0, [empty], POLICY).rebuilds == []
+    assert [p.node_id for p in monitor.tick(122.5, [empty], POLICY).rebuilds] == ["n1"]
 
 
 def test_auto_rebuild_off_only_flags_and_plan_marks_queued() -> None:

@@ -10,6 +10,8 @@ Kirsch & Mitzenmacher 2006 double hashing, multiply-shift range reduction).
 
 from __future__ import annotations
 
+import itertools
+
 import mmh3
 import pytest
 
@@ -34,6 +36,7 @@ NODE = "node-kestrel-4"
 G = Geometry(bits=1024, hashes=4, seed=1)
 G2 = Geometry(bits=4096, hashes=6, seed=1)
 R = sync_pb2
+_SNAPSHOT_IDS = itertools.count(1)
 
 
 def reference_positions(key: str, g: Geometry) -> list[int]:
@@ -52,7 +55,6 @@ class FakeNode:
         self.epoch = epoch
         self.sequence = 0
         self.bloom = BloomFilter(geometry)
-        self.snapshot_ids = 100
 
     def hello(self, floor: int = 0, node_id: str = NODE, version: int = 1) -> sync_pb2.Hello:
         return sync_pb2.Hello(node_id=node_id, storage_address="10.0.0.9:7100", geometry=self.geometry.to_proto(),
@@ -73,10 +75,10 @@ class FakeNode:
             checksum=self.bloom.checksum, key_count=self.sequence))
 
     def snapshot(self, purpose=filter_pb2.SNAPSHOT_PURPOSE_RESYNC, chunk: int = 1 << 20) -> list[sync_pb2.NodeMessage]:
-        self.snapshot_ids += 1
+        self.snapshot_id = next(_SNAPSHOT_IDS)   # one increasing counter per node process
         enc = encode_snapshot(self.bloom, max_chunk_bytes=chunk)
         return [sync_pb2.NodeMessage(snapshot_chunk=filter_pb2.SnapshotChunk(
-            snapshot_id=self.snapshot_ids, epoch=self.epoch, sequence=self.sequence,
+            snapshot_id=self.snapshot_id, epoch=self.epoch, sequence=self.sequence,
             geometry=self.geometry.to_proto(), encoding=enc.encoding, purpose=purpose, chunk_index=i,
             chunk_count=enc.chunk_count, total_bytes=enc.total_bytes, data=data, checksum=self.bloom.checksum,
             key_count=7, capacity=90)) for i, data in enumerate(enc.chunks)]
@@ -304,14 +306,17 @@ def test_covers_tells_when_a_read_your_writes_hint_can_go() -> None:
 
 
 def test_a_snapshot_older_than_the_replica_is_not_installed() -> None:
-    sync, sink, node = synced()
-    old_snapshot = node.snapshot(chunk=4)
-    d2 = node.add_key("box-2")
-    send_all(sync, old_snapshot[:1])           # assembly starts at sequence 1...
-    send_all(sync, [d2])                        # ...the replica moves on to 2
-    out = send_all(sync, old_snapshot[1:])      # completing it must not take delta 2 back
-    assert kinds(out)[-1] == "ack" and out[-1].ack.sequence == 2
-    assert sink.replicas[NODE] == node.bloom
+    sync, sink, node = synced(keys=[f"box-{i}" for i in range(1, 12)])
+    d_next = node.add_key("box-20")
+    snapshot = node.snapshot(chunk=4)           # the state at the sequence of d_next
+    d_after = node.add_key("box-21")
+    assert len(snapshot) > 1
+    assert send_all(sync, snapshot[:1]) == []   # assembly starts (replica one behind)...
+    send_all(sync, [d_next, d_after])           # ...then deltas move the replica past it
+    out = send_all(sync, snapshot[1:])          # completing it must not take d_after back
+    assert kinds(out) == ["ack"] and out[0].ack.sequence == node.sequence
+    assert sink.replicas[NODE] == node.bloom    # promise 1 (ARCHITECTURE.md): box-21 stays routable
+    assert all(sink.replicas[NODE].bits[p] for p in reference_positions("box-21", G))
 
 
 def test_rebuild_snapshot_swaps_in_a_new_geometry_and_is_verified() -> None:
@@ -346,7 +351,7 @@ def test_a_corrupt_snapshot_is_rejected_and_the_replica_stays() -> None:
     chunks[0].snapshot_chunk.checksum ^= 0xFF
     before = sink.replicas[NODE].copy()
     out = send_all(sync, chunks)
-    assert kinds(out) == ["snapshot_rejected"] and out[0].snapshot_rejected.snapshot_id == new.snapshot_ids
+    assert kinds(out) == ["snapshot_rejected"] and out[0].snapshot_rejected.snapshot_id == new.snapshot_id
     assert sink.replicas[NODE] == before and sync.node(NODE).epoch == 1
     assert send_all(sync, chunks) == []                      # late repeats of the refused attempt
 
