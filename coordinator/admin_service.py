@@ -17,6 +17,7 @@ from coordinator.accounting import avoided_fanout, wilson_interval
 from coordinator.fleet import Fleet, NodeRecord
 from coordinator.policy import Policy, PolicyError
 from coordinator.saturation import Decision, RebuildPlan, saturation_reasons
+from shardsieve.limits import fill_implausibility
 from shardsieve.v1 import admin_pb2, admin_pb2_grpc
 
 log = logging.getLogger("shardsieve.coordinator.admin")
@@ -50,7 +51,9 @@ def _status(fleet: Fleet, rec: NodeRecord, now: float) -> admin_pb2.NodeStatus:
     stats = rec.stats
     key_count, capacity = rec.key_count, rec.capacity
     fill = rec.fill
-    implausible = bool(rec.geometry and key_count > 0 and fill == 0.0)
+    # applied but flagged: a fill the declared key count cannot produce (shardsieve/limits.py)
+    implausible = bool(rec.geometry and rec.synced and fill_implausibility(
+        rec.set_bits, rec.geometry.bits, rec.geometry.hashes, key_count))
     return admin_pb2.NodeStatus(
         node_id=rec.node_id, address=rec.address, connected=rec.connected, stale=fleet.is_stale(rec, now),
         saturated=bool(reasons), saturation_reasons=reasons,

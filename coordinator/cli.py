@@ -22,7 +22,7 @@ def _help(name: str) -> str:
         if f.name == name:
             default = f.default if f.default is not dataclasses.MISSING else f.default_factory()  # type: ignore[misc]
             env = env_name(ENV_PREFIX, name, f.metadata.get("env"))
-            shown = "(hidden)" if name == "token" else repr(default)
+            shown = "(hidden)" if name.endswith("token") else repr(default)
             return f"{f.metadata['help']} [default: {shown}; env {env}]"
     raise KeyError(name)
 
@@ -32,7 +32,7 @@ def _options(func):  # type: ignore[no-untyped-def]
         flag = "--" + f.name.replace("_", "-")
         if f.name == "id":
             func = click.option(flag, "id_", default=None, help=_help(f.name))(func)
-        elif f.name == "expect_node":
+        elif f.name in ("expect_node", "node_token"):
             func = click.option(flag, multiple=True, help=_help(f.name))(func)
         else:
             func = click.option(flag, default=None, help=_help(f.name))(func)

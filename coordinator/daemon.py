@@ -28,6 +28,7 @@ from coordinator.router_service import Router, RouterService, add_router_service
 from coordinator.saturation import Decision, RebuildPlan, SaturationMonitor
 from coordinator.settings import CoordinatorSettings
 from coordinator.sync_service import SyncService
+from shardsieve import security
 from shardsieve.v1 import admin_pb2_grpc, sync_pb2_grpc
 
 log = logging.getLogger("shardsieve.coordinator")
@@ -85,14 +86,30 @@ class CoordinatorDaemon:
                                                       shrink_grace_s=settings.shrink_grace_s),
                            max_hints=settings.max_hints)
         self.metrics = Metrics(self.fleet)
-        self.prober = Prober(settings.probe_threads)
+        tls = settings.tls_files()
+        self.prober = Prober(settings.probe_threads, credentials=tls.channel_credentials(),
+                             metadata=security.auth_metadata(settings.secret("node_storage_token")))
         self.router = Router(self.fleet, self.prober, read_deadline_s=settings.read_deadline_ms / 1000.0,
-                             write_deadline_s=settings.write_deadline_ms / 1000.0, metrics=self.metrics)
-        self.sync = SyncService(self.fleet, metrics=self.metrics)
+                             write_deadline_s=settings.write_deadline_ms / 1000.0, metrics=self.metrics,
+                             max_key_bytes=settings.max_key_bytes, max_value_bytes=settings.max_value_bytes,
+                             max_batch_keys=settings.max_batch_keys)
+        node_tokens = settings.node_tokens()
+        self.node_auth = "certificate" if settings.tls_client_auth else "token" if node_tokens else "open"
+        self.sync = SyncService(self.fleet, metrics=self.metrics,
+                                authorizer=security.NodeAuthorizer(self.node_auth, node_tokens),
+                                limiter=security.StreamLimiter(settings.max_streams_per_peer),
+                                limits=settings.sync_limits())
         self.admin = AdminService(self.fleet, settings.id, settings.admin_token(), self.start_rebuild)
+        write_token, read_token = settings.admin_token(), settings.secret("read_token")
+        guard = security.TokenGuard({
+            "/shardsieve.v1.Admin/": write_token,
+            "/shardsieve.v1.Router/Write": write_token, "/shardsieve.v1.Router/Remove": write_token,
+            "/shardsieve.v1.Router/Locate": read_token, "/shardsieve.v1.Router/LocateBatch": read_token,
+            "/shardsieve.v1.Router/Read": read_token})
         self.server = grpc.server(futures.ThreadPoolExecutor(max_workers=settings.grpc_workers,
                                                              thread_name_prefix="grpc"),
-                                  options=[("grpc.max_receive_message_length", 64 << 20),
+                                  interceptors=[guard, security.DecodeGuard()],
+                                  options=[("grpc.max_receive_message_length", settings.max_message_bytes),
                                            ("grpc.max_send_message_length", 64 << 20)])
         add_router_service(RouterService(self.router), self.server)
         admin_pb2_grpc.add_AdminServicer_to_server(self.admin, self.server)
@@ -100,7 +117,11 @@ class CoordinatorDaemon:
         self.health = health.HealthServicer()
         health_pb2_grpc.add_HealthServicer_to_server(self.health, self.server)
         self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
-        self.port = self.server.add_insecure_port(settings.listen)
+        self.port = security.open_port(self.server, settings.listen, tls, settings.allow_plaintext, log,
+                                       "coordinator")
+        if self.node_auth == "open":
+            log.warning("sync streams are not authenticated: any peer can push any node id's filter; configure "
+                        "tls-client-auth (mutual TLS) or node-token-file")
         if self.port == 0:
             raise OSError(f"cannot listen on {settings.listen} (address in use or not local)")
         host = settings.listen.rpartition(":")[0]
@@ -151,7 +172,11 @@ class CoordinatorDaemon:
         self._set_health(health_pb2.HealthCheckResponse.SERVING)
         log.info("serving", extra={"address": self.address, "mode": self.fleet.policy.mode,
                                    "known_nodes": len(self.fleet.nodes),
-                                   "admin_token": "configured" if self.settings.admin_token() else "none"})
+                                   "admin_token": "configured" if self.settings.admin_token() else "none",
+                                   "read_token": "configured" if self.settings.secret("read_token") else "none",
+                                   "tls": "mutual" if self.settings.tls_client_auth else
+                                   "server" if self.settings.tls_files().enabled else "off",
+                                   "node_auth": self.node_auth})
 
     def stop(self, grace: float = 3.0) -> None:
         if self._stopped.is_set():

@@ -14,6 +14,8 @@ from prometheus_client import CollectorRegistry, Counter, Histogram, start_http_
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from prometheus_client.registry import Collector
 
+from shardsieve.limits import fill_implausibility
+
 CANDIDATE_BUCKETS = (0, 1, 2, 3, 4, 6, 8, 16, 32, 64, 128, 256)
 
 
@@ -39,6 +41,9 @@ class FleetCollector(Collector):
             "cap": GaugeMetricFamily("shardsieve_coordinator_node_capacity", "Keys the node's filter is sized for",
                                      labels=labels),
             "epoch": GaugeMetricFamily("shardsieve_coordinator_node_epoch", "Replica epoch", labels=labels),
+            "implausible": GaugeMetricFamily("shardsieve_coordinator_node_implausible_fill",
+                                             "1 when the replica's fill is implausible for the node's key count "
+                                             "(e.g. nearly all ones: draws a probe for every key)", labels=labels),
             "wasted": CounterMetricFamily("shardsieve_coordinator_node_wasted_probes",
                                           "Probes to the node that found nothing", labels=labels),
             "probes": CounterMetricFamily("shardsieve_coordinator_node_probes", "Probes sent to the node", labels=labels),
@@ -56,6 +61,8 @@ class FleetCollector(Collector):
             fams["keys"].add_metric(n, rec.key_count)
             fams["cap"].add_metric(n, rec.capacity)
             fams["epoch"].add_metric(n, rec.epoch)
+            fams["implausible"].add_metric(n, 1.0 if rec.geometry and rec.synced and fill_implausibility(
+                rec.set_bits, rec.geometry.bits, rec.geometry.hashes, rec.key_count) else 0.0)
             fams["wasted"].add_metric(n, c.wasted_probes if c else 0)
             fams["probes"].add_metric(n, c.probes if c else 0)
             fams["dbytes"].add_metric(n, rec.delta_bytes)

@@ -13,6 +13,7 @@ from typing import Any, Callable, Iterator, Sequence
 
 import grpc
 
+from shardsieve.security import make_channel
 from shardsieve.v1 import storage_pb2_grpc
 
 UNREACHABLE_CODES = (grpc.StatusCode.UNAVAILABLE, grpc.StatusCode.DEADLINE_EXCEEDED,
@@ -41,7 +42,11 @@ class ProbeResult:
 
 
 class Prober:
-    def __init__(self, threads: int = 32) -> None:
+    def __init__(self, threads: int = 32, *, credentials: grpc.ChannelCredentials | None = None,
+                 metadata: tuple[tuple[str, str], ...] = ()) -> None:
+        # TLS towards the nodes and their storage token (shardsieve/security.py); None/(): plaintext, no token
+        self._credentials = credentials
+        self._metadata = metadata
         self._pool = futures.ThreadPoolExecutor(max_workers=threads, thread_name_prefix="probe")
         self._lock = threading.Lock()
         self._stubs: dict[str, tuple[grpc.Channel, storage_pb2_grpc.NodeStorageStub]] = {}
@@ -53,7 +58,7 @@ class Prober:
                 # Short reconnect backoff and DNS re-resolution: gRPC's defaults (backoff growing to
                 # minutes, 30 s between DNS lookups) would keep a restarted node, possibly at a new
                 # address (a replaced container), reported unreachable long after it serves again.
-                channel = grpc.insecure_channel(address, options=[
+                channel = make_channel(address, self._credentials, options=[
                     ("grpc.enable_retries", 0),
                     ("grpc.initial_reconnect_backoff_ms", 100),
                     ("grpc.min_reconnect_backoff_ms", 100),
@@ -71,7 +76,7 @@ class Prober:
             return ProbeResult(node_id, error=_NoAddress(node_id))
         stub = self.stub(address)
         try:
-            reply = getattr(stub, method)(request, timeout=timeout)
+            reply = getattr(stub, method)(request, timeout=timeout, metadata=self._metadata)
             return ProbeResult(node_id, reply=reply)
         except grpc.RpcError as exc:
             if exc.code() == grpc.StatusCode.UNAVAILABLE:

@@ -24,6 +24,7 @@ log = logging.getLogger("shardsieve.coordinator.router")
 
 MAX_BATCH_KEYS = 100_000
 MAX_KEY_BYTES = 64 * 1024
+MAX_VALUE_BYTES = 16 << 20
 
 
 class RouterError(Exception):
@@ -33,20 +34,25 @@ class RouterError(Exception):
         self.message = message
 
 
-def _check_key(key: bytes, what: str = "key") -> None:
+def _check_key(key: bytes, what: str = "key", limit: int = MAX_KEY_BYTES) -> None:
     if not key:
         raise RouterError(grpc.StatusCode.INVALID_ARGUMENT, f"{what} must not be empty")
-    if len(key) > MAX_KEY_BYTES:
+    if len(key) > limit:
         raise RouterError(grpc.StatusCode.INVALID_ARGUMENT,
-                          f"{what} has {len(key)} bytes; the largest accepted is {MAX_KEY_BYTES}")
+                          f"{what} has {len(key)} bytes; the largest accepted is {limit} (setting max-key-bytes)")
 
 
 class Router:
     """The routing logic behind the gRPC servicer (usable in-process by tests and benchmarks)."""
 
     def __init__(self, fleet: Fleet, prober: Prober, *, read_deadline_s: float = 2.0, write_deadline_s: float = 5.0,
-                 clock: Callable[[], float] = time.monotonic, metrics: object | None = None) -> None:
+                 clock: Callable[[], float] = time.monotonic, metrics: object | None = None,
+                 max_key_bytes: int = MAX_KEY_BYTES, max_value_bytes: int = MAX_VALUE_BYTES,
+                 max_batch_keys: int = MAX_BATCH_KEYS) -> None:
         self.fleet = fleet
+        self.max_key_bytes = max_key_bytes
+        self.max_value_bytes = max_value_bytes
+        self.max_batch_keys = max_batch_keys
         self.prober = prober
         self.read_deadline_s = read_deadline_s
         self.write_deadline_s = write_deadline_s
@@ -55,23 +61,23 @@ class Router:
 
     # -- locate ------------------------------------------------------------------------------------
     def locate(self, keys: list[bytes], kind: str = "locate") -> list[list[Candidate]]:
-        if len(keys) > MAX_BATCH_KEYS:
+        if len(keys) > self.max_batch_keys:
             raise RouterError(grpc.StatusCode.INVALID_ARGUMENT,
-                              f"batch of {len(keys)} keys exceeds the limit of {MAX_BATCH_KEYS}; split it")
+                              f"batch of {len(keys)} keys exceeds the limit of {self.max_batch_keys}; split it")
         for i, key in enumerate(keys):
-            _check_key(key, f"key #{i}")
+            _check_key(key, f"key #{i}", self.max_key_bytes)
         result = self.fleet.candidates(keys, self.clock())
         if self.metrics is not None:
             self.metrics.observe_locate(kind, [len(c) for c in result])  # type: ignore[attr-defined]
         return result
 
     def _check_batch(self, keys: list[bytes]) -> None:
-        if len(keys) > MAX_BATCH_KEYS:
+        if len(keys) > self.max_batch_keys:
             raise RouterError(grpc.StatusCode.INVALID_ARGUMENT,
-                              f"batch of {len(keys)} keys exceeds the limit of {MAX_BATCH_KEYS}; split it")
-        if keys and (min(map(len, keys)) == 0 or max(map(len, keys)) > MAX_KEY_BYTES):
+                              f"batch of {len(keys)} keys exceeds the limit of {self.max_batch_keys}; split it")
+        if keys and (min(map(len, keys)) == 0 or max(map(len, keys)) > self.max_key_bytes):
             for i, key in enumerate(keys):
-                _check_key(key, f"key #{i}")
+                _check_key(key, f"key #{i}", self.max_key_bytes)
 
     def locate_wire(self, keys: list[bytes]) -> list[bytes]:
         """Like locate, each key's candidates encoded as a LocateReply message."""
@@ -120,7 +126,7 @@ class Router:
 
     # -- read / write / remove ------------------------------------------------------------------------
     def read(self, key: bytes, deadline_ms: int = 0) -> routing_pb2.ReadReply:
-        _check_key(key)
+        _check_key(key, limit=self.max_key_bytes)
         cands = self.locate([key], kind="read")[0]
         deadline_s = deadline_ms / 1000.0 if deadline_ms else self.read_deadline_s
         hit, seen = self._probe_get(key, cands, deadline_s)
@@ -134,7 +140,11 @@ class Router:
         return routing_pb2.ReadReply(found=False, probes=len(cands), wasted_probes=wasted, candidates=len(cands))
 
     def write(self, key: bytes, value: bytes, node_id: str = "") -> routing_pb2.WriteReply:
-        _check_key(key)
+        _check_key(key, limit=self.max_key_bytes)
+        if len(value) > self.max_value_bytes:
+            raise RouterError(grpc.StatusCode.INVALID_ARGUMENT,
+                              f"value has {len(value)} bytes; the largest accepted is {self.max_value_bytes} "
+                              "(setting max-value-bytes)")
         if node_id:
             address = self.fleet.address_of(node_id)
             if address is None:
@@ -164,7 +174,7 @@ class Router:
         return routing_pb2.WriteReply(node_id=target, created=ack.created, epoch=ack.epoch, sequence=ack.sequence)
 
     def remove(self, key: bytes) -> routing_pb2.RemoveReply:
-        _check_key(key)
+        _check_key(key, limit=self.max_key_bytes)
         cands = self.locate([key], kind="remove")[0]
         targets = [(c.node_id, c.address) for c in cands]
         removed, failed = [], []

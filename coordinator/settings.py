@@ -30,8 +30,31 @@ class CoordinatorSettings:
                                            "(so after a restart they count as stale until they resync); empty: none.")
     expect_node: list[str] = setting([], "NODE_ID=HOST:PORT of a node known before it connects (listed stale "
                                          "until synced); repeat for several.")
-    token: str = setting("", "Bearer token required by the Admin API; empty: no token.", env="SHARDSIEVE_COORDINATOR_TOKEN")
-    token_file: Path | None = setting(None, "File holding the Admin API bearer token (first line).")
+    token: str = setting("", "Bearer token required by the Admin API and by Write/Remove; empty: no token.",
+                         env="SHARDSIEVE_COORDINATOR_TOKEN")
+    token_file: Path | None = setting(None, "File holding the Admin/write bearer token (first line).")
+    read_token: str = setting("", "Bearer token required by Locate/LocateBatch/Read; empty: open reads.")
+    read_token_file: Path | None = setting(None, "File holding the read bearer token (first line).")
+    tls_cert: Path | None = setting(None, "PEM certificate of this coordinator (TLS server; client certificate "
+                                          "towards nodes).")
+    tls_key: Path | None = setting(None, "PEM private key of tls-cert.")
+    tls_ca: Path | None = setting(None, "PEM CA that signed the nodes' and clients' certificates.")
+    tls_client_auth: bool = setting(False, "Mutual TLS: every client must show a certificate signed by tls-ca; a "
+                                           "node's certificate common name must equal its node id.")
+    allow_plaintext: bool = setting(False, "Listen without TLS (trusted loopback setups only; logs a warning).")
+    node_token: list[str] = setting([], "NODE_ID=TOKEN a node must present on its sync stream (without mutual "
+                                        "TLS); repeat for several.")
+    node_token_file: Path | None = setting(None, "File of 'NODE_ID TOKEN' lines: the nodes' sync tokens.")
+    node_storage_token: str = setting("", "Bearer token sent to the nodes' storage API (when they require one).")
+    node_storage_token_file: Path | None = setting(None, "File holding node-storage-token (first line).")
+    max_message_bytes: int = setting(64 << 20, "Largest gRPC message received (bytes).")
+    max_streams_per_peer: int = setting(64, "Sync streams open at once from one peer host.")
+    max_filter_bits: int = setting(1 << 34, "Largest node filter (bits) accepted on a sync stream.")
+    max_snapshot_chunks: int = setting(4096, "Most chunks one snapshot may declare.")
+    max_delta_bytes: int = setting(16 << 20, "Largest delta payload accepted (bytes).")
+    max_key_bytes: int = setting(64 * 1024, "Largest key accepted by the Router (bytes).")
+    max_value_bytes: int = setting(16 << 20, "Largest value accepted by Write (bytes).")
+    max_batch_keys: int = setting(100_000, "Most keys in one LocateBatch.")
     mode: str = setting("safe", "Lookup mode: 'safe' lists stale nodes in every candidate list, 'fast' leaves them out.")
     stale_after_s: float = setting(2.0, "A node whose last applied change or heartbeat is older than this is stale (s).")
     target_fpr: float = setting(0.01, "Fleet target false-positive rate, for saturation checks and rebuilds.")
@@ -85,6 +108,47 @@ class CoordinatorSettings:
             self.policy().validate()
         except PolicyError as exc:
             raise ConfigError(f"setting {exc}") from None
+        self._validate_security()
+
+    def _validate_security(self) -> None:
+        """TLS files readable, tokens well-formed, limits positive (see shardsieve/security.py)."""
+        from shardsieve.security import parse_node_tokens, read_token
+
+        self.tls_files().validate()
+        read_token(self.token, self.token_file, "token")
+        read_token(self.read_token, self.read_token_file, "read-token")
+        read_token(self.node_storage_token, self.node_storage_token_file, "node-storage-token")
+        parse_node_tokens(self.node_token, self.node_token_file)
+        for name in ("max_message_bytes", "max_streams_per_peer", "max_key_bytes", "max_value_bytes",
+                     "max_batch_keys"):
+            if getattr(self, name) < 1:
+                raise ConfigError(f"setting '{name.replace('_', '-')}': must be at least 1, got {getattr(self, name)}")
+        try:
+            self.sync_limits().validate()
+        except ValueError as exc:
+            raise ConfigError(f"setting {exc}") from None
+
+    def tls_files(self):  # type: ignore[no-untyped-def]
+        from shardsieve.security import TlsFiles
+
+        return TlsFiles(self.tls_cert, self.tls_key, self.tls_ca, self.tls_client_auth)
+
+    def sync_limits(self):  # type: ignore[no-untyped-def]
+        from shardsieve.limits import SyncLimits
+
+        return SyncLimits(max_filter_bits=self.max_filter_bits, max_snapshot_chunks=self.max_snapshot_chunks,
+                          max_delta_bytes=self.max_delta_bytes)
+
+    def node_tokens(self) -> dict[str, str]:
+        from shardsieve.security import parse_node_tokens
+
+        return parse_node_tokens(self.node_token, self.node_token_file)
+
+    def secret(self, name: str) -> str:
+        """'read_token' / 'node_storage_token': the value, else its file's first line; never logged."""
+        from shardsieve.security import read_token
+
+        return read_token(getattr(self, name), getattr(self, f"{name}_file"), name.replace("_", "-"))
 
     def policy(self) -> Policy:
         return Policy(target_fpr=self.target_fpr, saturation_ratio=self.saturation_ratio, growth=self.growth,

@@ -18,7 +18,9 @@ from typing import Any, Callable, Iterator
 import grpc
 
 from coordinator.fleet import Fleet
-from shardsieve.sync.coordinator_side import CoordinatorSync
+from shardsieve.limits import SyncLimits, check_node_message
+from shardsieve.security import NodeAuthorizer, PeerIdentity, StreamLimiter, peer_identity
+from shardsieve.sync.coordinator_side import CoordinatorSync, CoordinatorSyncConfig
 from shardsieve.sync.errors import SyncError
 from shardsieve.v1 import sync_pb2, sync_pb2_grpc
 
@@ -35,9 +37,17 @@ class _Failure:
 
 class SyncService(sync_pb2_grpc.FilterSyncServicer):
     def __init__(self, fleet: Fleet, sync: CoordinatorSync | None = None, *,
-                 clock: Callable[[], float] = time.monotonic, metrics: Any = None) -> None:
+                 clock: Callable[[], float] = time.monotonic, metrics: Any = None,
+                 authorizer: NodeAuthorizer | None = None, limiter: StreamLimiter | None = None,
+                 limits: SyncLimits | None = None) -> None:
         self.fleet = fleet
-        self.sync = sync or CoordinatorSync(fleet)
+        # identity checks, per-peer stream limit and message limits: shardsieve/security.py, limits.py
+        self.authorizer = authorizer or NodeAuthorizer("open")
+        self.limiter = limiter or StreamLimiter(1 << 30)
+        self.limits = limits or SyncLimits()
+        self._identity: dict[str, str] = {}     # node id -> identity key of its current stream
+        self.sync = sync or CoordinatorSync(
+            fleet, CoordinatorSyncConfig(max_snapshot_bytes=self.limits.max_snapshot_bytes))
         self.lock = threading.Lock()
         self.clock = clock
         self.metrics = metrics
@@ -80,10 +90,35 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
         stream_id = next(self._ids)
         outbox: queue.Queue[Any] = queue.Queue()
         state: dict[str, Any] = {"node": None}
+        who = peer_identity(context)
+        if not self.limiter.acquire(who.host):
+            log.warning("sync stream refused: too many streams from one peer",
+                        extra={"peer": who.describe(), "limit": self.limiter.limit})
+            context.abort(grpc.StatusCode.RESOURCE_EXHAUSTED,
+                          f"{who.host} already has {self.limiter.limit} sync streams open here "
+                          "(setting max-streams-per-peer)")
+        try:
+            yield from self._serve(stream_id, outbox, state, who, request_iterator, context)
+        finally:
+            self.limiter.release(who.host)
+
+    def _refusal(self, node_id: str, who: PeerIdentity) -> str | None:
+        """Why `who` may not open node_id's stream (None: allowed). Called under self.lock."""
+        reason = self.authorizer.refusal(node_id, who)
+        if reason is None and node_id in self._outbox and \
+                self._identity.get(node_id) != self.authorizer.identity_key(who):
+            reason = (f"node {node_id!r} is connected with another identity; a second stream must carry the "
+                      "same identity (reconnect takeover)")
+        return reason
+
+    def _serve(self, stream_id: int, outbox: queue.Queue[Any], state: dict[str, Any], who: PeerIdentity,
+               request_iterator: Iterator[sync_pb2.NodeMessage],
+               context: grpc.ServicerContext) -> Iterator[sync_pb2.CoordinatorMessage]:
 
         def reader() -> None:
             try:
                 for msg in request_iterator:
+                    check_node_message(msg, self.limits)
                     now = self.clock()
                     with self.lock:
                         node_id = state["node"]
@@ -92,9 +127,16 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
                                 outbox.put(_Failure(grpc.StatusCode.FAILED_PRECONDITION,
                                                     "the first message of a sync stream must be a Hello"))
                                 return
+                            refusal = self._refusal(msg.hello.node_id, who)
+                            if refusal is not None:
+                                log.warning("sync stream refused: identity", extra={
+                                    "node_id": msg.hello.node_id, "peer": who.describe(), "reason": refusal})
+                                outbox.put(_Failure(grpc.StatusCode.PERMISSION_DENIED, refusal))
+                                return
                             out = self.sync.open(stream_id, msg.hello, now)
                             node_id = state["node"] = msg.hello.node_id
                             self._outbox[node_id] = outbox
+                            self._identity[node_id] = self.authorizer.identity_key(who)
                             log.info("sync stream opened", extra={"node_id": node_id, "stream": stream_id,
                                                                    "address": msg.hello.storage_address,
                                                                    "epoch": msg.hello.epoch,
@@ -116,7 +158,8 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
                 outbox.put(_END)
             except SyncError as exc:
                 code = getattr(grpc.StatusCode, exc.grpc_status_name, grpc.StatusCode.FAILED_PRECONDITION)
-                log.warning("sync stream refused", extra={"node_id": state["node"], "error": str(exc)})
+                log.warning("sync stream refused", extra={"node_id": state["node"], "peer": who.describe(),
+                                                          "error": str(exc)})
                 outbox.put(_Failure(code, str(exc)))
             except grpc.RpcError:
                 outbox.put(_END)   # the node went away
@@ -144,6 +187,7 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
                     self.sync.close(node_id, stream_id, self.clock())
                     if self._outbox.get(node_id) is outbox:
                         del self._outbox[node_id]
+                        self._identity.pop(node_id, None)
                     view = self.sync.node(node_id)
                 if view is not None:
                     self.fleet.observe(view)

@@ -29,6 +29,8 @@ def _help(name: str) -> str:
             env = f"{ENV_PREFIX}{name.upper()}"
             if isinstance(default, list):
                 shown = ", ".join(default) or "none"
+            elif name.endswith("token"):
+                shown = "(hidden)"
             elif isinstance(default, str):
                 shown = repr(default) if default else "empty"
             else:
@@ -64,6 +66,15 @@ def _help(name: str) -> str:
 @click.option("--log-level", default=None, metavar="LEVEL", help=_help("log_level"))
 @click.option("--log-format", default=None, metavar="json|text", help=_help("log_format"))
 @click.option("--grpc-workers", default=None, metavar="N", help=_help("grpc_workers"))
+@click.option("--tls-cert", default=None, metavar="FILE", help=_help("tls_cert"))
+@click.option("--tls-key", default=None, metavar="FILE", help=_help("tls_key"))
+@click.option("--tls-ca", default=None, metavar="FILE", help=_help("tls_ca"))
+@click.option("--tls-client-auth", default=None, metavar="true|false", help=_help("tls_client_auth"))
+@click.option("--allow-plaintext", default=None, metavar="true|false", help=_help("allow_plaintext"))
+@click.option("--sync-token", default=None, metavar="TOKEN", help=_help("sync_token"))
+@click.option("--sync-token-file", default=None, metavar="FILE", help=_help("sync_token_file"))
+@click.option("--token", default=None, metavar="TOKEN", help=_help("token"))
+@click.option("--token-file", default=None, metavar="FILE", help=_help("token_file"))
 def node_command(config_file: Path | None, id_: str | None, **flags: object) -> None:
     """Run a storage node: serve puts/gets/deletes from a durable SQLite store, keep a counting
     Bloom filter of its keys exact, and stream the filter's changes to every coordinator.

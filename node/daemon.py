@@ -27,6 +27,7 @@ from node.service import NodeStorageService
 from node.settings import NodeSettings
 from node.store import StoreError, open_store
 from node.sync_driver import SyncDriver
+from shardsieve import security
 from shardsieve.v1 import storage_pb2_grpc
 
 log = logging.getLogger("shardsieve.node")
@@ -87,15 +88,18 @@ class NodeDaemon:
                              push_interval=settings.push_interval_ms / 1000.0,
                              limits=Limits(settings.max_key_bytes, settings.max_value_bytes, settings.max_batch),
                              scan_batch=settings.scan_batch)
+        guard = security.TokenGuard({"/shardsieve.v1.NodeStorage/": settings.secret("token")})
         self.server = grpc.server(futures.ThreadPoolExecutor(max_workers=settings.grpc_workers,
                                                              thread_name_prefix="grpc"),
+                                  interceptors=[guard, security.DecodeGuard()],
                                   options=[("grpc.max_receive_message_length", 64 << 20),
                                            ("grpc.max_send_message_length", 64 << 20)])
         self.health = health.HealthServicer()
         storage_pb2_grpc.add_NodeStorageServicer_to_server(NodeStorageService(self.core), self.server)
         health_pb2_grpc.add_HealthServicer_to_server(self.health, self.server)
         self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
-        self.port = self.server.add_insecure_port(settings.listen)
+        self.port = security.open_port(self.server, settings.listen, settings.tls_files(), settings.allow_plaintext,
+                                       log, "node storage")
         if self.port == 0:
             raise StoreError(f"cannot listen on {settings.listen} (address in use or not local)")
         host = settings.listen.rpartition(":")[0]
@@ -135,7 +139,9 @@ class NodeDaemon:
             driver = SyncDriver(self.core, addr, push_interval=self.settings.push_interval_ms / 1000.0,
                                 heartbeat_interval=self.settings.heartbeat_ms / 1000.0,
                                 backoff_min=self.settings.reconnect_min_ms / 1000.0,
-                                backoff_max=self.settings.reconnect_max_ms / 1000.0)
+                                backoff_max=self.settings.reconnect_max_ms / 1000.0,
+                                credentials=self.settings.tls_files().channel_credentials(),
+                                metadata=security.auth_metadata(self.settings.secret("sync_token")))
             driver.start()
             self.drivers.append(driver)
 

@@ -47,6 +47,19 @@ class NodeSettings:
     log_level: str = setting("info", "Log level: debug, info, warning, error.")
     log_format: str = setting("json", "Log format: 'json' (one object per line) or 'text'.")
     grpc_workers: int = setting(16, "Threads serving gRPC requests.")
+    tls_cert: Path | None = setting(None, "PEM certificate of this node (TLS server; client certificate on sync "
+                                          "streams, whose common name must equal the node id under mutual TLS).")
+    tls_key: Path | None = setting(None, "PEM private key of tls-cert.")
+    tls_ca: Path | None = setting(None, "PEM CA that signed the coordinators' (and clients') certificates.")
+    tls_client_auth: bool = setting(False, "Mutual TLS on the storage API: callers must show a certificate "
+                                           "signed by tls-ca.")
+    allow_plaintext: bool = setting(False, "Listen and connect without TLS (trusted loopback setups only; "
+                                           "logs a warning).")
+    sync_token: str = setting("", "Bearer token presented on sync streams (the coordinator's node-token for this "
+                                  "id); empty: none.")
+    sync_token_file: Path | None = setting(None, "File holding sync-token (first line).")
+    token: str = setting("", "Bearer token required by the storage API; empty: no token.")
+    token_file: Path | None = setting(None, "File holding the storage API token (first line).")
 
     def validate(self) -> None:
         if not self.id:
@@ -83,6 +96,20 @@ class NodeSettings:
             raise ConfigError(f"setting 'log-level': must be debug, info, warning or error, got {self.log_level!r}")
         if self.log_format not in ("json", "text"):
             raise ConfigError(f"setting 'log-format': must be 'json' or 'text', got {self.log_format!r}")
+        self.tls_files().validate()          # TLS files and tokens: shardsieve/security.py
+        self.secret("sync_token")
+        self.secret("token")
+
+    def tls_files(self):  # type: ignore[no-untyped-def]
+        from shardsieve.security import TlsFiles
+
+        return TlsFiles(self.tls_cert, self.tls_key, self.tls_ca, self.tls_client_auth)
+
+    def secret(self, name: str) -> str:
+        """'sync_token' / 'token': the value, else its file's first line; never logged."""
+        from shardsieve.security import read_token
+
+        return read_token(getattr(self, name), getattr(self, f"{name}_file"), name.replace("_", "-"))
 
     @property
     def storage_address(self) -> str:

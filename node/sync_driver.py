@@ -23,6 +23,7 @@ from typing import Any, Callable, Iterator
 
 import grpc
 
+from shardsieve.security import make_channel
 from shardsieve.sync.errors import SyncError
 from shardsieve.v1 import sync_pb2, sync_pb2_grpc
 
@@ -37,8 +38,12 @@ class SyncDriver:
 
     def __init__(self, core: Any, address: str, *, push_interval: float = 0.05, heartbeat_interval: float = 1.0,
                  backoff_min: float = 0.1, backoff_max: float = 5.0, rng: random.Random | None = None,
-                 on_sent: Callable[[sync_pb2.NodeMessage, float], None] | None = None) -> None:
+                 on_sent: Callable[[sync_pb2.NodeMessage, float], None] | None = None,
+                 credentials: grpc.ChannelCredentials | None = None,
+                 metadata: tuple[tuple[str, str], ...] = ()) -> None:
         self.core = core
+        self.credentials = credentials   # TLS (None: plaintext) and the sync token: shardsieve/security.py
+        self.metadata = metadata
         self.address = address
         self.peer = f"coordinator@{address}"
         self.push_interval = push_interval
@@ -100,7 +105,7 @@ class SyncDriver:
         outq: queue.Queue[Any] = queue.Queue()
         got_ack = threading.Event()
         reader_done = threading.Event()
-        channel = grpc.insecure_channel(self.address, options=[
+        channel = make_channel(self.address, self.credentials, options=[
             ("grpc.max_send_message_length", 64 << 20), ("grpc.max_receive_message_length", 64 << 20),
             ("grpc.keepalive_time_ms", 10_000), ("grpc.keepalive_timeout_ms", 5_000)])
         call = None
@@ -108,7 +113,7 @@ class SyncDriver:
             for msg in self.core.peer_open(self.peer, time.monotonic()):
                 outq.put(msg)
             stub = sync_pb2_grpc.FilterSyncStub(channel)
-            call = stub.Stream(self._requests(outq))
+            call = stub.Stream(self._requests(outq), metadata=self.metadata)
             self.connects += 1
             reader = threading.Thread(target=self._read, args=(call, outq, got_ack, reader_done),
                                       name=f"sync-read-{self.address}", daemon=True)

@@ -25,7 +25,7 @@ import zlib
 import numpy as np
 import numpy.typing as npt
 
-from shardsieve.changeset import ChangeSet
+from shardsieve.changeset import ChangeSet, overlaps
 
 DELTA_FORMAT_VERSION = 1
 POSITIONS_FORMAT_VERSION = 1  # the positions block has no version byte of its own; it rides in its container
@@ -315,7 +315,7 @@ def encode_delta(changes: ChangeSet, bits: int) -> bytes:
     polynomial, little-endian u32) of everything before it."""
     set_arr = _check_positions(changes.set_positions, bits)
     clr_arr = _check_positions(changes.cleared_positions, bits)
-    if set_arr.size and clr_arr.size and np.intersect1d(set_arr, clr_arr, assume_unique=True).size:
+    if overlaps(set_arr, clr_arr):
         raise ValueError("a position cannot be both set and cleared in one delta")
     out = bytearray((DELTA_FORMAT_VERSION,))
     _write_varint(out, int(set_arr.size))
@@ -383,7 +383,7 @@ def decode_delta(payload: bytes | bytearray | memoryview, bits: int, *,
         decoded.append(_decode_body(body, n, r, bits))
         offset += length
     set_arr, clr_arr = decoded
-    if set_arr.size and clr_arr.size and np.intersect1d(set_arr, clr_arr, assume_unique=True).size:
+    if overlaps(set_arr, clr_arr):
         raise CorruptError("a position is both set and cleared in one delta")
     return ChangeSet(set_arr, clr_arr)
 

@@ -26,6 +26,7 @@ from typing import Any, Sequence
 
 import grpc
 
+from shardsieve.security import channel_credentials, make_channel
 from shardsieve.testing.procs import DaemonProcess, free_port, shardsieve_argv, start_daemon, wait_until
 from shardsieve.v1 import admin_pb2, admin_pb2_grpc, routing_pb2_grpc, storage_pb2, storage_pb2_grpc
 
@@ -69,6 +70,9 @@ class LocalCluster:
     start_timeout: float = 60.0
     coordinator_port: int = 0
     coordinator_metrics_port: int = 0
+    # Mutual TLS everywhere: a directory made by `shardsieve certs` (shardsieve.cli.certs.make_dev_pki)
+    # for these node ids. None: plaintext, which the loopback harness allows explicitly.
+    tls_dir: Path | None = None
     node_handles: dict[str, NodeHandle] = field(default_factory=dict)
     coordinator: DaemonProcess | None = None
     _channels: dict[str, grpc.Channel] = field(default_factory=dict)
@@ -87,8 +91,22 @@ class LocalCluster:
         with self._lock:
             ch = self._channels.get(address)
             if ch is None:
-                ch = self._channels[address] = grpc.insecure_channel(address)
+                ch = self._channels[address] = make_channel(address, self.credentials())
             return ch
+
+    def credentials(self) -> grpc.ChannelCredentials | None:
+        """Client credentials of the operator certificate when tls_dir is set (else None: plaintext)."""
+        if self.tls_dir is None:
+            return None
+        d = Path(self.tls_dir)
+        return channel_credentials(d / "ca.pem", d / "operator.pem", d / "operator-key.pem")
+
+    def _tls_args(self, stem: str) -> list[str]:
+        if self.tls_dir is None:
+            return []
+        d = Path(self.tls_dir)
+        return ["--tls-cert", str(d / f"{stem}.pem"), "--tls-key", str(d / f"{stem}-key.pem"),
+                "--tls-ca", str(d / "ca.pem"), "--tls-client-auth", "true", "--allow-plaintext", "false"]
 
     def router(self) -> routing_pb2_grpc.RouterStub:
         return routing_pb2_grpc.RouterStub(self.channel(self.coordinator_address))
@@ -124,7 +142,7 @@ class LocalCluster:
                 "node", "--id", nid, "--listen", f"{HOST}:{port}", "--data", str(self.directory / nid),
                 "--coordinator", self.coordinator_address, "--capacity", str(self.capacity), "--fpr", str(self.fpr),
                 "--push-interval-ms", str(self.push_interval_ms), "--heartbeat-ms", str(self.heartbeat_ms),
-                "--sync-level", self.sync_level, "--log-format", "text", *self.extra_node_args)
+                "--sync-level", self.sync_level, "--log-format", "text", *self._tls_args(nid), *self.extra_node_args)
             self.node_handles[nid] = NodeHandle(nid, port, self.directory / nid, self.directory / f"{nid}.log", argv)
 
     def coordinator_argv(self) -> list[str]:
@@ -133,6 +151,7 @@ class LocalCluster:
                                "--target-fpr", str(self.fpr))
         if self.metrics:
             argv += ["--metrics-port", str(self.coordinator_metrics_port)]
+        argv += self._tls_args("coordinator")
         argv += list(self.extra_coordinator_args)
         return argv
 
@@ -157,7 +176,8 @@ class LocalCluster:
     def start_coordinator(self) -> DaemonProcess:
         env = {"SHARDSIEVE_COORDINATOR_TOKEN": self.token} if self.token else None
         self.coordinator = start_daemon(self.coordinator_argv(), self.directory / "coordinator.log", env=env,
-                                        health_address=self.coordinator_address, timeout=self.start_timeout)
+                                        health_address=self.coordinator_address, timeout=self.start_timeout,
+                                        credentials=self.credentials())
         return self.coordinator
 
     def stop_coordinator(self, kill: bool = False) -> None:
@@ -178,7 +198,7 @@ class LocalCluster:
         handle = self.node_handles[node_id]
         handle.data_dir.mkdir(parents=True, exist_ok=True)
         handle.process = start_daemon(handle.argv, handle.log_path, health_address=handle.address if wait_healthy else None,
-                                      timeout=self.start_timeout)
+                                      timeout=self.start_timeout, credentials=self.credentials())
         if not wait_healthy:
             handle.process.health_address = handle.address
         return handle.process

@@ -388,6 +388,58 @@ class TokenGuard(grpc.ServerInterceptor):
                                 "or wrong")
 
 
+class Undecodable:
+    """Stands for a request whose bytes are not a valid message (see DecodeGuard)."""
+
+    def __init__(self, error: str) -> None:
+        self.error = error
+
+    def WhichOneof(self, _name: str) -> None:  # noqa: N802 - looks like a message with no body
+        return None
+
+
+def _safe(deserializer: Callable[[bytes], Any] | None) -> Callable[[bytes], Any] | None:
+    if deserializer is None:
+        return None
+
+    def decode(data: bytes) -> Any:
+        try:
+            return deserializer(data)
+        except Exception as exc:  # noqa: BLE001 - any decode failure is the peer's fault
+            return Undecodable(f"{type(exc).__name__}: {exc}")
+    return decode
+
+
+class DecodeGuard(grpc.ServerInterceptor):
+    """Undecodable request bytes end a unary call INVALID_ARGUMENT (gRPC's own answer would be
+    INTERNAL, which reads like a server bug); streaming handlers receive an `Undecodable`
+    in place of the message and refuse it themselves."""
+
+    def intercept_service(self, continuation: Callable[[Any], Any], handler_call_details: Any) -> Any:
+        handler = continuation(handler_call_details)
+        if handler is None or handler.request_deserializer is None:
+            return handler
+        method = handler_call_details.method
+
+        def unary(behavior: Callable[[Any, grpc.ServicerContext], Any]) -> Callable[[Any, grpc.ServicerContext], Any]:
+            def run(request: Any, context: grpc.ServicerContext) -> Any:
+                if isinstance(request, Undecodable):
+                    context.abort(grpc.StatusCode.INVALID_ARGUMENT,
+                                  f"the request to {method} is not a valid message ({request.error[:200]})")
+                return behavior(request, context)
+            return run
+
+        kw = {"request_deserializer": _safe(handler.request_deserializer),
+              "response_serializer": handler.response_serializer}
+        if handler.unary_unary is not None:
+            return grpc.unary_unary_rpc_method_handler(unary(handler.unary_unary), **kw)
+        if handler.unary_stream is not None:
+            return grpc.unary_stream_rpc_method_handler(unary(handler.unary_stream), **kw)
+        if handler.stream_unary is not None:
+            return grpc.stream_unary_rpc_method_handler(handler.stream_unary, **kw)
+        return grpc.stream_stream_rpc_method_handler(handler.stream_stream, **kw)
+
+
 class BearerAuth(grpc.AuthMetadataPlugin):
     """Attaches 'authorization: Bearer <token>' to every call of a channel (TLS channels only)."""
 

@@ -21,7 +21,7 @@ from typing import Any
 import numpy as np
 
 from shardsieve import codec
-from shardsieve.changeset import ChangeSet
+from shardsieve.changeset import ChangeSet, sorted_unique
 
 DEFAULT_BITS = 1 << 24
 DEFAULT_DENSITIES = (1e-4, 1e-3, 1e-2)
@@ -31,10 +31,10 @@ ZSTD_LEVEL = 19
 def _random_positions(rng: np.random.Generator, bits: int, count: int) -> np.ndarray:
     """count distinct positions drawn uniformly from [0, bits), sorted."""
     if count * 4 < bits:
-        picked = np.unique(rng.integers(0, bits, size=count + count // 8 + 16, dtype=np.uint64))
+        picked = sorted_unique(rng.integers(0, bits, size=count + count // 8 + 16, dtype=np.uint64))
         while picked.size < count:
             extra = rng.integers(0, bits, size=count, dtype=np.uint64)
-            picked = np.unique(np.concatenate((picked, extra)))
+            picked = sorted_unique(np.concatenate((picked, extra)))
         picked = rng.permutation(picked)[:count]
         return np.sort(picked).astype(np.uint64)
     return np.sort(rng.choice(bits, size=count, replace=False)).astype(np.uint64)

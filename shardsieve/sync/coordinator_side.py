@@ -208,6 +208,9 @@ class _Node:
     assembly: _Assembly | None = None
     last_snapshot_id: int = 0        # highest snapshot id installed/refused/skipped on this stream
     awaiting: int | None = None      # reason of the outstanding NeedSnapshot
+    # the Hello showed the replica is not a state of the node's current history (a node
+    # restarted without a new epoch): the next snapshot installs whatever its sequence
+    replica_foreign: bool = False
     need_sent_at: float = 0.0
     rebuild_phase: str = ""
     rebuild_request_id: int = 0
@@ -277,6 +280,8 @@ class CoordinatorSync:
         node.counters.streams_opened += 1
         if not node.has_replica:
             return self._need(node, REASON_NO_REPLICA, "no replica of this node (first contact or restart)", now)
+        if node.replica_foreign:
+            return self._need(node, REASON_UNKNOWN_EPOCH, "replica is not from the node's current history", now)
         if node.epoch != hello.epoch:
             return self._need(node, REASON_UNKNOWN_EPOCH,
                               f"replica is at epoch {node.epoch}, node at epoch {hello.epoch}", now)
@@ -284,9 +289,11 @@ class CoordinatorSync:
             return self._need(node, REASON_UNKNOWN_EPOCH,
                               f"epoch {hello.epoch} changed geometry from ({node.geometry}) to ({geometry})", now)
         if node.sequence > hello.sequence:
+            node.replica_foreign = True   # not a state of this node's current history
             return self._need(node, REASON_UNKNOWN_EPOCH,
                               f"replica is at sequence {node.sequence}, beyond the node's {hello.sequence}", now)
         if node.sequence == hello.sequence and node.checksum != hello.checksum:
+            node.replica_foreign = True
             return self._need(node, REASON_CHECKSUM_MISMATCH,
                               f"checksum {node.checksum:#x} at sequence {node.sequence}, node has {hello.checksum:#x}",
                               now)
@@ -447,6 +454,8 @@ class CoordinatorSync:
                 return []   # a late delta of an epoch we already left
             return self._need(node, REASON_UNKNOWN_EPOCH,
                               f"delta of epoch {d.epoch}, replica at epoch {node.epoch}", now)
+        if node.replica_foreign:
+            return self._need(node, REASON_UNKNOWN_EPOCH, "replica is not from the node's current history", now)
         if d.sequence <= node.sequence:
             node.counters.duplicates += 1
             return [self._ack(node)]
@@ -498,7 +507,8 @@ class CoordinatorSync:
         if asm is None or c.snapshot_id != asm.snapshot_id:
             if c.snapshot_id <= node.last_snapshot_id or (asm is not None and c.snapshot_id < asm.snapshot_id):
                 return []   # a late chunk of an attempt already settled or superseded
-            if node.has_replica and c.epoch == node.epoch and c.sequence <= node.sequence:
+            if node.has_replica and c.epoch == node.epoch and c.sequence <= node.sequence \
+                    and not node.replica_foreign:
                 node.last_snapshot_id = c.snapshot_id
                 return self._already_have(node, c)
             if not c.HasField("geometry"):
@@ -525,7 +535,8 @@ class CoordinatorSync:
         asm.last_chunk_at = now
         if not asm.assembler.complete:
             return []
-        if node.has_replica and asm.epoch == node.epoch and asm.sequence <= node.sequence:
+        if node.has_replica and asm.epoch == node.epoch and asm.sequence <= node.sequence \
+                and not node.replica_foreign:
             # deltas moved the replica past this snapshot while it assembled: installing it
             # would take back changes already applied (and keys already routable)
             node.assembly = None
@@ -539,6 +550,7 @@ class CoordinatorSync:
         node.assembly = None
         node.last_snapshot_id = asm.snapshot_id
         node.has_replica = True
+        node.replica_foreign = False
         node.epoch = asm.epoch
         node.sequence = asm.sequence
         node.checksum = asm.checksum

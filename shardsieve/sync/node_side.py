@@ -307,6 +307,7 @@ class NodeSync:
         self._rebuild_phase = PHASE_IDLE
         self._scan_fraction = 0.0
         self._rebuild_request: tuple[int, float] | None = None   # (capacity, target_fpr) being built
+        self._pending_rebuild: sync_pb2.RebuildRequest | None = None
         self.bytes_pushed = 0
 
     # ------------------------------------------------------------------ read-only state
@@ -526,11 +527,10 @@ class NodeSync:
 
     # ------------------------------------------------------------------ rebuild (daemon-driven)
     def take_rebuild_request(self) -> sync_pb2.RebuildRequest | None:
-        """The most recent RebuildRequest not yet acted on (also reported as an event)."""
-        for event in reversed(self._events):
-            if isinstance(event, RebuildRequested):
-                return event.request
-        return None
+        """The most recent RebuildRequest not yet taken (also reported as a RebuildRequested
+        event; use whichever suits the daemon). start_rebuild clears it too."""
+        request, self._pending_rebuild = self._pending_rebuild, None
+        return request
 
     def start_rebuild(self, capacity: int, target_fpr: float, now: float) -> None:
         """The daemon started scanning into a new filter (dual writes from here on)."""
@@ -538,6 +538,7 @@ class NodeSync:
             raise RebuildStateError(f"a rebuild is already running (phase {self._rebuild_phase!r})")
         self._rebuild_phase = PHASE_SCANNING
         self._scan_fraction = 0.0
+        self._pending_rebuild = None
         self._rebuild_request = (int(capacity), float(target_fpr))
 
     def report_scan_progress(self, fraction: float) -> None:
@@ -707,6 +708,7 @@ class NodeSync:
                 f"{request.target_fpr}")
         if self._rebuild_phase != PHASE_IDLE:
             return  # one rebuild at a time; the coordinator sees the phase in heartbeats
+        self._pending_rebuild = request
         self._events.append(RebuildRequested(peer=p.name, request=request))
 
     def _on_rejected(self, p: _Peer, rejected: sync_pb2.SnapshotRejected, now: float) -> None:

@@ -74,12 +74,17 @@ def wait_until(predicate: Callable[[], T], timeout: float, interval: float = 0.0
         time.sleep(interval)
 
 
-def health_status(address: str, service: str = "", timeout: float = 1.0) -> int | None:
-    """The gRPC health status (grpc.health.v1 enum number; 1 = SERVING), or None when unreachable."""
+def health_status(address: str, service: str = "", timeout: float = 1.0,
+                  credentials: object = None) -> int | None:
+    """The gRPC health status (grpc.health.v1 enum number; 1 = SERVING), or None when unreachable.
+
+    `credentials`: grpc.ChannelCredentials for a TLS daemon (None: plaintext)."""
     import grpc
     from grpc_health.v1 import health_pb2, health_pb2_grpc
 
-    with grpc.insecure_channel(address) as channel:
+    channel_ctx = (grpc.secure_channel(address, credentials) if credentials is not None  # type: ignore[arg-type]
+                   else grpc.insecure_channel(address))
+    with channel_ctx as channel:
         try:
             reply = health_pb2_grpc.HealthStub(channel).Check(
                 health_pb2.HealthCheckRequest(service=service), timeout=timeout)
@@ -96,6 +101,7 @@ class DaemonProcess:
     popen: subprocess.Popen[bytes]
     log_path: Path
     health_address: str | None = None
+    credentials: object = None          # grpc.ChannelCredentials of a TLS daemon's health checks
     _log_handle: object = field(default=None, repr=False)
 
     @property
@@ -125,7 +131,7 @@ class DaemonProcess:
             if not self.alive():
                 raise ProcessError(f"process exited with code {self.popen.returncode} before serving\n"
                                    + self.log_tail())
-            return health_status(address, service) == 1
+            return health_status(address, service, credentials=self.credentials) == 1
 
         deadline = time.monotonic() + timeout
         while True:
@@ -168,7 +174,7 @@ class DaemonProcess:
 
 def start_daemon(argv: Sequence[str], log_path: Path, *, env: Mapping[str, str] | None = None,
                  health_address: str | None = None, health_service: str = "",
-                 timeout: float = 30.0, cwd: Path | None = None) -> DaemonProcess:
+                 timeout: float = 30.0, cwd: Path | None = None, credentials: object = None) -> DaemonProcess:
     """Start argv with stdout+stderr appended to log_path; if health_address is given, wait for SERVING.
 
     `env` entries are added to (not replacing) this process's environment. On a failed start
@@ -180,9 +186,13 @@ def start_daemon(argv: Sequence[str], log_path: Path, *, env: Mapping[str, str] 
     full_env = dict(os.environ)
     full_env.update(env or {})
     full_env.setdefault("PYTHONUNBUFFERED", "1")
+    # Test, benchmark and demo daemons listen on loopback: plaintext is allowed here explicitly
+    # (the daemons still log a warning); a caller passing TLS settings or "false" overrides it.
+    full_env.setdefault("SHARDSIEVE_NODE_ALLOW_PLAINTEXT", "true")
+    full_env.setdefault("SHARDSIEVE_COORDINATOR_ALLOW_PLAINTEXT", "true")
     popen = subprocess.Popen(list(argv), stdout=handle, stderr=subprocess.STDOUT, env=full_env,
                              cwd=str(cwd) if cwd else None, start_new_session=True)
-    proc = DaemonProcess(list(argv), popen, log_path, health_address, handle)
+    proc = DaemonProcess(list(argv), popen, log_path, health_address, credentials, handle)
     if health_address is not None:
         try:
             proc.wait_healthy(timeout, health_service)

@@ -171,6 +171,20 @@ def test_reconnect_with_a_new_epoch_needs_a_snapshot() -> None:
     assert reasons(out) == ["SNAPSHOT_REASON_UNKNOWN_EPOCH"]
 
 
+def test_a_node_restarted_without_a_new_epoch_is_resynced_not_patched() -> None:
+    # docs/sync-protocol.md "Node restarts and epochs": the daemon must bump the epoch; if it
+    # does not, the coordinator notices the sequence went backwards and takes any snapshot.
+    sync, sink, node = synced(keys=("box-1", "box-2"))
+    sync.close(NODE, 1)
+    reborn = FakeNode()                       # same epoch 1, sequence 0, other contents
+    reborn.add_key("box-9")
+    out = sync.open(2, reborn.hello(floor=0), 0.0)
+    assert reasons(out) == ["SNAPSHOT_REASON_UNKNOWN_EPOCH"]
+    assert reasons(sync.receive(NODE, 2, reborn.add_key("box-10"), 0.0)) == []   # rate-limited, not applied
+    send_all(sync, reborn.snapshot(), stream=2)
+    assert sink.replicas[NODE] == reborn.bloom and sync.node(NODE).sequence == reborn.sequence
+
+
 def test_a_restarted_coordinator_asks_every_node_for_a_snapshot() -> None:
     _, _, node = synced()
     fresh = CoordinatorSync(DictReplicaSink())      # all soft state lost
