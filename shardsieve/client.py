@@ -53,8 +53,8 @@ class CliSettings:
         host, sep, port = self.coordinator.rpartition(":")
         if not sep or not host or not port.isdigit() or not 0 < int(port) < 65536:
             raise ConfigError(f"coordinator address {self.coordinator!r} must look like HOST:PORT")
-        if self.timeout_s <= 0:
-            raise ConfigError(f"timeout-s must be above 0, got {self.timeout_s}")
+        if not (self.timeout_s > 0 and self.timeout_s != float("inf")):   # NaN fails too (fuzzing found it)
+            raise ConfigError(f"timeout-s must be a finite number above 0, got {self.timeout_s}")
 
 
 def default_config_path(environ: Mapping[str, str] | None = None) -> Path:

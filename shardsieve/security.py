@@ -38,8 +38,9 @@ class SecurityError(RuntimeError):
 def _read_pem(path: Path, setting: str, marker: str) -> bytes:
     try:
         data = path.read_bytes()
-    except OSError as exc:
-        raise ConfigError(f"setting '{setting}': cannot read {path}: {exc.strerror or exc}") from None
+    except (OSError, ValueError) as exc:     # ValueError: a NUL byte in the path (found by fuzzing)
+        raise ConfigError(f"setting '{setting}': cannot read {str(path)!r}: "
+                          f"{getattr(exc, 'strerror', None) or exc}") from None
     if marker.encode() not in data:
         raise ConfigError(f"setting '{setting}': {path} holds no PEM '{marker}' block "
                           "(make development files with `shardsieve certs --out DIR`)")
@@ -141,8 +142,8 @@ def read_token(value: str, path: Path | None, setting: str = "token") -> str:
     if not token and path is not None:
         try:
             lines = path.read_text().splitlines()
-        except (OSError, UnicodeDecodeError) as exc:
-            raise ConfigError(f"setting '{setting}-file': cannot read {path}: {exc}") from None
+        except (OSError, ValueError) as exc:     # ValueError: undecodable text or a NUL byte in the path
+            raise ConfigError(f"setting '{setting}-file': cannot read {str(path)!r}: {exc}") from None
         token = lines[0].strip() if lines else ""
     if token and (len(token.encode()) > MAX_TOKEN_BYTES
                   or any(not (0x21 <= ord(c) <= 0x7E) for c in token)):
@@ -188,7 +189,7 @@ def parse_node_tokens(items: Sequence[str], path: Path | None) -> dict[str, str]
     if path is not None:
         try:
             text = path.read_text()
-        except (OSError, UnicodeDecodeError) as exc:
+        except (OSError, ValueError) as exc:
             raise ConfigError(f"setting 'node-token-file': cannot read {path}: {exc}") from None
         for n, line in enumerate(text.splitlines(), 1):
             line = line.split("#", 1)[0].strip()

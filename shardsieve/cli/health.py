@@ -7,6 +7,13 @@ fits both daemons: SHARDSIEVE_HEALTH_ADDRESS, else SHARDSIEVE_NODE_LISTEN /
 SHARDSIEVE_COORDINATOR_LISTEN (a wildcard host is asked on 127.0.0.1), else the default ports
 127.0.0.1:7400 (coordinator) and 127.0.0.1:7500 (node).
 
+TLS: with --ca (and --cert/--key for daemons that require client certificates) the probe
+speaks TLS. Without flags it takes them from the daemon's own settings in the environment
+(SHARDSIEVE_NODE_TLS_CA/_CERT/_KEY, else SHARDSIEVE_COORDINATOR_TLS_*), so a TLS daemon in a
+container stays probe-able; the daemon's own certificate serves as the client certificate.
+--server-name (env SHARDSIEVE_HEALTH_SERVER_NAME) names the host the certificate must be for
+when it does not list 127.0.0.1.
+
 Also runnable as `python -m shardsieve.cli.health` (what the image's HEALTHCHECK does).
 """
 
@@ -14,6 +21,8 @@ from __future__ import annotations
 
 import os
 import sys
+from dataclasses import dataclass
+from pathlib import Path
 from typing import Mapping, Sequence
 
 import click
@@ -40,14 +49,58 @@ def addresses_from_env(environ: Mapping[str, str]) -> list[str]:
     return list(DEFAULT_ADDRESSES)
 
 
-def check(addresses: Sequence[str], timeout: float) -> tuple[bool, list[str]]:
+@dataclass(frozen=True)
+class ProbeTls:
+    """TLS material of the probe: CA to verify the daemon, optional client certificate + key."""
+
+    ca: Path | None = None
+    cert: Path | None = None
+    key: Path | None = None
+    server_name: str = ""
+
+    @property
+    def enabled(self) -> bool:
+        return self.ca is not None or self.cert is not None
+
+    def credentials(self):  # noqa: ANN201 - grpc.ChannelCredentials
+        import grpc
+
+        def read(path: Path | None) -> bytes | None:
+            return path.read_bytes() if path is not None else None
+
+        return grpc.ssl_channel_credentials(root_certificates=read(self.ca), private_key=read(self.key),
+                                            certificate_chain=read(self.cert))
+
+
+def tls_from_env(environ: Mapping[str, str]) -> ProbeTls:
+    """The daemon's own TLS settings (node first, then coordinator); empty when it runs plaintext."""
+    server_name = environ.get("SHARDSIEVE_HEALTH_SERVER_NAME", "")
+    for prefix in ("SHARDSIEVE_NODE_TLS_", "SHARDSIEVE_COORDINATOR_TLS_"):
+        cert, key, ca = (environ.get(prefix + name, "").strip() for name in ("CERT", "KEY", "CA"))
+        if cert or ca:
+            return ProbeTls(Path(ca) if ca else None, Path(cert) if cert and key else None,
+                            Path(key) if cert and key else None, server_name)
+    return ProbeTls(server_name=server_name)
+
+
+def _channel(address: str, tls: ProbeTls):  # noqa: ANN202 - grpc.Channel
+    import grpc
+
+    if not tls.enabled:
+        return grpc.insecure_channel(address)
+    options = [("grpc.ssl_target_name_override", tls.server_name)] if tls.server_name else []
+    return grpc.secure_channel(address, tls.credentials(), options=options)
+
+
+def check(addresses: Sequence[str], timeout: float, tls: ProbeTls | None = None) -> tuple[bool, list[str]]:
     """Ask each address; True when one answers SERVING. Returns the per-address report lines."""
     import grpc
     from grpc_health.v1 import health_pb2, health_pb2_grpc
 
+    tls = tls or ProbeTls()
     lines = []
     for address in addresses:
-        with grpc.insecure_channel(address) as channel:
+        with _channel(address, tls) as channel:
             try:
                 reply = health_pb2_grpc.HealthStub(channel).Check(health_pb2.HealthCheckRequest(), timeout=timeout)
             except grpc.RpcError as exc:
@@ -61,10 +114,18 @@ def check(addresses: Sequence[str], timeout: float) -> tuple[bool, list[str]]:
     return False, lines
 
 
+_FILE = click.Path(exists=True, dir_okay=False, path_type=Path)
+
+
 @click.command("health")
 @click.argument("addresses", nargs=-1)
 @click.option("--timeout", default=2.0, show_default=True, type=float, help="Seconds to wait for each answer.")
-def health(addresses: tuple[str, ...], timeout: float) -> None:
+@click.option("--ca", type=_FILE, default=None, help="PEM CA that signed the daemon's certificate (speaks TLS).")
+@click.option("--cert", type=_FILE, default=None, help="PEM client certificate, for daemons requiring one.")
+@click.option("--key", type=_FILE, default=None, help="PEM private key of --cert.")
+@click.option("--server-name", default=None, help="Host name the daemon's certificate must be for.")
+def health(addresses: tuple[str, ...], timeout: float, ca: Path | None, cert: Path | None, key: Path | None,
+           server_name: str | None) -> None:
     """Exit 0 when a daemon at ADDRESS (HOST:PORT) reports gRPC health SERVING, else 1.
 
     Without ADDRESS: $SHARDSIEVE_HEALTH_ADDRESS, else the daemon's listen setting from
@@ -76,8 +137,16 @@ def health(addresses: tuple[str, ...], timeout: float) -> None:
         host, sep, port = address.rpartition(":")
         if not sep or not host or not port.isdigit():
             raise click.BadParameter(f"{address!r} is not HOST:PORT", param_hint="ADDRESS")
+    if (cert is None) != (key is None):
+        raise click.UsageError("--cert and --key go together: give both or neither")
+    if ca or cert:
+        tls = ProbeTls(ca, cert, key, server_name or "")
+    else:
+        tls = tls_from_env(os.environ)
+        if server_name:
+            tls = ProbeTls(tls.ca, tls.cert, tls.key, server_name)
     targets = list(addresses) or addresses_from_env(os.environ)
-    ok, lines = check(targets, timeout)
+    ok, lines = check(targets, timeout, tls)
     click.echo("; ".join(lines))
     sys.exit(0 if ok else 1)
 

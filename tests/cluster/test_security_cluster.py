@@ -348,7 +348,9 @@ def test_fuzzed_deltas_and_snapshots_change_nothing(cluster: LocalCluster) -> No
     assert after == before
     spare_after = cluster.router().LocateBatch(routing_pb2.LocateBatchRequest(keys=spare_keys), timeout=5,
                                                metadata=READ_MD)
-    assert spare_after == spare_before
+    # same candidates (the 'stale' flag may flip: freshness is time, not state)
+    assert [[c.node_id for c in r.candidates] for r in spare_after.results] == \
+        [[c.node_id for c in r.candidates] for r in spare_before.results]
     # the same identity may take the stream over (reconnect); the older stream is then ended
     again = FakeNode(cluster.coordinator_address, md).send(hello("spare", GEOMETRY, checksum=bloom.checksum))
     assert again.recv().WhichOneof("body") in ("ack", "need_snapshot")

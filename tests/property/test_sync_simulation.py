@@ -69,7 +69,7 @@ class Simulation:
     def __init__(self, seed: int, steps: int | None = None) -> None:
         self.seed = seed
         self.rng = rng = random.Random(seed)
-        self.steps = steps if steps is not None else rng.randint(5, 26)
+        self.steps = steps if steps is not None else rng.randint(4, 24)
         self.now = 0.0
         self.loss = rng.choice((0.0, 0.05, 0.15, 0.3))
         self.dup = rng.choice((0.0, 0.05, 0.2))
