@@ -32,7 +32,7 @@ start_dockerd() {
     # setsid: the daemon outlives this script and is not in the test runner's process group.
     setsid dockerd "$@" >>"$dockerd_log" 2>&1 < /dev/null &
     local pid=$!
-    say "dockerd $* started (pid $pid, log $dockerd_log)"
+    say "dockerd ${*:-(default options)} started (pid $pid, log $dockerd_log)"
     if wait_for_engine "$pid"; then
         return 0
     fi

@@ -100,15 +100,16 @@ class CoordinatorDaemon:
                                 limiter=security.StreamLimiter(settings.max_streams_per_peer),
                                 limits=settings.sync_limits())
         self.admin = AdminService(self.fleet, settings.id, settings.admin_token(), self.start_rebuild)
-        write_token, read_token = settings.admin_token(), settings.secret("read_token")
+        write_token, read_token = settings.secret("write_token"), settings.secret("read_token")
         guard = security.TokenGuard({
-            "/shardsieve.v1.Admin/": write_token,
+            "/shardsieve.v1.Admin/": settings.admin_token(),
             "/shardsieve.v1.Router/Write": write_token, "/shardsieve.v1.Router/Remove": write_token,
             "/shardsieve.v1.Router/Locate": read_token, "/shardsieve.v1.Router/LocateBatch": read_token,
             "/shardsieve.v1.Router/Read": read_token})
         self.server = grpc.server(futures.ThreadPoolExecutor(max_workers=settings.grpc_workers,
                                                              thread_name_prefix="grpc"),
-                                  interceptors=[guard, security.DecodeGuard()],
+                                  interceptors=[guard, security.DecodeGuard()] if guard.active
+                                  else [security.DecodeGuard()],
                                   options=[("grpc.max_receive_message_length", settings.max_message_bytes),
                                            ("grpc.max_send_message_length", 64 << 20)])
         add_router_service(RouterService(self.router), self.server)
@@ -174,6 +175,7 @@ class CoordinatorDaemon:
                                    "known_nodes": len(self.fleet.nodes),
                                    "admin_token": "configured" if self.settings.admin_token() else "none",
                                    "read_token": "configured" if self.settings.secret("read_token") else "none",
+                                   "write_token": "configured" if self.settings.secret("write_token") else "none",
                                    "tls": "mutual" if self.settings.tls_client_auth else
                                    "server" if self.settings.tls_files().enabled else "off",
                                    "node_auth": self.node_auth})

@@ -30,9 +30,10 @@ class CoordinatorSettings:
                                            "(so after a restart they count as stale until they resync); empty: none.")
     expect_node: list[str] = setting([], "NODE_ID=HOST:PORT of a node known before it connects (listed stale "
                                          "until synced); repeat for several.")
-    token: str = setting("", "Bearer token required by the Admin API and by Write/Remove; empty: no token.",
-                         env="SHARDSIEVE_COORDINATOR_TOKEN")
-    token_file: Path | None = setting(None, "File holding the Admin/write bearer token (first line).")
+    token: str = setting("", "Bearer token required by the Admin API; empty: no token.", env="SHARDSIEVE_COORDINATOR_TOKEN")
+    token_file: Path | None = setting(None, "File holding the Admin API bearer token (first line).")
+    write_token: str = setting("", "Bearer token required by Write/Remove; empty: open writes.")
+    write_token_file: Path | None = setting(None, "File holding the write bearer token (first line).")
     read_token: str = setting("", "Bearer token required by Locate/LocateBatch/Read; empty: open reads.")
     read_token_file: Path | None = setting(None, "File holding the read bearer token (first line).")
     tls_cert: Path | None = setting(None, "PEM certificate of this coordinator (TLS server; client certificate "
@@ -117,6 +118,7 @@ class CoordinatorSettings:
         self.tls_files().validate()
         read_token(self.token, self.token_file, "token")
         read_token(self.read_token, self.read_token_file, "read-token")
+        read_token(self.write_token, self.write_token_file, "write-token")
         read_token(self.node_storage_token, self.node_storage_token_file, "node-storage-token")
         parse_node_tokens(self.node_token, self.node_token_file)
         for name in ("max_message_bytes", "max_streams_per_peer", "max_key_bytes", "max_value_bytes",
@@ -145,7 +147,7 @@ class CoordinatorSettings:
         return parse_node_tokens(self.node_token, self.node_token_file)
 
     def secret(self, name: str) -> str:
-        """'read_token' / 'node_storage_token': the value, else its file's first line; never logged."""
+        """'read_token' / 'write_token' / 'node_storage_token': the value, else its file's first line; never logged."""
         from shardsieve.security import read_token
 
         return read_token(getattr(self, name), getattr(self, f"{name}_file"), name.replace("_", "-"))

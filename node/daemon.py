@@ -91,7 +91,8 @@ class NodeDaemon:
         guard = security.TokenGuard({"/shardsieve.v1.NodeStorage/": settings.secret("token")})
         self.server = grpc.server(futures.ThreadPoolExecutor(max_workers=settings.grpc_workers,
                                                              thread_name_prefix="grpc"),
-                                  interceptors=[guard, security.DecodeGuard()],
+                                  interceptors=[guard, security.DecodeGuard()] if guard.active
+                                  else [security.DecodeGuard()],
                                   options=[("grpc.max_receive_message_length", 64 << 20),
                                            ("grpc.max_send_message_length", 64 << 20)])
         self.health = health.HealthServicer()

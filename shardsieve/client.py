@@ -48,6 +48,9 @@ class CliSettings:
     coordinator: str = setting(DEFAULT_COORDINATOR, "coordinator address HOST:PORT")
     token: str = setting("", "bearer token sent to the coordinator (empty: none)")
     timeout_s: float = setting(10.0, "deadline of each call in seconds")
+    tls_ca: Path | None = setting(None, "PEM CA that signed the coordinator's certificate (TLS; env SHARDSIEVE_TLS_CA)")
+    tls_cert: Path | None = setting(None, "PEM client certificate, for a coordinator requiring mutual TLS")
+    tls_key: Path | None = setting(None, "PEM private key of tls-cert")
 
     def validate(self) -> None:
         host, sep, port = self.coordinator.rpartition(":")
@@ -55,6 +58,17 @@ class CliSettings:
             raise ConfigError(f"coordinator address {self.coordinator!r} must look like HOST:PORT")
         if not (self.timeout_s > 0 and self.timeout_s != float("inf")):   # NaN fails too (fuzzing found it)
             raise ConfigError(f"timeout-s must be a finite number above 0, got {self.timeout_s}")
+        from shardsieve.security import TlsFiles   # TLS files: shardsieve/security.py
+
+        TlsFiles(self.tls_cert, self.tls_key, self.tls_ca).validate()
+
+    def credentials(self) -> grpc.ChannelCredentials | None:
+        """TLS channel credentials when tls-ca or tls-cert is set, else None (plaintext)."""
+        from shardsieve.security import channel_credentials
+
+        if self.tls_ca is None and self.tls_cert is None:
+            return None
+        return channel_credentials(self.tls_ca, self.tls_cert, self.tls_key)
 
 
 def default_config_path(environ: Mapping[str, str] | None = None) -> Path:
@@ -146,8 +160,10 @@ class CoordinatorClient:
 
         self.settings = settings
         self.address = settings.coordinator
-        self._channel = channel or grpc.insecure_channel(
-            self.address, options=[("grpc.max_receive_message_length", 64 * 1024 * 1024)])
+        from shardsieve.security import make_channel
+
+        self._channel = channel or make_channel(
+            self.address, settings.credentials(), options=[("grpc.max_receive_message_length", 64 * 1024 * 1024)])
         self.router = routing_pb2_grpc.RouterStub(self._channel)
         self.admin = admin_pb2_grpc.AdminStub(self._channel)
         self._metadata: tuple[tuple[str, str], ...] = (

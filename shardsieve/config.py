@@ -104,6 +104,10 @@ def read_toml(path: Path, section: str | None) -> dict[str, Any]:
         raise ConfigError(f"config file {path} does not exist") from None
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"config file {path} is not valid TOML: {exc}") from None
+    except UnicodeDecodeError as exc:   # found by fuzzing (tests/fuzz/fuzz_decoders.py config)
+        raise ConfigError(f"config file {path} is not UTF-8 text (TOML files are UTF-8): {exc}") from None
+    except (IsADirectoryError, PermissionError) as exc:
+        raise ConfigError(f"config file {path} cannot be read: {exc.strerror}") from None
     if section is not None:
         table = data.get(section, {})
         if not isinstance(table, dict):

@@ -116,8 +116,9 @@ def open_port(server: grpc.Server, address: str, tls: TlsFiles, allow_plaintext:
             f"{what} would listen in plaintext on {address}: configure tls-cert and tls-key (development "
             "files: `shardsieve certs --out DIR`), or set allow-plaintext for a trusted loopback setup")
     port = server.add_insecure_port(address)
-    logger.warning("listening in PLAINTEXT (allow-plaintext is set): anyone who can reach this address can "
-                   "read and forge its traffic; use TLS outside a trusted loopback setup",
+    where = "loopback" if is_loopback(address) else "a NON-LOOPBACK address"
+    logger.warning(f"listening in PLAINTEXT on {where} (allow-plaintext is set): anyone who can reach this "
+                   "address can read and forge its traffic; use TLS outside a trusted loopback setup",
                    extra={"service": what, "address": address})
     return port
 
@@ -366,6 +367,11 @@ class TokenGuard(grpc.ServerInterceptor):
         self._rules = {k: v for k, v in rules.items() if v}
         self._on_refused = on_refused
 
+    @property
+    def active(self) -> bool:
+        """False when no method needs a token (the daemons then leave the interceptor out)."""
+        return bool(self._rules)
+
     def required(self, method: str) -> str:
         token = self._rules.get(method)
         if token is None:
@@ -416,11 +422,22 @@ class DecodeGuard(grpc.ServerInterceptor):
     INTERNAL, which reads like a server bug); streaming handlers receive an `Undecodable`
     in place of the message and refuse it themselves."""
 
+    def __init__(self) -> None:
+        self._wrapped: dict[int, tuple[Any, Any]] = {}     # id(handler) -> (handler, wrapped): handlers are static
+
     def intercept_service(self, continuation: Callable[[Any], Any], handler_call_details: Any) -> Any:
         handler = continuation(handler_call_details)
         if handler is None or handler.request_deserializer is None:
             return handler
-        method = handler_call_details.method
+        cached = self._wrapped.get(id(handler))
+        if cached is not None and cached[0] is handler:
+            return cached[1]
+        wrapped = self._wrap(handler, handler_call_details.method)
+        self._wrapped[id(handler)] = (handler, wrapped)
+        return wrapped
+
+    @staticmethod
+    def _wrap(handler: grpc.RpcMethodHandler, method: str) -> grpc.RpcMethodHandler:
 
         def unary(behavior: Callable[[Any, grpc.ServicerContext], Any]) -> Callable[[Any, grpc.ServicerContext], Any]:
             def run(request: Any, context: grpc.ServicerContext) -> Any:
@@ -439,13 +456,3 @@ class DecodeGuard(grpc.ServerInterceptor):
         if handler.stream_unary is not None:
             return grpc.stream_unary_rpc_method_handler(handler.stream_unary, **kw)
         return grpc.stream_stream_rpc_method_handler(handler.stream_stream, **kw)
-
-
-class BearerAuth(grpc.AuthMetadataPlugin):
-    """Attaches 'authorization: Bearer <token>' to every call of a channel (TLS channels only)."""
-
-    def __init__(self, token: str) -> None:
-        self._token = token
-
-    def __call__(self, context: Any, callback: Any) -> None:
-        callback(((AUTH_HEADER, f"Bearer {self._token}"),), None)

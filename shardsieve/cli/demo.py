@@ -87,6 +87,8 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
     try:
         out.print(f"[bold]{scenario.BUSINESS}[/] (an invented business): starting a coordinator and {nodes} nodes "
                   f"in {workdir} …")
+        out.print("security: plaintext gRPC on 127.0.0.1, explicitly allowed for this loopback demo "
+                  "(allow-plaintext); a real fleet uses TLS, see docs/security.md")
         try:
             cluster.start()
         except (ProcessError, TimeoutError) as exc:

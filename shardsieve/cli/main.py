@@ -22,6 +22,7 @@ COMMANDS = {
     "policy": "shardsieve.cli.ops:policy",
     "loadtest": "shardsieve.cli.loadtest:loadtest",
     "demo": "shardsieve.cli.demo:demo",
+    "health": "shardsieve.cli.health:health",
     "certs": "shardsieve.cli.certs:certs",
 }
 

@@ -101,6 +101,13 @@ def coordinator_options(func: F) -> F:
                              "~/.config/shardsieve/config.toml when present).")(func)
     func = click.option("--token", default=None,
                         help="Bearer token for the coordinator (env SHARDSIEVE_TOKEN).")(func)
+    for flag, env, what in (("--tls-key", "SHARDSIEVE_TLS_KEY", "PEM key of --tls-cert"),
+                            ("--tls-cert", "SHARDSIEVE_TLS_CERT", "PEM client certificate (mutual TLS)"),
+                            ("--tls-ca", "SHARDSIEVE_TLS_CA", "PEM CA of the coordinator's certificate (TLS)")):
+        # kept in the click context and handed to resolve_settings as environment (flags win over env)
+        func = click.option(flag, default=None, metavar="FILE", expose_value=False, help=f"{what} (env {env}).",
+                            callback=lambda c, _p, v, env=env: c.meta.setdefault("tls_env", {}).update(
+                                {env: v} if v else {}))(func)
     func = click.option("--coordinator", default=None, metavar="HOST:PORT",
                         help="Coordinator address (env SHARDSIEVE_COORDINATOR; default 127.0.0.1:7400).")(func)
     return func
@@ -108,7 +115,10 @@ def coordinator_options(func: F) -> F:
 
 def open_client(coordinator: str | None, token: str | None, config_file: str | None,
                 timeout_s: float | None) -> CoordinatorClient:
-    return CoordinatorClient(resolve_settings(coordinator, token, config_file, timeout_s))
+    ctx = click.get_current_context(silent=True)
+    tls_env = ctx.meta.get("tls_env", {}) if ctx is not None else {}
+    environ = {**os.environ, **tls_env} if tls_env else None
+    return CoordinatorClient(resolve_settings(coordinator, token, config_file, timeout_s, environ=environ))
 
 
 def emit_json(data: Any) -> None:

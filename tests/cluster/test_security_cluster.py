@@ -28,11 +28,14 @@ from shardsieve.localcluster import LocalCluster
 from shardsieve.security import channel_credentials
 from shardsieve.snapshot import encode_snapshot
 from shardsieve.testing.procs import wait_until
-from shardsieve.v1 import admin_pb2, filter_pb2, routing_pb2, routing_pb2_grpc, sync_pb2, sync_pb2_grpc
+from shardsieve.testing.procs import free_port, shardsieve_argv
+from shardsieve.v1 import admin_pb2, filter_pb2, routing_pb2, storage_pb2, sync_pb2, sync_pb2_grpc
 
 pytestmark = pytest.mark.cluster
 
 ADMIN_TOKEN = "kelpline-admin-7f3a"
+WRITE_TOKEN = "kelpline-write-88e1"
+STORAGE_TOKEN = "kelpline-storage-2a4c"
 READ_TOKEN = "kelpline-read-19bd"
 NODE_TOKEN = "kelpline-node1-c0de"
 SPARE_TOKEN = "kelpline-spare-51ee"
@@ -196,6 +199,18 @@ def test_cluster_runs_entirely_over_mutual_tls(tmp_path: Path) -> None:
         assert "sync stream refused: identity" in log and "issued to 'node-2'" in log
         assert "listening with TLS" in log and "PLAINTEXT" not in log
 
+        # the operator CLI over mutual TLS (flags), and refused without them
+        from click.testing import CliRunner
+
+        from shardsieve.cli.main import cli
+        tls_flags = ["--tls-ca", str(pki / "ca.pem"), "--tls-cert", str(pki / "operator.pem"),
+                     "--tls-key", str(pki / "operator-key.pem")]
+        ok = CliRunner().invoke(cli, ["status", "--coordinator", coord, "--json", *tls_flags], env={"HOME": str(tmp_path)})
+        assert ok.exit_code == 0, ok.output
+        assert '"node-1"' in ok.output and '"node-2"' in ok.output
+        bare = CliRunner().invoke(cli, ["status", "--coordinator", coord, "--timeout", "2"], env={"HOME": str(tmp_path)})
+        assert bare.exit_code == 3, bare.output                # EXIT_UNREACHABLE (docs/cli.md)
+
 
 # --------------------------------------------------------------------------- token mode
 
@@ -204,30 +219,33 @@ def test_cluster_runs_entirely_over_mutual_tls(tmp_path: Path) -> None:
 def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[LocalCluster]:
     coordinator_args = ["--node-token", f"node-1={NODE_TOKEN}", "--node-token", f"spare={SPARE_TOKEN}",
                         "--node-token", f"spare2={SPARE_TOKEN}", "--read-token", READ_TOKEN,
+                        "--write-token", WRITE_TOKEN,
                         "--max-streams-per-peer", "4", "--max-message-bytes", str(1 << 20),
                         "--max-filter-bits", str(1 << 20), "--max-snapshot-chunks", "4", "--mode", "fast",
-                        "--auto-rebuild", "false"]
+                        "--auto-rebuild", "false", "--node-storage-token", STORAGE_TOKEN]
     with LocalCluster(tmp_path_factory.mktemp("sec"), nodes=1, capacity=2000, token=ADMIN_TOKEN, metrics=True,
                       extra_coordinator_args=coordinator_args,
-                      extra_node_args=["--sync-token", NODE_TOKEN]) as c:
-        write_keys(c, (("authorization", f"Bearer {ADMIN_TOKEN}"),))
+                      extra_node_args=["--sync-token", NODE_TOKEN, "--token", STORAGE_TOKEN]) as c:
+        write_keys(c, (("authorization", f"Bearer {WRITE_TOKEN}"),))
         settle(c, (("authorization", f"Bearer {READ_TOKEN}"),))
         yield c
 
 
 READ_MD = (("authorization", f"Bearer {READ_TOKEN}"),)
 ADMIN_MD = (("authorization", f"Bearer {ADMIN_TOKEN}"),)
+WRITE_MD = (("authorization", f"Bearer {WRITE_TOKEN}"),)
 GEOMETRY = Geometry(bits=1 << 10, hashes=3)
 
 
 def test_wrong_or_missing_tokens_are_unauthenticated(cluster: LocalCluster) -> None:
     before = coordinator_state(cluster, READ_MD)
     admin, router = cluster.admin(), cluster.router()
-    for md in ((), (("authorization", "Bearer wrong"),), READ_MD):        # the read token is not an admin token
+    for md in ((), (("authorization", "Bearer wrong"),), READ_MD, WRITE_MD):   # no other token opens Admin
         assert rpc_code(admin.FleetStatus, admin_pb2.FleetStatusRequest(), timeout=5, metadata=md) \
             == grpc.StatusCode.UNAUTHENTICATED
         assert rpc_code(admin.SetPolicy, admin_pb2.PolicySetRequest(values={"growth": "9"}), timeout=5,
                         metadata=md) == grpc.StatusCode.UNAUTHENTICATED
+    for md in ((), (("authorization", "Bearer wrong"),), READ_MD, ADMIN_MD):   # nor Write/Remove
         assert rpc_code(router.Write, routing_pb2.WriteRequest(key=b"kelpline-intruder", value=b"x"), timeout=5,
                         metadata=md) == grpc.StatusCode.UNAUTHENTICATED
         assert rpc_code(router.Remove, routing_pb2.RemoveRequest(key=KEYS[0]), timeout=5, metadata=md) \
@@ -241,7 +259,20 @@ def test_wrong_or_missing_tokens_are_unauthenticated(cluster: LocalCluster) -> N
     assert router.Read(routing_pb2.ReadRequest(key=KEYS[0]), timeout=5, metadata=READ_MD).found
     assert admin.GetPolicy(admin_pb2.PolicyGetRequest(), timeout=5, metadata=ADMIN_MD).growth != 9
     log = cluster.coordinator.log_text() if cluster.coordinator else ""
-    for secret in (ADMIN_TOKEN, READ_TOKEN, NODE_TOKEN, SPARE_TOKEN):
+    # the node's storage API wants its own token; the coordinator's probes carry it (the reads above)
+    storage = cluster.storage("node-1")
+    for md in ((), WRITE_MD, (("authorization", "Bearer wrong"),)):
+        assert rpc_code(storage.Put, storage_pb2.PutRequest(key=b"kelpline-direct", value=b"x"), timeout=5,
+                        metadata=md) == grpc.StatusCode.UNAUTHENTICATED
+        assert rpc_code(storage.Get, storage_pb2.GetRequest(key=KEYS[0]), timeout=5, metadata=md) \
+            == grpc.StatusCode.UNAUTHENTICATED
+    assert storage.Get(storage_pb2.GetRequest(key=KEYS[0]), timeout=5,
+                       metadata=(("authorization", f"Bearer {STORAGE_TOKEN}"),)).found
+    assert coordinator_state(cluster, READ_MD) == before
+    node_log = cluster.node_process("node-1").log_text()
+    for secret in (ADMIN_TOKEN, WRITE_TOKEN, READ_TOKEN, NODE_TOKEN, SPARE_TOKEN, STORAGE_TOKEN):
+        assert secret not in node_log
+    for secret in (ADMIN_TOKEN, WRITE_TOKEN, READ_TOKEN, NODE_TOKEN, SPARE_TOKEN, STORAGE_TOKEN):
         assert secret not in log                                      # tokens are never logged
 
 
@@ -265,7 +296,7 @@ def test_oversized_requests_and_messages(cluster: LocalCluster) -> None:
     router = cluster.router()
     # past the gRPC message limit (max-message-bytes = 1 MiB)
     assert rpc_code(router.Write, routing_pb2.WriteRequest(key=b"kelpline-big", value=b"x" * (2 << 20)), timeout=10,
-                    metadata=ADMIN_MD) == grpc.StatusCode.RESOURCE_EXHAUSTED
+                    metadata=WRITE_MD) == grpc.StatusCode.RESOURCE_EXHAUSTED
     assert rpc_code(router.Locate, routing_pb2.LocateRequest(key=b"k" * (65 * 1024)), timeout=10,
                     metadata=READ_MD) == grpc.StatusCode.INVALID_ARGUMENT                   # max-key-bytes
     md = (("authorization", f"Bearer {SPARE_TOKEN}"),)
@@ -295,7 +326,7 @@ def test_malformed_messages(cluster: LocalCluster) -> None:
         == grpc.StatusCode.INVALID_ARGUMENT
     raw_write = cluster.channel(addr).unary_unary("/shardsieve.v1.Router/Write", request_serializer=lambda b: b,
                                                   response_deserializer=lambda b: b)
-    assert rpc_code(raw_write, b"\x0a\xff\xff\xff\xff\x0f", timeout=5, metadata=ADMIN_MD) \
+    assert rpc_code(raw_write, b"\x0a\xff\xff\xff\xff\x0f", timeout=5, metadata=WRITE_MD) \
         == grpc.StatusCode.INVALID_ARGUMENT
     assert coordinator_state(cluster, READ_MD)[1] == before[1]
     assert [p for p in coordinator_state(cluster, READ_MD)[0] if p[0] == "node-1"] == \
@@ -402,3 +433,17 @@ def test_implausible_fill_is_applied_but_flagged(cluster: LocalCluster) -> None:
     assert b'shardsieve_coordinator_node_implausible_fill{node="spare2"} 1.0' in text
     assert b'shardsieve_coordinator_node_implausible_fill{node="node-1"} 0.0' in text
     fake.close()
+
+
+def test_daemons_refuse_plaintext_unless_allowed(tmp_path: Path) -> None:
+    import os
+    import subprocess
+
+    env = {k: v for k, v in os.environ.items() if not k.endswith("_ALLOW_PLAINTEXT")}
+    port = free_port()
+    for argv in (shardsieve_argv("coordinator", "--listen", f"127.0.0.1:{port}", "--log-format", "text"),
+                 shardsieve_argv("node", "--id", "n1", "--listen", f"127.0.0.1:{port}", "--data",
+                                 str(tmp_path / "n1"), "--store", "memory", "--log-format", "text")):
+        proc = subprocess.run(argv, capture_output=True, text=True, timeout=60, env=env)
+        assert proc.returncode == 1, proc.stderr
+        assert "allow-plaintext" in proc.stderr and "tls-cert" in proc.stderr

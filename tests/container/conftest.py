@@ -18,6 +18,7 @@ import os
 import threading
 import time
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Callable, Iterator
 
 import grpc
@@ -34,6 +35,7 @@ COORDINATOR_PORT = 7400
 NODE_PORT = 7500
 DATA_DIR = "/var/lib/shardsieve/data"
 STATE_DIR = "/var/lib/shardsieve/state"
+TLS_DIR = "/etc/shardsieve/tls"
 
 # Timing knobs of the daemons under test: short so faults show (and heal) within seconds.
 STALE_AFTER_S = 1.0
@@ -103,10 +105,10 @@ def recovery_report(pytestconfig) -> _RecoveryReport:  # noqa: ANN001
 
 @pytest.fixture
 def report_time(recovery_report: _RecoveryReport, request, capsys) -> Callable[[str, float], None]:  # noqa: ANN001
-    """report_time(what, seconds): print now (uncaptured) and again in the closing summary."""
+    """report_time(what, seconds, detail=""): print now (uncaptured) and again in the closing summary."""
 
-    def report(what: str, seconds: float) -> None:
-        line = f"{request.node.name}: {what}: {seconds:.2f} s"
+    def report(what: str, seconds: float, detail: str = "") -> None:
+        line = f"{request.node.name}: {what}: {seconds:.2f} s" + (f" ({detail})" if detail else "")
         recovery_report.lines.append(line)
         request.node.user_properties.append((what, round(seconds, 3)))
         with capsys.disabled():
@@ -128,6 +130,7 @@ class Daemon:
     host_port: int
     container: object = None     # testcontainers DockerContainer
     channel: grpc.Channel | None = field(default=None, repr=False)
+    credentials: grpc.ChannelCredentials | None = field(default=None, repr=False)  # TLS, when enabled
 
     @property
     def address(self) -> str:
@@ -139,7 +142,8 @@ class Daemon:
 
     def grpc_channel(self) -> grpc.Channel:
         if self.channel is None:
-            self.channel = grpc.insecure_channel(self.address)
+            self.channel = (grpc.insecure_channel(self.address) if self.credentials is None
+                            else grpc.secure_channel(self.address, self.credentials))
         return self.channel
 
     def router(self) -> routing_pb2_grpc.RouterStub:
@@ -168,6 +172,8 @@ class ContainerCluster:
         self.client = client
         self.tag = tag
         self.network = Network(docker_network_kw={"labels": {LABEL: tag}}).create()
+        self.tls = None           # shardsieve.cli.health.ProbeTls of the test's client, when TLS is on
+        self.tls_dir: Path | None = None
         self.daemons: dict[str, Daemon] = {}
         self.volumes: set[str] = set()
         # Highest (epoch, sequence) a node acknowledged a write with, per node: a coordinator is in
@@ -189,7 +195,28 @@ class ContainerCluster:
                      .with_bind_ports(internal_port, d.host_port)
                      .with_volume_mapping(d.volume, DATA_DIR if d.kind == "node" else STATE_DIR, "rw")
                      .with_kwargs(labels={LABEL: self.tag}))
+        if self.tls_dir is not None:
+            container = container.with_volume_mapping(str(self.tls_dir), TLS_DIR, "ro")
+            d.credentials = self.tls.credentials()
         d.container = container.start()
+
+    def enable_tls(self, directory: Path, node_ids: list[str], hosts: list[str]) -> None:
+        """Make a development CA and certificates (shardsieve certs) for daemons started from now on:
+        they listen with TLS only (no plaintext), and the test talks to them as the operator."""
+        from shardsieve.cli.certs import make_dev_pki
+        from shardsieve.cli.health import ProbeTls
+
+        files = make_dev_pki(directory, node_ids, hosts=hosts, tokens=False)
+        for path in directory.iterdir():   # the daemons run as uid 10001: test keys may be world-readable
+            path.chmod(0o644)
+        self.tls_dir = directory
+        self.tls = ProbeTls(files.ca, files.operator_cert, files.operator_key)
+
+    def _tls_env(self, prefix: str, cert_name: str) -> dict[str, str]:
+        if self.tls_dir is None:
+            return {f"{prefix}ALLOW_PLAINTEXT": "true"}
+        return {f"{prefix}TLS_CERT": f"{TLS_DIR}/{cert_name}.pem", f"{prefix}TLS_KEY": f"{TLS_DIR}/{cert_name}-key.pem",
+                f"{prefix}TLS_CA": f"{TLS_DIR}/ca.pem"}
 
     def start_coordinator(self, alias: str = "coordinator", wait: bool = True, **extra_env: str) -> Daemon:
         n = next(_names)
@@ -201,8 +228,8 @@ class ContainerCluster:
             "SHARDSIEVE_COORDINATOR_AUTO_REBUILD": "false",   # keep each scenario to the fault it injects
             "SHARDSIEVE_COORDINATOR_READ_DEADLINE_MS": "1500",
             "SHARDSIEVE_COORDINATOR_LOG_FORMAT": "text",
-            # The private test network is the trust boundary here; TLS is covered by the cluster tests.
-            "SHARDSIEVE_COORDINATOR_ALLOW_PLAINTEXT": "true",
+            # Plaintext unless enable_tls() was called: the private test network is the trust boundary.
+            **self._tls_env("SHARDSIEVE_COORDINATOR_", "coordinator"),
             **extra_env,
         }
         d = Daemon(f"ss-{self.tag}-{alias}-{n}", alias, "coordinator", env, f"ss-{self.tag}-{alias}-state",
@@ -226,7 +253,7 @@ class ContainerCluster:
             "SHARDSIEVE_NODE_HEARTBEAT_MS": str(HEARTBEAT_MS),
             "SHARDSIEVE_NODE_RECONNECT_MAX_MS": str(RECONNECT_MAX_MS),
             "SHARDSIEVE_NODE_LOG_FORMAT": "text",
-            "SHARDSIEVE_NODE_ALLOW_PLAINTEXT": "true",
+            **self._tls_env("SHARDSIEVE_NODE_", node_id),
             **extra_env,
         }
         d = Daemon(f"ss-{self.tag}-{node_id}-{n}", node_id, "node", env, f"ss-{self.tag}-{node_id}-data", free_port())
@@ -241,7 +268,7 @@ class ContainerCluster:
         """Wait until the daemon answers gRPC health SERVING through its published port; seconds waited."""
         t0 = time.monotonic()
         deadline = t0 + timeout
-        while health_status(d.address) != 1:
+        while not self.serving(d):
             d.wrapped.reload()
             if d.wrapped.status in ("exited", "dead"):
                 raise AssertionError(f"{d.name} exited before serving:\n{d.logs()}")
@@ -249,6 +276,14 @@ class ContainerCluster:
                 raise AssertionError(f"{d.name} not SERVING after {timeout:.0f}s:\n{d.logs()}")
             time.sleep(0.1)   # polling interval of this deadline-bound wait
         return time.monotonic() - t0
+
+    def serving(self, d: Daemon) -> bool:
+        """The daemon's gRPC health says SERVING (asked over TLS when the cluster uses it)."""
+        if self.tls is None:
+            return health_status(d.address) == 1
+        from shardsieve.cli.health import check
+
+        return check([d.address], 1.0, self.tls)[0]
 
     # -- faults --------------------------------------------------------------------------------------
     def kill(self, d: Daemon) -> None:

@@ -274,3 +274,26 @@ def test_plan_cli_values_never_crash(args: list[str]) -> None:
 def test_regression_nul_bytes_in_paths_are_config_errors(cls: type, flags: dict[str, str]) -> None:
     with pytest.raises(ConfigError, match="cannot read"):
         load_settings(cls, environ={}, overrides=flags)
+
+
+# Crashers found by the atheris harness tests/fuzz/fuzz_decoders.py (target "config"), kept as bytes.
+REGRESSIONS_CONFIG_BYTES = [bytes.fromhex("ed08"), b"id = \"\xff\"\n"]
+
+
+@pytest.mark.parametrize("raw", REGRESSIONS_CONFIG_BYTES)
+def test_regression_non_utf8_config_file_is_a_config_error(raw: bytes, tmp_path: Path) -> None:
+    path = tmp_path / "c.toml"
+    path.write_bytes(b"[coordinator]\n" + raw)
+    with pytest.raises(ConfigError, match="not UTF-8"):
+        load_settings(CoordinatorSettings, config_file=path, section="coordinator", environ={})
+
+
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(raw=st.binary(max_size=60))
+def test_config_file_bytes_load_or_fail_with_a_config_error(raw: bytes, tmp_path: Path) -> None:
+    path = tmp_path / "c.toml"
+    path.write_bytes(b"[node]\nid = \"n1\"\n" + raw)
+    try:
+        load_settings(NodeSettings, config_file=path, section="node", environ={})
+    except ConfigError:
+        pass

@@ -276,3 +276,22 @@ def test_decode_guard_answers_invalid_argument_for_garbage(guarded: tuple[grpc.C
         raw(b"\x0a\xff\xff\xff\xff\xff", timeout=3, metadata=(("authorization", "Bearer the-token"),))
     assert err.value.code() == grpc.StatusCode.INVALID_ARGUMENT      # not INTERNAL
     assert rec.peers == []
+
+
+def test_second_stream_needs_the_same_identity_as_the_connected_one() -> None:
+    import queue
+
+    from coordinator.sync_service import SyncService
+    from shardsieve.sync.coordinator_side import CoordinatorSync, DictReplicaSink
+
+    for mode, first, same, other in (
+            ("open", PeerIdentity("10.0.0.1"), PeerIdentity("10.0.0.1"), PeerIdentity("10.0.0.2")),
+            ("certificate", PeerIdentity("10.0.0.1", ("n1",)), PeerIdentity("10.0.0.9", ("n1",)),
+             PeerIdentity("10.0.0.1", ("n2",)))):
+        svc = SyncService(None, CoordinatorSync(DictReplicaSink()),  # type: ignore[arg-type]
+                          authorizer=NodeAuthorizer(mode))
+        assert svc._refusal("n1", first) is None                   # nobody connected yet
+        svc._outbox["n1"] = queue.Queue()                          # n1's stream is open
+        svc._identity["n1"] = svc.authorizer.identity_key(first)
+        assert svc._refusal("n1", same) is None, mode               # reconnect takeover
+        assert svc._refusal("n1", other) is not None, mode          # refused while n1 is connected
