@@ -63,13 +63,41 @@ _HELLO = sync_pb2.Hello(node_id="n1", geometry=Geometry(bits=1024, hashes=3).to_
                         protocol_version=1)
 
 
+def _structured_message(fdp: atheris.FuzzedDataProvider) -> sync_pb2.NodeMessage:
+    """A NodeMessage whose fields come from the fuzzer (random bytes rarely parse as protobuf)."""
+    from shardsieve.v1 import filter_pb2
+
+    kind = fdp.ConsumeIntInRange(0, 4)
+    if kind == 0:
+        return sync_pb2.NodeMessage.FromString(fdp.ConsumeBytes(fdp.ConsumeIntInRange(0, 64)))
+    if kind == 1:
+        return sync_pb2.NodeMessage(delta=filter_pb2.Delta(
+            epoch=fdp.ConsumeIntInRange(0, 2), sequence=fdp.ConsumeIntInRange(0, 3), checksum=fdp.ConsumeUInt(8),
+            payload=fdp.ConsumeBytes(fdp.ConsumeIntInRange(0, 200)), key_count=fdp.ConsumeUInt(4)))
+    if kind == 2:
+        return sync_pb2.NodeMessage(snapshot_chunk=filter_pb2.SnapshotChunk(
+            snapshot_id=fdp.ConsumeIntInRange(0, 4), epoch=fdp.ConsumeIntInRange(0, 2),
+            sequence=fdp.ConsumeIntInRange(0, 3),
+            geometry=filter_pb2.Geometry(bits=1 << fdp.ConsumeIntInRange(0, 41), hashes=fdp.ConsumeIntInRange(0, 40),
+                                         scheme=fdp.ConsumeIntInRange(0, 2), seed=fdp.ConsumeUInt(4)),
+            encoding=fdp.ConsumeIntInRange(0, 4), purpose=fdp.ConsumeIntInRange(0, 3),
+            chunk_index=fdp.ConsumeIntInRange(0, 3), chunk_count=fdp.ConsumeIntInRange(0, 5000),
+            total_bytes=fdp.ConsumeIntInRange(0, 1 << 20), checksum=fdp.ConsumeUInt(8), key_count=fdp.ConsumeUInt(4),
+            data=fdp.ConsumeBytes(fdp.ConsumeIntInRange(0, 300))))
+    if kind == 3:
+        return sync_pb2.NodeMessage(heartbeat=sync_pb2.Heartbeat(stats=sync_pb2.NodeStats(
+            key_count=fdp.ConsumeUInt(8), rebuild_phase=fdp.ConsumeUnicodeNoSurrogates(8))))
+    return sync_pb2.NodeMessage(hello=sync_pb2.Hello(node_id=fdp.ConsumeUnicodeNoSurrogates(6), protocol_version=1,
+                                                     geometry=filter_pb2.Geometry(bits=1024, hashes=3, scheme=1)))
+
+
 def fuzz_sync(data: bytes) -> None:
     sync = CoordinatorSync(DictReplicaSink())
     sync.open("s", _HELLO, 0.0)
     fdp = atheris.FuzzedDataProvider(data)
     while fdp.remaining_bytes():
         try:
-            msg = sync_pb2.NodeMessage.FromString(fdp.ConsumeBytes(fdp.ConsumeIntInRange(0, 300)))
+            msg = _structured_message(fdp)
         except DecodeError:
             continue
         try:
