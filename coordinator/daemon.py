@@ -8,7 +8,6 @@ SIGTERM / SIGINT: health NOT_SERVING, sync streams end, the server drains, the p
 
 from __future__ import annotations
 
-import json
 import logging
 import signal
 import sys
@@ -28,52 +27,14 @@ from coordinator.router_service import Router, RouterService, add_router_service
 from coordinator.saturation import Decision, RebuildPlan, SaturationMonitor
 from coordinator.settings import CoordinatorSettings
 from coordinator.sync_service import SyncService
-from shardsieve import security
+from shardsieve import logs, security
 from shardsieve.v1 import admin_pb2_grpc, sync_pb2_grpc
 
 log = logging.getLogger("shardsieve.coordinator")
 
 HEALTH_SERVICES = ("", "shardsieve.v1.Router", "shardsieve.v1.Admin", "shardsieve.v1.FilterSync")
-_STD_ATTRS = set(logging.LogRecord("", 0, "", 0, "", (), None).__dict__) | {"message", "asctime"}
-
-
-class JsonFormatter(logging.Formatter):
-    """One JSON object per line: ts, level, logger, coordinator, msg, plus every `extra` field."""
-
-    def __init__(self, coordinator_id: str) -> None:
-        super().__init__()
-        self.coordinator_id = coordinator_id
-
-    def format(self, record: logging.LogRecord) -> str:
-        out: dict[str, Any] = {
-            "ts": time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(record.created)) + f".{int(record.msecs):03d}Z",
-            "level": record.levelname.lower(), "logger": record.name, "coordinator": self.coordinator_id,
-            "msg": record.getMessage(),
-        }
-        for key, value in record.__dict__.items():
-            if key not in _STD_ATTRS and not key.startswith("_"):
-                out[key] = value if isinstance(value, (int, float, str, bool, type(None))) else str(value)
-        if record.exc_info:
-            out["exc"] = self.formatException(record.exc_info)
-        return json.dumps(out, separators=(",", ":"))
-
-
-class TextFormatter(logging.Formatter):
-    def format(self, record: logging.LogRecord) -> str:
-        extras = " ".join(f"{k}={v}" for k, v in record.__dict__.items() if k not in _STD_ATTRS and not k.startswith("_"))
-        base = f"{time.strftime('%H:%M:%S', time.gmtime(record.created))} {record.levelname:<7} {record.getMessage()}"
-        text = f"{base} {extras}".rstrip()
-        if record.exc_info:
-            text += "\n" + self.formatException(record.exc_info)
-        return text
-
-
 def setup_logging(settings: CoordinatorSettings) -> None:
-    handler = logging.StreamHandler(sys.stderr)
-    handler.setFormatter(JsonFormatter(settings.id) if settings.log_format == "json" else TextFormatter())
-    root = logging.getLogger()
-    root.handlers[:] = [handler]
-    root.setLevel(settings.log_level.upper())
+    logs.setup_logging("coordinator", settings.id, settings.log_format, settings.log_level)
 
 
 class CoordinatorDaemon:

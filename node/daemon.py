@@ -10,12 +10,10 @@ sent only after the store commit returned.
 
 from __future__ import annotations
 
-import json
 import logging
 import signal
 import sys
 import threading
-import time
 from concurrent import futures
 from typing import Any
 
@@ -27,53 +25,14 @@ from node.service import NodeStorageService
 from node.settings import NodeSettings
 from node.store import StoreError, open_store
 from node.sync_driver import SyncDriver
-from shardsieve import security
+from shardsieve import logs, security
 from shardsieve.v1 import storage_pb2_grpc
 
 log = logging.getLogger("shardsieve.node")
 
 HEALTH_SERVICES = ("", "shardsieve.v1.NodeStorage")
-_STD_ATTRS = set(logging.LogRecord("", 0, "", 0, "", (), None).__dict__) | {"message", "asctime"}
-
-
-class JsonFormatter(logging.Formatter):
-    """One JSON object per line: ts, level, logger, msg, plus every `extra` field."""
-
-    def __init__(self, node_id: str) -> None:
-        super().__init__()
-        self.node_id = node_id
-
-    def format(self, record: logging.LogRecord) -> str:
-        out: dict[str, Any] = {
-            "ts": time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(record.created)) + f".{int(record.msecs):03d}Z",
-            "level": record.levelname.lower(), "logger": record.name, "node": self.node_id,
-            "msg": record.getMessage(),
-        }
-        for key, value in record.__dict__.items():
-            if key not in _STD_ATTRS and not key.startswith("_"):
-                out[key] = value if isinstance(value, (int, float, str, bool, type(None))) else str(value)
-        if record.exc_info:
-            out["exc"] = self.formatException(record.exc_info)
-        return json.dumps(out, separators=(",", ":"))
-
-
-class TextFormatter(logging.Formatter):
-    def format(self, record: logging.LogRecord) -> str:
-        extras = " ".join(f"{k}={v}" for k, v in record.__dict__.items()
-                          if k not in _STD_ATTRS and not k.startswith("_"))
-        base = f"{time.strftime('%H:%M:%S', time.gmtime(record.created))} {record.levelname:<7} {record.getMessage()}"
-        text = f"{base} {extras}".rstrip()
-        if record.exc_info:
-            text += "\n" + self.formatException(record.exc_info)
-        return text
-
-
 def setup_logging(settings: NodeSettings) -> None:
-    handler = logging.StreamHandler(sys.stderr)
-    handler.setFormatter(JsonFormatter(settings.id) if settings.log_format == "json" else TextFormatter())
-    root = logging.getLogger()
-    root.handlers[:] = [handler]
-    root.setLevel(settings.log_level.upper())
+    logs.setup_logging("node", settings.id, settings.log_format, settings.log_level)
 
 
 class NodeDaemon:

@@ -9,7 +9,6 @@ documented defaults (1 KiB keys, 1 MiB values) or the ones passed on the command
 
 from __future__ import annotations
 
-from pathlib import Path
 
 import grpc
 import pytest
