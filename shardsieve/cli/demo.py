@@ -102,7 +102,7 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
             with make_progress(not as_json) as progress:
                 phases = RichPhases(progress)
                 view = wait_fleet_ready(client, 30.0, min_nodes=nodes)
-                channels = NodeChannels(view, client.metadata)
+                channels = NodeChannels(view, client.metadata, client.settings.credentials())
                 try:
                     phases.start(f"seeding {len(placed):,} records on the sheds' nodes", len(placed))
                     seed_nodes(channels, [r.key for r in placed], owners, values=[r.value for r in placed],

@@ -60,10 +60,13 @@ def wait_fleet_ready(client: CoordinatorClient, timeout_s: float, min_nodes: int
 class NodeChannels:
     """One channel + NodeStorage stub per node address (direct access for seeding)."""
 
-    def __init__(self, view: dict[str, NodeInfo], metadata: tuple[tuple[str, str], ...] = ()) -> None:
+    def __init__(self, view: dict[str, NodeInfo], metadata: tuple[tuple[str, str], ...] = (),
+                 credentials: grpc.ChannelCredentials | None = None) -> None:
+        """`credentials`: the operator's TLS credentials for a TLS fleet (None: plaintext)."""
+        from shardsieve.security import make_channel
         from shardsieve.v1 import storage_pb2_grpc
         self.metadata = metadata
-        self._channels = {nid: grpc.insecure_channel(info.address) for nid, info in view.items()}
+        self._channels = {nid: make_channel(info.address, credentials) for nid, info in view.items()}
         self.stubs = {nid: storage_pb2_grpc.NodeStorageStub(ch) for nid, ch in self._channels.items()}
         self.addresses = {nid: info.address for nid, info in view.items()}
 
@@ -290,7 +293,7 @@ def run_loadtest(client: CoordinatorClient, opts: LoadtestOptions, phases: Phase
     rng = np.random.default_rng(opts.seed)
     run_id = new_run_id() if opts.seed is None else f"s{opts.seed}"
     view = wait_fleet_ready(client, opts.ready_timeout_s)
-    channels = NodeChannels(view, client.metadata)
+    channels = NodeChannels(view, client.metadata, client.settings.credentials())
     try:
         if opts.reuse:
             phases.start("collecting existing keys", None)

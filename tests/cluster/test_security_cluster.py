@@ -211,6 +211,15 @@ def test_cluster_runs_entirely_over_mutual_tls(tmp_path: Path) -> None:
         bare = CliRunner().invoke(cli, ["status", "--coordinator", coord, "--timeout", "2"], env={"HOME": str(tmp_path)})
         assert bare.exit_code == 3, bare.output                # EXIT_UNREACHABLE (docs/cli.md)
 
+        # the load tester seeds the nodes directly: over mutual TLS too, with zero false negatives
+        import json as _json
+        lt = CliRunner().invoke(cli, ["loadtest", "--coordinator", coord, "--keys", "200", "--count", "300",
+                                      "--concurrency", "2", "--seed", "3", "--json", *tls_flags],
+                                env={"HOME": str(tmp_path)})
+        assert lt.exit_code == 0, lt.output
+        report = _json.loads(lt.output[lt.output.index("{"):])
+        assert report["lookups"] == 300 and report["false_negatives"] == 0
+
 
 # --------------------------------------------------------------------------- token mode
 
