@@ -1,4 +1,5 @@
-"""Admin servicer: fleet status, node detail, rebuilds (with dry-run plans), policy, decisions.
+"""Admin servicer: fleet status, node detail, rebuilds (with dry-run plans), policy, decisions,
+decommissioning (ForgetNode).
 
 When a token is configured every call must carry "authorization: Bearer <token>" metadata;
 the comparison is constant-time (hmac.compare_digest) and the token is never logged.
@@ -9,7 +10,7 @@ from __future__ import annotations
 import hmac
 import logging
 import time
-from typing import Callable
+from typing import Any, Callable
 
 import grpc
 
@@ -83,8 +84,12 @@ def policy_proto(p: Policy) -> admin_pb2.Policy:
 class AdminService(admin_pb2_grpc.AdminServicer):
     def __init__(self, fleet: Fleet, coordinator_id: str, token: str,
                  start_rebuild: Callable[[RebuildPlan, float], None], clock: Callable[[], float] = time.monotonic,
-                 wall: Callable[[], float] = time.time) -> None:
+                 wall: Callable[[], float] = time.time,
+                 forget_node: Callable[[str, bool], dict[str, Any]] | None = None) -> None:
+        """forget_node(node_id, force): the daemon passes SyncService.forget (KeyError: unknown,
+        coordinator.sync_service.NodeConnected: refused); without it the fleet alone is used."""
         self.fleet = fleet
+        self.forget_node = forget_node or self._forget_in_fleet
         self.coordinator_id = coordinator_id
         self._check = TokenCheck(token)
         self.start_rebuild = start_rebuild
@@ -174,3 +179,41 @@ class AdminService(admin_pb2_grpc.AdminServicer):
         if request.limit:
             items = items[-request.limit:]
         return admin_pb2.DecisionsReply(decisions=[_decision_proto(d) for d in items])
+
+    def _forget_in_fleet(self, node_id: str, force: bool) -> dict[str, Any]:
+        """ForgetNode without a sync service (in-process use): the fleet's record decides."""
+        from coordinator.sync_service import NodeConnected
+
+        rec = next((r for r in self.fleet.records() if r.node_id == node_id), None)
+        if rec is None:
+            raise KeyError(node_id)
+        if rec.connected and not force:
+            raise NodeConnected(node_id)
+        result = self.fleet.forget(node_id)
+        assert result is not None
+        return result
+
+    def ForgetNode(self, request: admin_pb2.ForgetNodeRequest, context: grpc.ServicerContext) -> admin_pb2.ForgetNodeReply:
+        self._guard(context)
+        from coordinator.sync_service import NodeConnected
+
+        node_id = request.node_id
+        if not node_id:
+            context.abort(grpc.StatusCode.INVALID_ARGUMENT, "name the node id to forget")
+        try:
+            result = self.forget_node(node_id, request.force)
+        except KeyError:
+            known = ", ".join(sorted(r.node_id for r in self.fleet.records())) or "none"
+            context.abort(grpc.StatusCode.NOT_FOUND, f"no node {node_id!r} is known (known: {known}); nothing changed")
+        except NodeConnected:
+            context.abort(grpc.StatusCode.FAILED_PRECONDITION,
+                          f"node {node_id!r} is connected (its sync stream is open), so it is not gone; nothing "
+                          "changed. Stop it first, or set force to forget it anyway (it comes back as a new node "
+                          "if it reconnects)")
+        self.fleet.record_decisions([Decision(self.wall(), node_id, "forget",
+                                              f"forgotten by an operator{' (forced while connected)' if result['was_connected'] else ''}; "
+                                              f"{result['key_count']} keys last reported, {result['hints_dropped']} "
+                                              "hints dropped")])
+        return admin_pb2.ForgetNodeReply(node_id=node_id, was_connected=result["was_connected"],
+                                         had_replica=result["had_replica"], hints_dropped=result["hints_dropped"],
+                                         key_count=result["key_count"], address=result["address"])

@@ -45,7 +45,7 @@ class CoordinatorDaemon:
         self.fleet = Fleet(settings.policy(), state_dir=settings.state_dir, expected=settings.expected_nodes(),
                            monitor=SaturationMonitor(rebuild_timeout_s=settings.rebuild_timeout_s,
                                                       shrink_grace_s=settings.shrink_grace_s),
-                           max_hints=settings.max_hints)
+                           max_hints=settings.max_hints, hint_max_age_s=settings.hint_max_age_s)
         self.metrics = Metrics(self.fleet)
         tls = settings.tls_files()
         self.prober = Prober(settings.probe_threads, credentials=tls.channel_credentials(),
@@ -60,7 +60,8 @@ class CoordinatorDaemon:
                                 authorizer=security.NodeAuthorizer(self.node_auth, node_tokens),
                                 limiter=security.StreamLimiter(settings.max_streams_per_peer),
                                 limits=settings.sync_limits())
-        self.admin = AdminService(self.fleet, settings.id, settings.admin_token(), self.start_rebuild)
+        self.admin = AdminService(self.fleet, settings.id, settings.admin_token(), self.start_rebuild,
+                                  forget_node=self.sync.forget)
         write_token, read_token = settings.secret("write_token"), settings.secret("read_token")
         guard = security.TokenGuard({
             "/shardsieve.v1.Admin/": settings.admin_token(),
@@ -115,6 +116,7 @@ class CoordinatorDaemon:
         while not self._stop.wait(interval):
             try:
                 self.sync.refresh()
+                self.fleet.expire_hints(time.monotonic())
                 views = self.fleet.views(time.monotonic())
                 result = self.fleet.monitor.tick(time.time(), views, self.fleet.policy)
                 self.fleet.record_decisions(result.decisions)

@@ -25,7 +25,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from coordinator.accounting import Accounting, ProbeOutcome
-from coordinator.hints import HintTable
+from coordinator.hints import Hint, HintTable
 from coordinator.policy import Policy
 from coordinator.routing_index import RoutingIndex
 from coordinator.saturation import Decision, NodeView, SaturationMonitor
@@ -111,11 +111,13 @@ class Fleet:
 
     def __init__(self, policy: Policy, *, state_dir: Path | None = None,
                  expected: dict[str, str] | None = None, monitor: SaturationMonitor | None = None,
-                 max_hints: int = 1_000_000, max_decisions: int = 1000) -> None:
+                 max_hints: int = 1_000_000, max_decisions: int = 1000, hint_max_age_s: float = 300.0) -> None:
         self._lock = threading.RLock()
         self.policy = policy
         self.index = RoutingIndex()
         self.hints = HintTable(max_hints)
+        self.hint_max_age_s = hint_max_age_s
+        self.hints_expired = 0               # hints dropped by age while their write was not applied
         self.accounting = Accounting()
         self.monitor = monitor or SaturationMonitor()
         self.decisions: collections.deque[Decision] = collections.deque(maxlen=max_decisions)
@@ -358,6 +360,65 @@ class Fleet:
         with self._lock:
             rec = self.nodes.get(node_id)
             return (rec.epoch, rec.sequence) if rec is not None and rec.synced else None
+
+    # -- read-your-writes hints ----------------------------------------------------------------------
+    def add_hint(self, key: bytes, node_id: str, epoch: int, sequence: int, now: float,
+                 old: tuple[int, int] | None = None) -> bool:
+        """Hold a hint for a write node_id acknowledged at (epoch, sequence) (and `old` during a
+        hand-over) unless its replica already holds it; a node forgotten meanwhile gets none."""
+        with self._lock:
+            if node_id not in self.nodes:
+                return False
+            return self.hints.add(key, node_id, epoch, sequence, applied=self.applied(node_id), old=old, now=now)
+
+    def expire_hints(self, now: float) -> list[Hint]:
+        """Drop hints older than hint-max-age-s (last resort: their change never arrived, e.g.
+        the node's sync stalls). Each one whose write the replica still lacks is logged with its
+        numbers; in safe mode that node is listed anyway while it is stale. Returns them."""
+        expired = self.hints.expire(now, self.hint_max_age_s)
+        lacking = []
+        for hint in expired:
+            replica = self.applied(hint.node_id)
+            if replica is not None and hint.covered_by(replica):
+                continue   # applied; the drop just had not happened yet
+            lacking.append(hint)
+            with self._lock:
+                rec = self.nodes.get(hint.node_id)
+                stale = rec is None or self.is_stale(rec, now)
+                mode = self.policy.mode
+            log.warning("read-your-writes hint expired before the replica held the write", extra={
+                "node_id": hint.node_id, "key": hint.key[:64].hex(), "key_bytes": len(hint.key),
+                "hint_epoch": hint.position[0], "hint_sequence": hint.position[1],
+                "old_epoch": hint.old[0] if hint.old else None, "old_sequence": hint.old[1] if hint.old else None,
+                "replica_epoch": replica[0] if replica else None,
+                "replica_sequence": replica[1] if replica else None,
+                "age_s": round(now - (hint.added_at or now), 3), "max_age_s": self.hint_max_age_s,
+                "node_stale": stale, "mode": mode,
+                "still_listed": stale and mode == "safe"})
+        self.hints_expired += len(lacking)
+        return lacking
+
+    # -- decommission -------------------------------------------------------------------------------
+    def forget(self, node_id: str) -> dict[str, Any] | None:
+        """Stop tracking node_id for good: record, replica column, hints, accounting, monitor
+        state, and the state dir's membership entry. Returns what it had (None: unknown).
+        The caller removes it from the sync protocol object first (SyncService.forget)."""
+        with self._lock:
+            rec = self.nodes.pop(node_id, None)
+            if rec is None:
+                return None
+            had_replica = self.index.remove(node_id)
+            hints = self.hints.drop_node(node_id)
+            self.accounting.forget(node_id)
+            self.monitor.forget(node_id)
+            for k in [k for k in self._wire_cache if k[0] == node_id]:
+                del self._wire_cache[k]
+            self._save_membership()
+        log.info("node forgotten", extra={"node_id": node_id, "address": rec.address, "was_connected": rec.connected,
+                                          "had_replica": had_replica, "hints_dropped": hints,
+                                          "key_count": rec.key_count})
+        return {"node_id": node_id, "address": rec.address, "was_connected": rec.connected,
+                "had_replica": bool(had_replica), "hints_dropped": hints, "key_count": rec.key_count}
 
     def placement(self, now: float, exclude: set[str] = frozenset()) -> str | None:  # type: ignore[assignment]
         """The connected, fresh node with the most free capacity (capacity - keys)."""

@@ -170,7 +170,10 @@ class Router:
         if not result.reached:
             raise self._node_error("write", target, result)
         ack = result.reply
-        self.fleet.hints.add(key, target, ack.epoch, ack.sequence, applied=self.fleet.applied(target))
+        old = (ack.old_position.epoch, ack.old_position.sequence) if ack.HasField("old_position") else None
+        now = self.clock()
+        self.fleet.expire_hints(now)
+        self.fleet.add_hint(key, target, ack.epoch, ack.sequence, now, old=old)
         return routing_pb2.WriteReply(node_id=target, created=ack.created, epoch=ack.epoch, sequence=ack.sequence)
 
     def remove(self, key: bytes) -> routing_pb2.RemoveReply:

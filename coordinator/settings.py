@@ -74,6 +74,9 @@ class CoordinatorSettings:
     probe_threads: int = setting(32, "Threads probing nodes concurrently.")
     grpc_workers: int = setting(32, "Threads serving gRPC requests.")
     max_hints: int = setting(1_000_000, "Most read-your-writes hints held before writes are refused.")
+    hint_max_age_s: float = setting(300.0, "Last resort: drop a read-your-writes hint this long after the write "
+                                    "even if the node's change never arrived (logged with its numbers; safe mode "
+                                    "still lists the node while it is stale) (s).")
     log_level: str = setting("info", "Log level: debug, info, warning, error.")
     log_format: str = setting("json", "Log format: 'json' (one object per line) or 'text'.")
 
@@ -92,7 +95,7 @@ class CoordinatorSettings:
             raise ConfigError(f"setting 'mode': must be one of {', '.join(MODES)}, got {self.mode!r}")
         if not (self.shrink_grace_s >= 0 and math.isfinite(self.shrink_grace_s)):
             raise ConfigError(f"setting 'shrink-grace-s': must be 0 or more, got {self.shrink_grace_s}")
-        for name in ("monitor_interval_s", "rebuild_timeout_s"):
+        for name in ("monitor_interval_s", "rebuild_timeout_s", "hint_max_age_s"):
             value = getattr(self, name)
             if not (value > 0 and math.isfinite(value)):
                 raise ConfigError(f"setting '{name.replace('_', '-')}': must be above 0, got {value}")

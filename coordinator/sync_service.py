@@ -35,6 +35,10 @@ class _Failure:
         self.message = message
 
 
+class NodeConnected(Exception):
+    """ForgetNode without force for a node whose sync stream is open."""
+
+
 class SyncService(sync_pb2_grpc.FilterSyncServicer):
     def __init__(self, fleet: Fleet, sync: CoordinatorSync | None = None, *,
                  clock: Callable[[], float] = time.monotonic, metrics: Any = None,
@@ -55,6 +59,17 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
         self._outbox: dict[str, queue.Queue[Any]] = {}
         self._stopping = threading.Event()
         self._snapshots_seen: dict[str, int] = {}
+        # Views are taken under self.lock but handed to the fleet after it is released; a node
+        # forgotten in between must not come back from such a view. Each forget bumps the
+        # node's generation, and a view is observed only if the generation it was taken in is
+        # still current (checked and applied under _observe_lock, which forget also holds).
+        self._forgets: dict[str, int] = {}
+        self._observe_lock = threading.Lock()
+
+    def _observe(self, view: Any, generation: int) -> None:
+        with self._observe_lock:
+            if self._forgets.get(view.node_id, 0) == generation:
+                self.fleet.observe(view)
 
     # -- called by the daemon ---------------------------------------------------------------------
     def send_rebuild(self, node_id: str, capacity: int, target_fpr: float, reason: str) -> None:
@@ -65,18 +80,49 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
                 raise KeyError(f"node {node_id!r} has no open sync stream")
             msg = self.sync.request_rebuild(node_id, capacity, target_fpr, reason, self.clock())
             view = self.sync.node(node_id)
+            generation = self._forgets.get(node_id, 0)
         outbox.put(msg)
         if view is not None:
-            self.fleet.observe(view)
+            self._observe(view, generation)
         if self.metrics is not None:
             self.metrics.rebuilds.labels("shrink" if reason.startswith("shrink") else "rebuild").inc()
 
     def refresh(self) -> None:
         """Re-read every node's view (the clock moved; e.g. before a status reply)."""
         with self.lock:
-            views = self.sync.nodes()
-        for v in views:
-            self.fleet.observe(v)
+            views = [(v, self._forgets.get(v.node_id, 0)) for v in self.sync.nodes()]
+        for v, generation in views:
+            self._observe(v, generation)
+
+    def forget(self, node_id: str, force: bool = False) -> dict[str, Any]:
+        """Decommission node_id: drop it from the protocol object and the fleet. Raises KeyError
+        for a node this coordinator does not know, NodeConnected when its stream is open and
+        force is not set (nothing changes then). With force an open stream is ended; a node
+        that is still running reconnects as a new node."""
+        with self.lock:
+            known = node_id in self.sync.node_ids() or any(r.node_id == node_id for r in self.fleet.records())
+            if not known:
+                raise KeyError(node_id)
+            connected = self.sync.is_connected(node_id)
+            if connected and not force:
+                raise NodeConnected(node_id)
+            had_replica = self.sync.position(node_id) is not None or node_id in self.fleet.indexed_nodes()
+            self.sync.forget(node_id)     # (its replica leaves the index through the sink)
+            outbox = self._outbox.pop(node_id, None)
+            self._identity.pop(node_id, None)
+            self._snapshots_seen.pop(node_id, None)
+            with self._observe_lock:
+                self._forgets[node_id] = self._forgets.get(node_id, 0) + 1
+                result = self.fleet.forget(node_id) or {
+                    "node_id": node_id, "address": "", "was_connected": connected, "had_replica": False,
+                    "hints_dropped": 0, "key_count": 0}
+        result["was_connected"] = connected
+        result["had_replica"] = had_replica
+        if outbox is not None:
+            outbox.put(_Failure(grpc.StatusCode.ABORTED,
+                                f"this coordinator forgot node {node_id!r} (operator decommission); "
+                                "reconnecting registers it as a new node"))
+        return result
 
     def stop(self) -> None:
         self._stopping.set()
@@ -144,10 +190,11 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
                         else:
                             out = self.sync.receive(node_id, stream_id, msg, now)
                         view = self.sync.node(node_id)
+                        generation = self._forgets.get(node_id, 0)
                     if self.metrics is not None and msg.WhichOneof("body") == "delta":
                         self.metrics.delta_bytes.inc(len(msg.delta.payload))
                     if view is not None:
-                        self.fleet.observe(view)
+                        self._observe(view, generation)
                         if self.metrics is not None:
                             installed = view.counters.snapshots_installed
                             if installed > self._snapshots_seen.get(node_id, 0):
@@ -189,6 +236,7 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
                         del self._outbox[node_id]
                         self._identity.pop(node_id, None)
                     view = self.sync.node(node_id)
+                    generation = self._forgets.get(node_id, 0)
                 if view is not None:
-                    self.fleet.observe(view)
+                    self._observe(view, generation)
                 log.info("sync stream closed", extra={"node_id": node_id, "stream": stream_id})

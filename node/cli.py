@@ -17,7 +17,8 @@ _EPILOG = ("Every setting can also come from the [node] table of the --config TO
            "Durability: with sync-level 'full' (default) a write is acknowledged only after SQLite "
            "fsynced its write-ahead log, so it survives a process kill and a power loss or OS crash; "
            "'normal' survives a process kill but may lose the last acknowledged writes on power loss. "
-           "List settings (coordinator) take a comma-separated list in the environment.")
+           "The list setting coordinator takes a comma-separated list in the environment. Prefer the "
+           "*-file settings for tokens: flags show in `ps`.")
 
 
 def _help(name: str) -> str:
@@ -31,6 +32,10 @@ def _help(name: str) -> str:
                 shown = ", ".join(default) or "none"
             elif name.endswith("token"):
                 shown = "(hidden)"
+            elif isinstance(default, bool):
+                shown = str(default).lower()          # as typed on the command line: true|false
+            elif default is None:
+                shown = "none"
             elif isinstance(default, str):
                 shown = repr(default) if default else "empty"
             else:

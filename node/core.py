@@ -63,6 +63,8 @@ class WriteResult:
     created: bool      # put: the key was new; delete: the key existed
     epoch: int
     sequence: int      # the delta sequence that carries (or would carry) this change
+    # during a rebuild hand-over: (old epoch, sequence) that carries the change there too
+    old_position: tuple[int, int] | None = None
 
 
 @dataclass
@@ -82,6 +84,7 @@ class _PendingWrite:
     error: BaseException | None = None
     epoch: int = 0
     sequence: int = 0
+    old: tuple[int, int] | None = None
 
 
 @dataclass
@@ -257,8 +260,8 @@ class NodeCore:
                                    f"({self.limits.max_value_bytes})")
         if not items:
             return []
-        created, epoch, sequence = self._write("put", items)
-        return [WriteResult(c, epoch, sequence) for c in created]
+        created, epoch, sequence, old = self._write("put", items)
+        return [WriteResult(c, epoch, sequence, old) for c in created]
 
     def delete_many(self, keys: Sequence[bytes]) -> list[WriteResult]:
         """Validate, delete in one transaction, uncount only keys that existed."""
@@ -267,10 +270,10 @@ class NodeCore:
         self._check_keys(keys)
         if not keys:
             return []
-        existed, epoch, sequence = self._write("delete", keys)
-        return [WriteResult(e, epoch, sequence) for e in existed]
+        existed, epoch, sequence, old = self._write("delete", keys)
+        return [WriteResult(e, epoch, sequence, old) for e in existed]
 
-    def _write(self, kind: str, payload: list) -> tuple[list[bool], int, int]:
+    def _write(self, kind: str, payload: list) -> tuple[list[bool], int, int, tuple[int, int] | None]:
         """Group commit: queue the op; whoever holds the write lock next commits every queued op
         in one transaction (one fsync), updates the filters in queue order and stamps them all.
         Concurrent writers thus share a sync instead of paying one each; a lone writer commits
@@ -296,8 +299,9 @@ class NodeCore:
                             self._apply(changed, add=o.kind == "put")
                         o.result = flags
                     epoch, sequence = self._stamp()
+                    old = self._old_stamp()
                     for o in ops:
-                        o.epoch, o.sequence, o.done = epoch, sequence, True
+                        o.epoch, o.sequence, o.old, o.done = epoch, sequence, old, True
                     with self._counter_lock:
                         self.counters.writes += writes
                         self.counters.deletes += deletes
@@ -309,7 +313,7 @@ class NodeCore:
                             o.error, o.done = exc, True
         if op.error is not None:
             raise op.error
-        return op.result, op.epoch, op.sequence
+        return op.result, op.epoch, op.sequence, op.old
 
     def _stamp(self) -> tuple[int, int]:
         """(epoch, sequence) a coordinator must have applied to hold the current filter state:
@@ -322,6 +326,17 @@ class NodeCore:
         if sync.filter.checksum == sync.checksum:
             return sync.epoch, sync.sequence
         return sync.pending_sequence
+
+    def _old_stamp(self) -> tuple[int, int] | None:
+        """During a rebuild hand-over the write is in the old filter too: the old epoch's
+        position that holds it (same rule as _stamp). A coordinator still on the old epoch holds
+        the write once its replica reaches it, even if the rebuild is then abandoned."""
+        cut = self._sync().old_cut
+        old_filter = self._sync().old_filter
+        if cut is None or old_filter is None:
+            return None
+        epoch, sequence, checksum = cut
+        return (epoch, sequence) if old_filter.checksum == checksum else (epoch, sequence + 1)
 
     def _apply(self, keys: list[bytes], add: bool) -> None:
         """Filter side of a committed write (caller holds the lock): every live filter, and a

@@ -24,7 +24,10 @@ SCAN_MAX = 10_000
 
 
 def _ack(result: WriteResult) -> storage_pb2.WriteAck:
-    return storage_pb2.WriteAck(created=result.created, epoch=result.epoch, sequence=result.sequence)
+    ack = storage_pb2.WriteAck(created=result.created, epoch=result.epoch, sequence=result.sequence)
+    if result.old_position is not None:
+        ack.old_position.epoch, ack.old_position.sequence = result.old_position
+    return ack
 
 
 class NodeStorageService(storage_pb2_grpc.NodeStorageServicer):

@@ -158,12 +158,13 @@ def measure(puts: int = 2000, clients: int = 8, sync_level: str = "full", push_i
 
 
 @click.command("node")
-@click.option("--puts", default=2000, show_default=True, help="Puts per mode (direct and gRPC), over two rounds.")
-@click.option("--clients", default=8, show_default=True, help="Concurrent writers in both modes.")
+@click.option("--puts", type=click.IntRange(min=1), default=2000, show_default=True, help="Puts per mode (direct and gRPC), over two rounds.")
+@click.option("--clients", type=click.IntRange(min=1), default=8, show_default=True, help="Concurrent writers in both modes.")
 @click.option("--sync-level", type=click.Choice(["full", "normal"]), default="full", show_default=True,
               help="Store durability of the benchmarked node (the node's default is full).")
-@click.option("--push-interval-ms", default=50, show_default=True, help="The node's push interval.")
-@click.option("--latency-samples", default=400, show_default=True, help="Puts timed for ack-to-push latency.")
+@click.option("--push-interval-ms", type=click.IntRange(min=1), default=50, show_default=True,
+              help="The node's push interval (ms).")
+@click.option("--latency-samples", type=click.IntRange(min=1), default=400, show_default=True, help="Puts timed for ack-to-push latency.")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of a table.")
 def bench_node(puts: int, clients: int, sync_level: str, push_interval_ms: int, latency_samples: int,
                as_json: bool) -> None:

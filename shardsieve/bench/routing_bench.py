@@ -253,9 +253,10 @@ TARGETS = {
 
 @click.command("routing")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the text report.")
-@click.option("--keys", "n_keys", default=100_000, show_default=True, help="Keys per in-process batch.")
-@click.option("--writes", default=200, show_default=True, help="Direct writes timed for write-to-routable.")
-@click.option("--push-interval-ms", default=50, show_default=True, help="Node push interval for write-to-routable.")
+@click.option("--keys", "n_keys", type=click.IntRange(min=1), default=100_000, show_default=True, help="Keys per in-process batch.")
+@click.option("--writes", type=click.IntRange(min=1), default=200, show_default=True, help="Direct writes timed for write-to-routable.")
+@click.option("--push-interval-ms", type=click.IntRange(min=1), default=50, show_default=True,
+              help="Node push interval for write-to-routable (ms).")
 @click.option("--seed", default=1, show_default=True, help="Random seed of the synthetic filters.")
 def bench_routing(as_json: bool, n_keys: int, writes: int, push_interval_ms: int, seed: int) -> None:
     """Routing index throughput and memory against a per-node membership loop, gRPC LocateBatch and

@@ -152,7 +152,7 @@ def make_dev_pki(out: Path, node_ids: Sequence[str], *, hosts: Sequence[str] = D
 @click.option("--node-id", "node_ids", multiple=True, metavar="ID", help="A node id to make a certificate for; repeatable.")
 @click.option("--host", "hosts", multiple=True, metavar="NAME|IP",
               help="Subject alternative name on every certificate (default: localhost, 127.0.0.1, ::1); repeatable.")
-@click.option("--days", type=int, default=30, show_default=True, help="Validity of every certificate in days.")
+@click.option("--days", type=int, default=30, show_default=True, help="Validity of every certificate in days (1..3650).")
 @click.option("--no-tokens", is_flag=True, help="Do not write the per-node sync tokens and the admin token.")
 @click.option("--force", is_flag=True, help="Replace files already in --out.")
 def certs(out: Path, count: int | None, node_ids: tuple[str, ...], hosts: tuple[str, ...], days: int,

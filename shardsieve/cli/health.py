@@ -118,18 +118,22 @@ _FILE = click.Path(exists=True, dir_okay=False, path_type=Path)
 
 
 @click.command("health")
-@click.argument("addresses", nargs=-1)
+@click.argument("addresses", nargs=-1, metavar="[ADDRESS]...")
 @click.option("--timeout", default=2.0, show_default=True, type=float, help="Seconds to wait for each answer.")
 @click.option("--ca", type=_FILE, default=None, help="PEM CA that signed the daemon's certificate (speaks TLS).")
 @click.option("--cert", type=_FILE, default=None, help="PEM client certificate, for daemons requiring one.")
 @click.option("--key", type=_FILE, default=None, help="PEM private key of --cert.")
-@click.option("--server-name", default=None, help="Host name the daemon's certificate must be for.")
+@click.option("--server-name", default=None, help="Host name the daemon's certificate must be for, when it does not list the address asked "
+                   "(env SHARDSIEVE_HEALTH_SERVER_NAME).")
 def health(addresses: tuple[str, ...], timeout: float, ca: Path | None, cert: Path | None, key: Path | None,
            server_name: str | None) -> None:
-    """Exit 0 when a daemon at ADDRESS (HOST:PORT) reports gRPC health SERVING, else 1.
+    """Ask daemons' gRPC health service: exit 0 when any ADDRESS (HOST:PORT) answers SERVING, else 1.
 
+    Prints one line: each address asked and its answer (SERVING, NOT_SERVING, unreachable).
     Without ADDRESS: $SHARDSIEVE_HEALTH_ADDRESS, else the daemon's listen setting from
     $SHARDSIEVE_NODE_LISTEN / $SHARDSIEVE_COORDINATOR_LISTEN, else 127.0.0.1:7400 and :7500.
+    Without --ca/--cert the TLS files come from $SHARDSIEVE_NODE_TLS_* or
+    $SHARDSIEVE_COORDINATOR_TLS_* (plaintext when neither is set).
     """
     if timeout <= 0:
         raise click.BadParameter(f"must be above 0, got {timeout}", param_hint="--timeout")

@@ -20,6 +20,7 @@ COMMANDS = {
     "put": "shardsieve.cli.ops:put",
     "delete": "shardsieve.cli.ops:delete",
     "policy": "shardsieve.cli.ops:policy",
+    "forget": "shardsieve.cli.ops:forget",
     "loadtest": "shardsieve.cli.loadtest:loadtest",
     "demo": "shardsieve.cli.demo:demo",
     "health": "shardsieve.cli.health:health",
@@ -34,7 +35,7 @@ def cli() -> None:
 
     Daemons: `node`, `coordinator`. Planning and measurement: `plan`, `bench`, `loadtest`,
     `demo`. Operating a fleet: `status`, `inspect`, `rebuild`, `locate`, `get`, `put`,
-    `delete`, `policy`.
+    `delete`, `policy`, `forget`. Setup and checks: `certs`, `health`.
     """
 
 

@@ -1,4 +1,4 @@
-"""Operator commands: status, inspect, rebuild, locate, get, put, delete, policy.
+"""Operator commands: status, inspect, rebuild, locate, get, put, delete, policy, forget.
 
 Every command takes --coordinator / --token / --config / --timeout / --json. Output is a rich
 table for people and a JSON document (stdout) for scripts. Any failure prints ONE line on stderr
@@ -95,11 +95,11 @@ def coordinator_options(func: F) -> F:
     """--coordinator/--token/--config/--timeout/--json on a command."""
     func = click.option("--json", "as_json", is_flag=True, help="Print a JSON document for scripts.")(func)
     func = click.option("--timeout", "timeout_s", type=click.FloatRange(min=0, min_open=True), default=None,
-                        help="Deadline per call in seconds (env SHARDSIEVE_TIMEOUT_S; default 10).")(func)
+                        metavar="SECONDS", help="Deadline per call in seconds (env SHARDSIEVE_TIMEOUT_S; default 10).")(func)
     func = click.option("--config", "config_file", type=click.Path(dir_okay=False), default=None,
                         help="TOML file with a [cli] table (env SHARDSIEVE_CONFIG; default "
                              "~/.config/shardsieve/config.toml when present).")(func)
-    func = click.option("--token", default=None,
+    func = click.option("--token", default=None, metavar="TOKEN",
                         help="Bearer token for the coordinator (env SHARDSIEVE_TOKEN).")(func)
     for flag, env, what in (("--tls-key", "SHARDSIEVE_TLS_KEY", "PEM key of --tls-cert"),
                             ("--tls-cert", "SHARDSIEVE_TLS_CERT", "PEM client certificate (mutual TLS)"),
@@ -227,12 +227,17 @@ def state_text(n: Any) -> str:
     parts = [n.state or ("disconnected" if not n.connected else "?")]
     if n.saturated:
         parts.append("SATURATED")
+    if n.implausible_fill:
+        parts.append("IMPLAUSIBLE-FILL")
     if n.stale and "stale" not in parts[0]:
         parts.append("STALE")
     return " ".join(parts)
 
 
 def row_style(n: Any) -> str | None:
+    """Implausible fill first: a rebuild does not cure a filter the node's key count cannot explain."""
+    if n.implausible_fill:
+        return "bold magenta"
     if n.saturated:
         return "bold red"
     if n.stale or not n.connected:
@@ -250,7 +255,8 @@ def status(coordinator: str | None, token: str | None, config_file: str | None, 
            as_json: bool) -> None:
     """Fleet table: every node's keys, fill, predicted and observed FPR, lag and state.
 
-    Saturated nodes are shown in red, stale or disconnected ones in yellow.
+    Nodes whose filter fill is implausible for their key count are shown in magenta, saturated
+    ones in red, stale or disconnected ones in yellow.
     """
     with open_client(coordinator, token, config_file, timeout_s) as client:
         reply = client.fleet_status()
@@ -272,7 +278,7 @@ def status(coordinator: str | None, token: str | None, config_file: str | None, 
     iv = reply.observed_fpr_interval
     out.print(f"lookups {fmt_count(reply.lookups)} · probes {fmt_count(reply.probes)} · wasted "
               f"{fmt_count(reply.wasted_probes)} · avoided fan-out {reply.avoided_fanout:.1%} · observed FPR "
-              f"{fmt_rate(reply.observed_fpr)} (Wilson 99.9%: {fmt_rate(iv.low)}..{fmt_rate(iv.high)}) · "
+              f"{fmt_rate(reply.observed_fpr)} (Wilson 95%: {fmt_rate(iv.low)}..{fmt_rate(iv.high)}) · "
               f"rebuilds in progress {reply.rebuilds_in_progress}")
     flagged = [n.node_id for n in reply.nodes if n.saturated]
     stale = [n.node_id for n in reply.nodes if n.stale or not n.connected]
@@ -281,6 +287,11 @@ def status(coordinator: str | None, token: str | None, config_file: str | None, 
                   f"rebuilds them")
     if stale:
         out.print(f"[yellow]stale or disconnected:[/] {', '.join(sorted(stale))}")
+    implausible = [n.node_id for n in reply.nodes if n.implausible_fill]
+    if implausible:
+        out.print(f"[bold magenta]implausible fill:[/] {', '.join(sorted(implausible))} — more (or fewer) bits "
+                  f"set than the node's key count explains; check the node (`shardsieve inspect NODE`, "
+                  f"docs/security.md)")
 
 
 @click.command(cls=OneLineCommand)
@@ -310,7 +321,7 @@ def inspect_node(node: str, coordinator: str | None, token: str | None, config_f
         ("keys / capacity", f"{fmt_count(n.key_count)} / {fmt_count(n.capacity)}"),
         ("fill", f"{n.fill:.2%}" + ("  (implausible for its key count)" if n.implausible_fill else "")),
         ("predicted FPR", fmt_rate(n.predicted_fpr)),
-        ("observed FPR", (f"{fmt_rate(n.observed_fpr)} (Wilson 99.9%: {fmt_rate(iv.low)}..{fmt_rate(iv.high)}; "
+        ("observed FPR", (f"{fmt_rate(n.observed_fpr)} (Wilson 95%: {fmt_rate(iv.low)}..{fmt_rate(iv.high)}; "
                           f"{fmt_count(n.lookups_checked)} lookups checked)") if n.lookups_checked else "-"),
         ("probes / wasted", f"{fmt_count(n.probes)} / {fmt_count(n.wasted_probes)}"),
         ("misses the node counted", fmt_count(n.reads_missed_reported)),
@@ -383,8 +394,8 @@ def wait_for_rebuilds(client: CoordinatorClient, before: dict[str, int], queued:
             time.sleep(0.2)
 
 
-@click.command(cls=OneLineCommand)
-@click.argument("nodes", nargs=-1)
+@click.command(cls=OneLineCommand, short_help="Replace nodes' filters with freshly sized ones.")
+@click.argument("nodes", nargs=-1, metavar="[NODE]...")
 @click.option("--flagged", is_flag=True, help="Rebuild every node the saturation monitor flagged.")
 @click.option("--capacity", type=click.IntRange(min=1), default=None,
               help="Keys to size the new filter for (default: the policy's growth x current keys).")
@@ -520,7 +531,7 @@ def get(key: str, hex_input: bool, coordinator: str | None, token: str | None, c
 @guarded
 def put(key: str, value: str, node_id: str, hex_input: bool, coordinator: str | None, token: str | None,
         config_file: str | None, timeout_s: float | None, as_json: bool) -> None:
-    """Write KEY=VALUE through the coordinator (routable at once: read-your-writes)."""
+    """Store VALUE under KEY through the coordinator (routable at once: read-your-writes)."""
     k = decode_key(key, hex_input)
     v = decode_key(value, hex_input)
     with open_client(coordinator, token, config_file, timeout_s) as client:
@@ -550,6 +561,49 @@ def delete(key: str, hex_input: bool, coordinator: str | None, token: str | None
         console().print(f"deleted {show_bytes(k)!r} from {', '.join(reply.node_ids)}")
     else:
         console().print(f"{show_bytes(k)!r} was on no node; nothing deleted")
+
+
+# ---------------------------------------------------------------------------------------------
+# forget (decommission)
+# ---------------------------------------------------------------------------------------------
+FORGET_WARNING = ("keys still on that node become unreachable through this coordinator (reads of them answer "
+                  "not found, writes go elsewhere)")
+
+
+@click.command(cls=OneLineCommand, short_help="Tell the coordinator a node is gone for good.")
+@click.argument("node")
+@click.option("--force", is_flag=True, help="Forget it even though its sync stream is connected (a running node "
+                                            "comes back as a new node when it reconnects).")
+@click.option("--yes", is_flag=True, help="Do not ask for confirmation (required when not run at a terminal).")
+@coordinator_options
+@guarded
+def forget(node: str, force: bool, yes: bool, coordinator: str | None, token: str | None, config_file: str | None,
+           timeout_s: float | None, as_json: bool) -> None:
+    """Decommission NODE: the coordinator drops its filter replica, hints, counters and its
+    entry in the state dir, and stops listing it as stale. Keys still on NODE become
+    unreachable through this coordinator.
+
+    A node whose sync stream is connected is refused unless --force is given.
+    """
+    with open_client(coordinator, token, config_file, timeout_s) as client:
+        if not yes:
+            if not sys.stdin.isatty():
+                raise ClientError(f"forgetting {node} needs --yes when not run at a terminal: {FORGET_WARNING}",
+                                  EXIT_USAGE)
+            st = client.node_detail(node).status
+            what = (f"{node} ({st.address or 'no address'}, {'connected' if st.connected else 'disconnected'}, "
+                    f"{fmt_count(st.key_count)} keys last reported)")
+            if not click.confirm(f"Forget node {what}? {FORGET_WARNING[0].upper()}{FORGET_WARNING[1:]}.",
+                                 default=False, err=True):
+                raise CliFailure(f"not confirmed; {node} is still known to the coordinator", EXIT_FAILURE)
+        reply = client.forget_node(node, force=force)
+    if as_json:
+        emit_json(message_to_dict(reply))
+        return
+    forced = " (forced: it was connected)" if reply.was_connected else ""
+    console().print(f"forgot {reply.node_id}{forced}: {fmt_count(reply.key_count)} keys it last reported are no "
+                    f"longer reachable through this coordinator; {reply.hints_dropped} read-your-writes hints "
+                    f"dropped; it is no longer listed as stale")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -617,7 +671,12 @@ def policy_show(coordinator: str | None, token: str | None, config_file: str | N
 @guarded
 def policy_set(assignments: tuple[str, ...], coordinator: str | None, token: str | None, config_file: str | None,
                timeout_s: float | None, as_json: bool) -> None:
-    """Change policy settings; all are validated together and none applies if one is bad."""
+    """Change policy settings; all are validated together and none applies if one is bad.
+
+    NAME: target-fpr, saturation-ratio, growth, shrink-below, max-concurrent-rebuilds,
+    auto-rebuild, stale-after-s, mode (safe|fast), min-capacity ('_' works for '-'),
+    e.g. `shardsieve policy set target-fpr=0.005 mode=fast`.
+    """
     values = parse_assignments(assignments)
     with open_client(coordinator, token, config_file, timeout_s) as client:
         p = client.set_policy(values)

@@ -98,7 +98,7 @@ def _render(p: Plan) -> None:
               help="Nodes in the fleet (K)  [default: 1]")
 @click.option("--json", "as_json", is_flag=True, help="Print the figures as one JSON object.")
 def plan(keys: int, fpr: float, nodes: int, as_json: bool) -> None:
-    """Size a node filter for KEYS keys at FPR and show bytes, probes and avoided fan-out for NODES nodes.
+    """Size a node filter for --keys N at --fpr P; show bytes, probes and avoided fan-out for --nodes K.
 
     Figures come from the sizing formula; the filter actually allocated is the next ladder
     step (a power of two), shown beside it.

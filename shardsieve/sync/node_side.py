@@ -374,6 +374,13 @@ class NodeSync:
         return [(s.epoch, s.sequence) for s in (self._old, self._stream) if s is not None]
 
     @property
+    def old_cut(self) -> tuple[int, int, int] | None:
+        """(epoch, last sequence cut, checksum at that cut) of the previous epoch while a
+        hand-over runs, else None: lets the daemon tell whether a write is already in the old
+        epoch's last cut state or waits for its next one (WriteAck.old_position)."""
+        return (self._old.epoch, self._old.sequence, self._old.checksum) if self._old is not None else None
+
+    @property
     def history_floor(self) -> int:
         """Lowest replica sequence of the current epoch that deltas can still catch up."""
         return self._stream.floor

@@ -213,3 +213,27 @@ class DecisionsReply(_message.Message):
     DECISIONS_FIELD_NUMBER: _ClassVar[int]
     decisions: _containers.RepeatedCompositeFieldContainer[Decision]
     def __init__(self, decisions: _Optional[_Iterable[_Union[Decision, _Mapping]]] = ...) -> None: ...
+
+class ForgetNodeRequest(_message.Message):
+    __slots__ = ("node_id", "force")
+    NODE_ID_FIELD_NUMBER: _ClassVar[int]
+    FORCE_FIELD_NUMBER: _ClassVar[int]
+    node_id: str
+    force: bool
+    def __init__(self, node_id: _Optional[str] = ..., force: _Optional[bool] = ...) -> None: ...
+
+class ForgetNodeReply(_message.Message):
+    __slots__ = ("node_id", "was_connected", "had_replica", "hints_dropped", "key_count", "address")
+    NODE_ID_FIELD_NUMBER: _ClassVar[int]
+    WAS_CONNECTED_FIELD_NUMBER: _ClassVar[int]
+    HAD_REPLICA_FIELD_NUMBER: _ClassVar[int]
+    HINTS_DROPPED_FIELD_NUMBER: _ClassVar[int]
+    KEY_COUNT_FIELD_NUMBER: _ClassVar[int]
+    ADDRESS_FIELD_NUMBER: _ClassVar[int]
+    node_id: str
+    was_connected: bool
+    had_replica: bool
+    hints_dropped: int
+    key_count: int
+    address: str
+    def __init__(self, node_id: _Optional[str] = ..., was_connected: _Optional[bool] = ..., had_replica: _Optional[bool] = ..., hints_dropped: _Optional[int] = ..., key_count: _Optional[int] = ..., address: _Optional[str] = ...) -> None: ...

@@ -64,6 +64,11 @@ class AdminStub:
                 request_serializer=shardsieve_dot_v1_dot_admin__pb2.DecisionsRequest.SerializeToString,
                 response_deserializer=shardsieve_dot_v1_dot_admin__pb2.DecisionsReply.FromString,
                 _registered_method=True)
+        self.ForgetNode = channel.unary_unary(
+                '/shardsieve.v1.Admin/ForgetNode',
+                request_serializer=shardsieve_dot_v1_dot_admin__pb2.ForgetNodeRequest.SerializeToString,
+                response_deserializer=shardsieve_dot_v1_dot_admin__pb2.ForgetNodeReply.FromString,
+                _registered_method=True)
 
 
 class AdminServicer:
@@ -105,6 +110,12 @@ class AdminServicer:
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
+    def ForgetNode(self, request, context):
+        """Missing associated documentation comment in .proto file."""
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
 
 def add_AdminServicer_to_server(servicer, server):
     rpc_method_handlers = {
@@ -137,6 +148,11 @@ def add_AdminServicer_to_server(servicer, server):
                     servicer.Decisions,
                     request_deserializer=shardsieve_dot_v1_dot_admin__pb2.DecisionsRequest.FromString,
                     response_serializer=shardsieve_dot_v1_dot_admin__pb2.DecisionsReply.SerializeToString,
+            ),
+            'ForgetNode': grpc.unary_unary_rpc_method_handler(
+                    servicer.ForgetNode,
+                    request_deserializer=shardsieve_dot_v1_dot_admin__pb2.ForgetNodeRequest.FromString,
+                    response_serializer=shardsieve_dot_v1_dot_admin__pb2.ForgetNodeReply.SerializeToString,
             ),
     }
     generic_handler = grpc.method_handlers_generic_handler(
@@ -301,6 +317,33 @@ class Admin:
             '/shardsieve.v1.Admin/Decisions',
             shardsieve_dot_v1_dot_admin__pb2.DecisionsRequest.SerializeToString,
             shardsieve_dot_v1_dot_admin__pb2.DecisionsReply.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def ForgetNode(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_unary(
+            request,
+            target,
+            '/shardsieve.v1.Admin/ForgetNode',
+            shardsieve_dot_v1_dot_admin__pb2.ForgetNodeRequest.SerializeToString,
+            shardsieve_dot_v1_dot_admin__pb2.ForgetNodeReply.FromString,
             options,
             channel_credentials,
             insecure,

@@ -25,7 +25,7 @@ _sym_db = _symbol_database.Default()
 from shardsieve.v1 import sync_pb2 as shardsieve_dot_v1_dot_sync__pb2
 
 
-DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n\x1bshardsieve/v1/storage.proto\x12\rshardsieve.v1\x1a\x18shardsieve/v1/sync.proto\"(\n\nPutRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\x12\r\n\x05value\x18\x02 \x01(\x0c\"<\n\x08WriteAck\x12\x0f\n\x07\x63reated\x18\x01 \x01(\x08\x12\r\n\x05\x65poch\x18\x02 \x01(\x04\x12\x10\n\x08sequence\x18\x03 \x01(\x04\"\x19\n\nGetRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\"(\n\x08GetReply\x12\r\n\x05\x66ound\x18\x01 \x01(\x08\x12\r\n\x05value\x18\x02 \x01(\x0c\"\x1c\n\rDeleteRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\";\n\x0f\x42\x61tchPutRequest\x12(\n\x05items\x18\x01 \x03(\x0b\x32\x19.shardsieve.v1.PutRequest\"6\n\rBatchWriteAck\x12%\n\x04\x61\x63ks\x18\x01 \x03(\x0b\x32\x17.shardsieve.v1.WriteAck\"\x1f\n\x0f\x42\x61tchGetRequest\x12\x0c\n\x04keys\x18\x01 \x03(\x0c\"7\n\rBatchGetReply\x12&\n\x05items\x18\x01 \x03(\x0b\x32\x17.shardsieve.v1.GetReply\"\"\n\x12\x42\x61tchDeleteRequest\x12\x0c\n\x04keys\x18\x01 \x03(\x0c\"\x12\n\x10NodeStatsRequest\"J\n\x0eNodeStatsReply\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\'\n\x05stats\x18\x02 \x01(\x0b\x32\x18.shardsieve.v1.NodeStats\"/\n\x0fScanKeysRequest\x12\r\n\x05limit\x18\x01 \x01(\r\x12\r\n\x05\x61\x66ter\x18\x02 \x01(\x0c\"+\n\rScanKeysReply\x12\x0c\n\x04keys\x18\x01 \x03(\x0c\x12\x0c\n\x04\x64one\x18\x02 \x01(\x08\x32\xbb\x04\n\x0bNodeStorage\x12\x39\n\x03Put\x12\x19.shardsieve.v1.PutRequest\x1a\x17.shardsieve.v1.WriteAck\x12\x39\n\x03Get\x12\x19.shardsieve.v1.GetRequest\x1a\x17.shardsieve.v1.GetReply\x12?\n\x06\x44\x65lete\x12\x1c.shardsieve.v1.DeleteRequest\x1a\x17.shardsieve.v1.WriteAck\x12H\n\x08\x42\x61tchPut\x12\x1e.shardsieve.v1.BatchPutRequest\x1a\x1c.shardsieve.v1.BatchWriteAck\x12H\n\x08\x42\x61tchGet\x12\x1e.shardsieve.v1.BatchGetRequest\x1a\x1c.shardsieve.v1.BatchGetReply\x12N\n\x0b\x42\x61tchDelete\x12!.shardsieve.v1.BatchDeleteRequest\x1a\x1c.shardsieve.v1.BatchWriteAck\x12G\n\x05Stats\x12\x1f.shardsieve.v1.NodeStatsRequest\x1a\x1d.shardsieve.v1.NodeStatsReply\x12H\n\x08ScanKeys\x12\x1e.shardsieve.v1.ScanKeysRequest\x1a\x1c.shardsieve.v1.ScanKeysReplyb\x06proto3')
+DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n\x1bshardsieve/v1/storage.proto\x12\rshardsieve.v1\x1a\x18shardsieve/v1/sync.proto\"(\n\nPutRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\x12\r\n\x05value\x18\x02 \x01(\x0c\"1\n\x0e\x46ilterPosition\x12\r\n\x05\x65poch\x18\x01 \x01(\x04\x12\x10\n\x08sequence\x18\x02 \x01(\x04\"q\n\x08WriteAck\x12\x0f\n\x07\x63reated\x18\x01 \x01(\x08\x12\r\n\x05\x65poch\x18\x02 \x01(\x04\x12\x10\n\x08sequence\x18\x03 \x01(\x04\x12\x33\n\x0cold_position\x18\x04 \x01(\x0b\x32\x1d.shardsieve.v1.FilterPosition\"\x19\n\nGetRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\"(\n\x08GetReply\x12\r\n\x05\x66ound\x18\x01 \x01(\x08\x12\r\n\x05value\x18\x02 \x01(\x0c\"\x1c\n\rDeleteRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\";\n\x0f\x42\x61tchPutRequest\x12(\n\x05items\x18\x01 \x03(\x0b\x32\x19.shardsieve.v1.PutRequest\"6\n\rBatchWriteAck\x12%\n\x04\x61\x63ks\x18\x01 \x03(\x0b\x32\x17.shardsieve.v1.WriteAck\"\x1f\n\x0f\x42\x61tchGetRequest\x12\x0c\n\x04keys\x18\x01 \x03(\x0c\"7\n\rBatchGetReply\x12&\n\x05items\x18\x01 \x03(\x0b\x32\x17.shardsieve.v1.GetReply\"\"\n\x12\x42\x61tchDeleteRequest\x12\x0c\n\x04keys\x18\x01 \x03(\x0c\"\x12\n\x10NodeStatsRequest\"J\n\x0eNodeStatsReply\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\'\n\x05stats\x18\x02 \x01(\x0b\x32\x18.shardsieve.v1.NodeStats\"/\n\x0fScanKeysRequest\x12\r\n\x05limit\x18\x01 \x01(\r\x12\r\n\x05\x61\x66ter\x18\x02 \x01(\x0c\"+\n\rScanKeysReply\x12\x0c\n\x04keys\x18\x01 \x03(\x0c\x12\x0c\n\x04\x64one\x18\x02 \x01(\x08\x32\xbb\x04\n\x0bNodeStorage\x12\x39\n\x03Put\x12\x19.shardsieve.v1.PutRequest\x1a\x17.shardsieve.v1.WriteAck\x12\x39\n\x03Get\x12\x19.shardsieve.v1.GetRequest\x1a\x17.shardsieve.v1.GetReply\x12?\n\x06\x44\x65lete\x12\x1c.shardsieve.v1.DeleteRequest\x1a\x17.shardsieve.v1.WriteAck\x12H\n\x08\x42\x61tchPut\x12\x1e.shardsieve.v1.BatchPutRequest\x1a\x1c.shardsieve.v1.BatchWriteAck\x12H\n\x08\x42\x61tchGet\x12\x1e.shardsieve.v1.BatchGetRequest\x1a\x1c.shardsieve.v1.BatchGetReply\x12N\n\x0b\x42\x61tchDelete\x12!.shardsieve.v1.BatchDeleteRequest\x1a\x1c.shardsieve.v1.BatchWriteAck\x12G\n\x05Stats\x12\x1f.shardsieve.v1.NodeStatsRequest\x1a\x1d.shardsieve.v1.NodeStatsReply\x12H\n\x08ScanKeys\x12\x1e.shardsieve.v1.ScanKeysRequest\x1a\x1c.shardsieve.v1.ScanKeysReplyb\x06proto3')
 
 _globals = globals()
 _builder.BuildMessageAndEnumDescriptors(DESCRIPTOR, _globals)
@@ -34,32 +34,34 @@ if not _descriptor._USE_C_DESCRIPTORS:
   DESCRIPTOR._loaded_options = None
   _globals['_PUTREQUEST']._serialized_start=72
   _globals['_PUTREQUEST']._serialized_end=112
-  _globals['_WRITEACK']._serialized_start=114
-  _globals['_WRITEACK']._serialized_end=174
-  _globals['_GETREQUEST']._serialized_start=176
-  _globals['_GETREQUEST']._serialized_end=201
-  _globals['_GETREPLY']._serialized_start=203
-  _globals['_GETREPLY']._serialized_end=243
-  _globals['_DELETEREQUEST']._serialized_start=245
-  _globals['_DELETEREQUEST']._serialized_end=273
-  _globals['_BATCHPUTREQUEST']._serialized_start=275
-  _globals['_BATCHPUTREQUEST']._serialized_end=334
-  _globals['_BATCHWRITEACK']._serialized_start=336
-  _globals['_BATCHWRITEACK']._serialized_end=390
-  _globals['_BATCHGETREQUEST']._serialized_start=392
-  _globals['_BATCHGETREQUEST']._serialized_end=423
-  _globals['_BATCHGETREPLY']._serialized_start=425
-  _globals['_BATCHGETREPLY']._serialized_end=480
-  _globals['_BATCHDELETEREQUEST']._serialized_start=482
-  _globals['_BATCHDELETEREQUEST']._serialized_end=516
-  _globals['_NODESTATSREQUEST']._serialized_start=518
-  _globals['_NODESTATSREQUEST']._serialized_end=536
-  _globals['_NODESTATSREPLY']._serialized_start=538
-  _globals['_NODESTATSREPLY']._serialized_end=612
-  _globals['_SCANKEYSREQUEST']._serialized_start=614
-  _globals['_SCANKEYSREQUEST']._serialized_end=661
-  _globals['_SCANKEYSREPLY']._serialized_start=663
-  _globals['_SCANKEYSREPLY']._serialized_end=706
-  _globals['_NODESTORAGE']._serialized_start=709
-  _globals['_NODESTORAGE']._serialized_end=1280
+  _globals['_FILTERPOSITION']._serialized_start=114
+  _globals['_FILTERPOSITION']._serialized_end=163
+  _globals['_WRITEACK']._serialized_start=165
+  _globals['_WRITEACK']._serialized_end=278
+  _globals['_GETREQUEST']._serialized_start=280
+  _globals['_GETREQUEST']._serialized_end=305
+  _globals['_GETREPLY']._serialized_start=307
+  _globals['_GETREPLY']._serialized_end=347
+  _globals['_DELETEREQUEST']._serialized_start=349
+  _globals['_DELETEREQUEST']._serialized_end=377
+  _globals['_BATCHPUTREQUEST']._serialized_start=379
+  _globals['_BATCHPUTREQUEST']._serialized_end=438
+  _globals['_BATCHWRITEACK']._serialized_start=440
+  _globals['_BATCHWRITEACK']._serialized_end=494
+  _globals['_BATCHGETREQUEST']._serialized_start=496
+  _globals['_BATCHGETREQUEST']._serialized_end=527
+  _globals['_BATCHGETREPLY']._serialized_start=529
+  _globals['_BATCHGETREPLY']._serialized_end=584
+  _globals['_BATCHDELETEREQUEST']._serialized_start=586
+  _globals['_BATCHDELETEREQUEST']._serialized_end=620
+  _globals['_NODESTATSREQUEST']._serialized_start=622
+  _globals['_NODESTATSREQUEST']._serialized_end=640
+  _globals['_NODESTATSREPLY']._serialized_start=642
+  _globals['_NODESTATSREPLY']._serialized_end=716
+  _globals['_SCANKEYSREQUEST']._serialized_start=718
+  _globals['_SCANKEYSREQUEST']._serialized_end=765
+  _globals['_SCANKEYSREPLY']._serialized_start=767
+  _globals['_SCANKEYSREPLY']._serialized_end=810
+  _globals['_NODESTORAGE']._serialized_start=813
+  _globals['_NODESTORAGE']._serialized_end=1384
 # @@protoc_insertion_point(module_scope)

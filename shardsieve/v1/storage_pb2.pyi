@@ -15,15 +15,25 @@ class PutRequest(_message.Message):
     value: bytes
     def __init__(self, key: _Optional[bytes] = ..., value: _Optional[bytes] = ...) -> None: ...
 
+class FilterPosition(_message.Message):
+    __slots__ = ("epoch", "sequence")
+    EPOCH_FIELD_NUMBER: _ClassVar[int]
+    SEQUENCE_FIELD_NUMBER: _ClassVar[int]
+    epoch: int
+    sequence: int
+    def __init__(self, epoch: _Optional[int] = ..., sequence: _Optional[int] = ...) -> None: ...
+
 class WriteAck(_message.Message):
-    __slots__ = ("created", "epoch", "sequence")
+    __slots__ = ("created", "epoch", "sequence", "old_position")
     CREATED_FIELD_NUMBER: _ClassVar[int]
     EPOCH_FIELD_NUMBER: _ClassVar[int]
     SEQUENCE_FIELD_NUMBER: _ClassVar[int]
+    OLD_POSITION_FIELD_NUMBER: _ClassVar[int]
     created: bool
     epoch: int
     sequence: int
-    def __init__(self, created: _Optional[bool] = ..., epoch: _Optional[int] = ..., sequence: _Optional[int] = ...) -> None: ...
+    old_position: FilterPosition
+    def __init__(self, created: _Optional[bool] = ..., epoch: _Optional[int] = ..., sequence: _Optional[int] = ..., old_position: _Optional[_Union[FilterPosition, _Mapping]] = ...) -> None: ...
 
 class GetRequest(_message.Message):
     __slots__ = ("key",)

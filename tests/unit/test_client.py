@@ -8,6 +8,7 @@ without daemons (the same commands run against real processes in tests/cluster/t
 from __future__ import annotations
 
 import json
+import re
 from concurrent import futures
 from pathlib import Path
 from typing import Iterator
@@ -54,6 +55,7 @@ class FakeAdmin(admin_pb2_grpc.AdminServicer):
         return admin_pb2.FleetStatusReply(coordinator_id="fake", mode="safe", nodes=[
             _node(1), _node(2, saturated=True, saturation_reasons=["predicted FPR 0.05 > 2 x 0.01"]),
             _node(3, stale=True, state="stale"),
+            _node(4, fill=0.97, implausible_fill=True),
         ], lookups=10, probes=12, avoided_fanout=0.6, wasted_probes=2)
 
     def NodeDetail(self, request, context):  # type: ignore[no-untyped-def]
@@ -198,13 +200,35 @@ def test_status_json_and_table(fake) -> None:  # type: ignore[no-untyped-def]
     res = run(["status", "--coordinator", addr, "--token", TOKEN, "--json"])
     assert res.exit_code == 0, res.output
     doc = json.loads(res.stdout)
-    assert [n["node_id"] for n in doc["nodes"]] == ["n1", "n2", "n3"]
+    assert [n["node_id"] for n in doc["nodes"]] == ["n1", "n2", "n3", "n4"]
     assert doc["nodes"][1]["key_count"] == 2000 and isinstance(doc["nodes"][1]["key_count"], int)
     assert doc["nodes"][0]["geometry"]["scheme"] == "HASH_SCHEME_MMH3_KM_V1"
     res = run(["status"], env={"SHARDSIEVE_COORDINATOR": addr, "SHARDSIEVE_TOKEN": TOKEN})
     assert res.exit_code == 0
     assert "SATURATED" in res.stdout and "stale" in res.stdout
     assert "rebuild --flagged" in res.stdout
+
+
+def test_status_marks_implausible_fill(fake) -> None:  # type: ignore[no-untyped-def]
+    """A node the coordinator flags `implausible_fill` stands out in the table and keeps the flag in --json."""
+    addr, _, _ = fake
+    common = ["--coordinator", addr, "--token", TOKEN]
+    doc = json.loads(run(["status", "--json", *common]).stdout)
+    assert {n["node_id"]: n["implausible_fill"] for n in doc["nodes"]} == {
+        "n1": False, "n2": False, "n3": False, "n4": True}
+    res = run(["status", *common])
+    assert res.exit_code == 0, res.output
+    rows = {line.split()[1]: line for line in res.stdout.splitlines() if line.startswith("│ n")}
+    assert "IMPLAUSIBLE-FILL" in rows["n4"]
+    assert all("IMPLAUSIBLE" not in rows[n] for n in ("n1", "n2", "n3"))
+    assert "implausible fill: n4" in res.stdout
+    # coloured like saturated/stale rows: rich's FORCE_COLOR makes the styles visible as ANSI codes
+    res = run(["status", *common], env={"FORCE_COLOR": "1", "COLUMNS": "200"})
+    coloured = {m.group(1): line for line in res.stdout.splitlines() if (m := re.search(r"m(n\d) ", line))
+                or (m := re.match(r"│ (n\d) ", line))}
+    magenta = "\x1b[1;35m"       # SGR bold (1) + magenta foreground (35), ECMA-48 section 8.3.117
+    assert magenta in coloured["n4"]
+    assert all(magenta not in coloured[n] for n in ("n1", "n2", "n3"))
 
 
 def test_wrong_token_exits_4_with_one_line(fake) -> None:  # type: ignore[no-untyped-def]
