@@ -208,8 +208,8 @@ class AdminService(admin_pb2_grpc.AdminServicer):
         except NodeConnected:
             context.abort(grpc.StatusCode.FAILED_PRECONDITION,
                           f"node {node_id!r} is connected (its sync stream is open), so it is not gone; nothing "
-                          "changed. Stop it first, or set force to forget it anyway (it comes back as a new node "
-                          "if it reconnects)")
+                          "changed. Stop it first, or set force (`shardsieve forget --force`) to forget it anyway (it "
+                          "comes back as a new node if it reconnects)")
         self.fleet.record_decisions([Decision(self.wall(), node_id, "forget",
                                               f"forgotten by an operator{' (forced while connected)' if result['was_connected'] else ''}; "
                                               f"{result['key_count']} keys last reported, {result['hints_dropped']} "

@@ -40,6 +40,8 @@ READ_TOKEN = "kelpline-read-19bd"
 NODE_TOKEN = "kelpline-node1-c0de"
 SPARE_TOKEN = "kelpline-spare-51ee"
 KEYS = [f"kelpline-crate-{i:04d}".encode() for i in range(300)]
+MAX_VALUE = 4096          # coordinator max-value-bytes in the token-mode fixture
+MAX_BATCH_KEYS = 1000     # coordinator max-batch-keys (>= the 600 keys coordinator_state asks for)
 ABSENT = [f"kelpline-ghost-{i:04d}".encode() for i in range(300)]
 _CLOSE = object()
 
@@ -231,6 +233,7 @@ def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[LocalCluster]:
                         "--write-token", WRITE_TOKEN,
                         "--max-streams-per-peer", "4", "--max-message-bytes", str(1 << 20),
                         "--max-filter-bits", str(1 << 20), "--max-snapshot-chunks", "4", "--mode", "fast",
+                        "--max-value-bytes", str(MAX_VALUE), "--max-batch-keys", str(MAX_BATCH_KEYS),
                         "--auto-rebuild", "false", "--node-storage-token", STORAGE_TOKEN]
     with LocalCluster(tmp_path_factory.mktemp("sec"), nodes=1, capacity=2000, token=ADMIN_TOKEN, metrics=True,
                       extra_coordinator_args=coordinator_args,
@@ -308,6 +311,12 @@ def test_oversized_requests_and_messages(cluster: LocalCluster) -> None:
                     metadata=WRITE_MD) == grpc.StatusCode.RESOURCE_EXHAUSTED
     assert rpc_code(router.Locate, routing_pb2.LocateRequest(key=b"k" * (65 * 1024)), timeout=10,
                     metadata=READ_MD) == grpc.StatusCode.INVALID_ARGUMENT                   # max-key-bytes
+    assert rpc_code(router.Write, routing_pb2.WriteRequest(key=b"kelpline-wide", value=b"x" * (MAX_VALUE + 1)),
+                    timeout=10, metadata=WRITE_MD) == grpc.StatusCode.INVALID_ARGUMENT      # max-value-bytes
+    assert rpc_code(router.LocateBatch, routing_pb2.LocateBatchRequest(keys=[b"k"] * (MAX_BATCH_KEYS + 1)),
+                    timeout=10, metadata=READ_MD) == grpc.StatusCode.INVALID_ARGUMENT       # max-batch-keys
+    for refused in (b"kelpline-big", b"kelpline-wide"):                     # neither write reached a node
+        assert not router.Read(routing_pb2.ReadRequest(key=refused), timeout=10, metadata=READ_MD).found
     md = (("authorization", f"Bearer {SPARE_TOKEN}"),)
     big = Geometry(bits=1 << 21, hashes=3)                                   # above max-filter-bits
     assert FakeNode(cluster.coordinator_address, md).send(hello("spare", big)).status() \

@@ -141,3 +141,20 @@ def test_batch_wire_encoding_decodes_to_the_same_lists() -> None:
         assert total == sum(len(r) for r in expected)
         assert [[(c.node_id, c.address, c.stale, c.hinted) for c in r] for r in expected] == \
             [[(c.node_id, c.address, c.stale, c.hinted) for c in r.candidates] for r in reply.results]
+
+
+def test_placement_picks_the_fresh_node_with_the_most_free_capacity() -> None:
+    # Issue 4 point 4: default placement = most free capacity (capacity - keys). Expected values
+    # worked out by hand from the views below.
+    fleet = Fleet(Policy(stale_after_s=2.0))
+    for nid, keys, capacity in (("n0", 100, 1000), ("n1", 50, 500), ("n2", 900, 2000), ("n3", 0, 400)):
+        fleet.observe(_View(nid, storage_address=f"a-{nid}", key_count=keys, capacity=capacity, last_heard_at=100.0))
+    # free: n0 900, n1 450, n2 1100, n3 400 -> n2 (the biggest capacity is not what counts; free room is)
+    assert fleet.placement(now=100.5) == "n2"
+    fleet.observe(_View("n2", storage_address="a-n2", key_count=1500, capacity=2000, last_heard_at=100.0))
+    assert fleet.placement(now=100.5) == "n0"            # n2 now has 500 free, n0 900
+    assert fleet.placement(now=100.5, exclude={"n0"}) == "n2"
+    # A stale node (stream down) is not picked while a fresh one exists.
+    fleet.observe(_View("n0", storage_address="a-n0", key_count=100, capacity=1000, connected=False,
+                        last_heard_at=100.0))
+    assert fleet.placement(now=100.5) == "n2"
