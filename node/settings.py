@@ -36,7 +36,7 @@ class NodeSettings:
     heartbeat_ms: int = setting(1000, "Send a heartbeat with node stats this often (ms).")
     sync_level: str = setting("full", "Store durability: 'full' (survives process kill and power loss) or "
                                       "'normal' (survives process kill; power loss may lose the last writes).")
-    store: str = setting("sqlite", "Store backend: 'sqlite' ('memory' is for tests and loses everything on exit).")
+    store: str = setting("sqlite", "Store backend: 'sqlite' (the only durable one; the in-memory store is for unit tests only).")
     max_key_bytes: int = setting(1024, "Largest key accepted, in bytes.")
     max_value_bytes: int = setting(1_048_576, "Largest value accepted, in bytes.")
     max_batch: int = setting(1000, "Most items accepted in one batch request.")
@@ -90,8 +90,11 @@ class NodeSettings:
             raise ConfigError("setting 'reconnect-max-ms': must not be below reconnect-min-ms")
         if self.sync_level not in ("full", "normal"):
             raise ConfigError(f"setting 'sync-level': must be 'full' or 'normal', got {self.sync_level!r}")
-        if self.store not in ("sqlite", "memory"):
-            raise ConfigError(f"setting 'store': must be 'sqlite' or 'memory', got {self.store!r}")
+        if self.store == "memory":
+            raise ConfigError("setting 'store': the in-memory store is for unit tests only (it would lose every "
+                              "acknowledged write on exit); use 'sqlite'")
+        if self.store != "sqlite":
+            raise ConfigError(f"setting 'store': must be 'sqlite', got {self.store!r}")
         if self.log_level.lower() not in ("debug", "info", "warning", "error"):
             raise ConfigError(f"setting 'log-level': must be debug, info, warning or error, got {self.log_level!r}")
         if self.log_format not in ("json", "text"):

@@ -7,9 +7,10 @@ in effect: the driver asks the protocol object for more only while fewer than
 `MAX_QUEUED` messages wait to be sent; the protocol object bounds the history it keeps for a
 lagging coordinator and switches it to a snapshot beyond that.
 
-Reconnects use jittered exponential backoff ("full jitter": sleep uniform(0, min(max, min*2^n)),
-AWS Architecture Blog, "Exponential Backoff And Jitter", 2015), reset after a stream that
-worked (an ack arrived).
+Reconnects use jittered exponential backoff (after the n-th failure in a row sleep
+uniform(min/2, min(max, min*2^n)): "full jitter" of AWS Architecture Blog, "Exponential
+Backoff And Jitter", 2015, with a floor of min/2 so a reconnect never spins), reset after a
+stream that worked (an ack arrived).
 """
 
 from __future__ import annotations

@@ -89,6 +89,9 @@ def test_frozen_node_turns_stale_listed_in_safe_mode_only(tmp_path) -> None:
         cluster.storage("node-3").Put(storage_pb2.PutRequest(key=b"crate-9", value=b"dock-4"), timeout=5)
         wait_until(lambda: any(c.node_id == "node-3" for c in router.Locate(
             routing_pb2.LocateRequest(key=b"crate-9"), timeout=5).candidates), 10, message="crate-9 routable")
+        cluster.storage("node-1").Put(storage_pb2.PutRequest(key=b"crate-1", value=b"dock-2"), timeout=5)
+        wait_until(lambda: any(c.node_id == "node-1" for c in router.Locate(
+            routing_pb2.LocateRequest(key=b"crate-1"), timeout=5).candidates), 10, message="crate-1 routable")
         absent = [f"never-{i}".encode() for i in range(50)]
 
         def listed(key: bytes) -> list[routing_pb2.Candidate]:
@@ -104,9 +107,17 @@ def test_frozen_node_turns_stale_listed_in_safe_mode_only(tmp_path) -> None:
             for key in absent:
                 c = listed(key)
                 assert c and c[0].stale
+            # First hit wins (issue 4 point 4): crate-1's read also probes the frozen node (listed stale),
+            # whose probe would only end at the 60 s read deadline; the answer comes from node-1 well
+            # within the 10 s call deadline, so the read did not wait for every probe.
+            reply = router.Read(routing_pb2.ReadRequest(key=b"crate-1", deadline_ms=60_000), timeout=10)
+            assert reply.found and reply.node_id == "node-1" and reply.value == b"dock-2"
+            assert reply.candidates >= 2      # node-3 was on the list too
             # A read of its key cannot be answered: UNAVAILABLE naming the node, never a wrong not-found.
+            # The request's read deadline (300 ms) applies, not the 2 s default: the answer arrives
+            # inside a 1.5 s call deadline (else the client would see DEADLINE_EXCEEDED).
             with pytest.raises(grpc.RpcError) as err:
-                router.Read(routing_pb2.ReadRequest(key=b"crate-9", deadline_ms=300), timeout=10)
+                router.Read(routing_pb2.ReadRequest(key=b"crate-9", deadline_ms=300), timeout=1.5)
             assert err.value.code() == grpc.StatusCode.UNAVAILABLE and "node-3" in err.value.details()
             # Fast mode: stale nodes are left out of lists their filter does not match.
             admin.SetPolicy(admin_pb2.PolicySetRequest(values={"mode": "fast"}), timeout=5)

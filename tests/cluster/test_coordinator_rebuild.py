@@ -33,14 +33,16 @@ def test_overfilled_node_is_flagged_rebuilt_and_never_misses(tmp_path) -> None:
         router = cluster.router()
         admin = cluster.admin()
         stop = threading.Event()
+        first_batch = threading.Event()      # readers start once some keys are routable
         acked: list[bytes] = []
         failures: list[str] = []
 
         def reader() -> None:
             rng = random.Random(3)
+            first_batch.wait(30)
             while not stop.is_set():
                 if not acked:
-                    continue
+                    return
                 key = acked[rng.randrange(len(acked))]
                 start = history.now()
                 try:
@@ -68,6 +70,7 @@ def test_overfilled_node_is_flagged_rebuilt_and_never_misses(tmp_path) -> None:
                     routing_pb2.LocateBatchRequest(keys=[it.key for it in items]), timeout=5).results), 10,
                     message="batch routable")
                 acked.extend(it.key for it in items)
+                first_batch.set()
 
             # Back to health: a later epoch, in sync, all keys counted, not saturated any more.
             done = cluster.wait_node_state(
@@ -76,6 +79,7 @@ def test_overfilled_node_is_flagged_rebuilt_and_never_misses(tmp_path) -> None:
             wait_until(lambda: history.counts().get("read", 0) > 300, 20, message="reads across the swap")
         finally:
             stop.set()
+            first_batch.set()
             for t in threads:
                 t.join(10)
 
@@ -84,6 +88,13 @@ def test_overfilled_node_is_flagged_rebuilt_and_never_misses(tmp_path) -> None:
         assert "flag" in actions and "rebuild" in actions and "done" in actions, actions
         flag = next(d for d in decisions if d.node_id == "node-1" and d.action == "flag")
         assert "capacity 500" in flag.detail or "predicted FPR" in flag.detail
+
+        # Each decision is also logged with its numbers, as key=value fields (issue 4 points 6 and 8;
+        # LocalCluster runs the daemons with --log-format text; the JSON form is tests/unit/test_logs.py).
+        lines = [line for line in (tmp_path / "coordinator.log").read_text().splitlines()
+                 if "monitor decision" in line and "node_id=node-1" in line]
+        assert any("action=flag" in line and f"detail={flag.detail}" in line for line in lines), lines
+        assert any("action=rebuild" in line and f"= {done.capacity}" in line for line in lines), lines
 
         # The rebuilt filter is sized for growth x keys (at the time of the rebuild), holds every key,
         # and its predicted FPR is back under target.

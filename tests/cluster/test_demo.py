@@ -61,6 +61,8 @@ def test_demo_runs_end_to_end_within_its_time_limit(tmp_path: Path) -> None:
     assert report["nodes"] == 8 and report["lookups"] > 0 and report["false_negatives"] == 0
     assert report["avoided_fanout"] > 0.5   # 8 nodes, ~1 probe per lookup
     assert Path(report["plot"]).is_file()
+    # the loopback demo allows plaintext explicitly and says so (issue 7, point 1)
+    assert "plaintext" in proc.stderr and "allow-plaintext" in proc.stderr, proc.stderr[-2000:]
     assert elapsed < DEMO_LIMIT_S, f"demo took {elapsed:.1f}s"
 
 
@@ -82,3 +84,33 @@ def test_ctrl_c_stops_every_daemon(tmp_path: Path) -> None:
     assert "interrupted" in err
     survivors = [pid for pid in daemons if running(pid)]
     assert survivors == [], f"daemons left running: {survivors}"
+
+
+def test_keep_leaves_the_fleet_running_and_prints_how_to_explore_it(tmp_path: Path) -> None:
+    # Issue 5 point 3: with --keep the cluster stays up and the commands to explore it are printed
+    # (status, locate, rebuild). A small fleet keeps the test short.
+    import re
+
+    workdir = tmp_path / "kept"
+    proc = subprocess.run([sys.executable, "-m", "shardsieve.cli.main", "demo", "--dir", str(workdir), "--keep",
+                           "--nodes", "3", "--records", "1500", "--duration", "2"], capture_output=True, text=True,
+                          env={**demo_env(), "COLUMNS": "200"}, timeout=120)
+    pids_file = workdir / "pids"
+    pids = [int(p) for p in pids_file.read_text().split()] if pids_file.exists() else []
+    try:
+        assert proc.returncode == 0, proc.stderr[-3000:]
+        assert len(pids) == 4 and all(running(p) for p in pids), pids     # coordinator + 3 nodes
+        for command in ("shardsieve status", "shardsieve locate", "shardsieve rebuild"):
+            assert command in proc.stdout, proc.stdout[-2000:]
+        address = re.search(r"export SHARDSIEVE_COORDINATOR=(\S+)", proc.stdout).group(1)
+        # The printed address answers: the fleet is really there, every node in it.
+        status = subprocess.run([sys.executable, "-m", "shardsieve.cli.main", "status", "--json"],
+                                capture_output=True, text=True, timeout=60,
+                                env={**demo_env(), "SHARDSIEVE_COORDINATOR": address})
+        assert status.returncode == 0, status.stderr
+        assert sorted(n["node_id"] for n in json.loads(status.stdout)["nodes"]) == ["shed-01", "shed-02", "shed-03"]
+    finally:
+        for pid in pids:            # the processes this test's demo left running, by id
+            if running(pid):
+                os.kill(pid, signal.SIGTERM)
+        wait_until(lambda: not any(running(p) for p in pids), 30, message="kept demo daemons to stop")

@@ -43,7 +43,8 @@ def snapshot_state(coord: TestCoordinator, node) -> tuple:
     stub = node.stub()
     s = stub.Stats(storage_pb2.NodeStatsRequest()).stats
     known = stub.Get(storage_pb2.GetRequest(key=b"known"))
-    return ((s.key_count, s.fill, s.writes, s.deletes, s.epoch), (known.found, known.value),
+    return ((s.key_count, s.fill, s.writes, s.deletes, s.epoch, s.sequence, s.saturated_counters),
+            (known.found, known.value),
             tuple(scan_all_keys(stub)), reference_filter(stub).checksum)
 
 

@@ -269,6 +269,12 @@ def test_metrics_endpoint_matches_stats(tmp_path: Path) -> None:
         assert values["shardsieve_node_keys"] == stats.key_count == 37
         assert values["shardsieve_node_wasted_probes_total"] == stats.reads_missed == 1
         assert values["shardsieve_node_fill"] == pytest.approx(stats.fill)
+        # The rest of issue 4 point 8's list, on the node: lookups, FPR, delta bytes, rebuilds.
+        assert values["shardsieve_node_reads_total"] == stats.reads == 1
+        assert values["shardsieve_node_predicted_fpr"] == pytest.approx(stats.predicted_fpr)
+        assert stats.predicted_fpr == pytest.approx(stats.fill ** stats.geometry.hashes)   # fill^k (Bloom 1970)
+        assert values["shardsieve_node_bytes_pushed_total"] == stats.bytes_pushed
+        assert values["shardsieve_node_rebuild_progress"] == 0.0
     finally:
         node.stop()
 
@@ -295,5 +301,44 @@ def test_a_stalled_coordinator_does_not_hold_back_another(tmp_path: Path) -> Non
             assert not slow.sync.covers("n8", ack.epoch, ack.sequence)
             slow.drop_messages = False
             assert_copy_equals_node(slow, node, ack)
+        finally:
+            node.stop()
+
+
+def test_heartbeats_carry_the_node_stats(tmp_path: Path) -> None:
+    """Issue 3 point 4: heartbeats reach the coordinator with key count, capacity, geometry,
+    fill, predicted FPR, reads, wasted probes, writes, deletes and bytes pushed; the figures
+    are those of the node's own Stats and of the filter rebuilt from its keys."""
+    with TestCoordinator() as coord:
+        latest: list = []
+        coord.on_message = lambda msg, now: (latest.append(msg.heartbeat.stats)
+                                             if msg.WhichOneof("body") == "heartbeat" else None)
+        node = start_node(tmp_path, "n9", coordinators=[coord.address],
+                          extra=["--capacity", "3000", "--heartbeat-ms", "100"])
+        try:
+            stub = node.stub()
+            stub.BatchPut(storage_pb2.BatchPutRequest(
+                items=[storage_pb2.PutRequest(key=f"hb/{i:03d}".encode(), value=b"v") for i in range(40)]))
+            stub.BatchDelete(storage_pb2.BatchDeleteRequest(keys=[f"hb/{i:03d}".encode() for i in range(5)]))
+            stub.BatchGet(storage_pb2.BatchGetRequest(keys=[b"hb/010", b"hb/000", b"hb/none"]))
+
+            def settled():
+                if not latest:
+                    return None
+                s = latest[-1]
+                return s if (s.writes, s.deletes, s.reads, s.reads_missed) == (40, 5, 3, 2) and s.bytes_pushed > 0 \
+                    else None
+
+            hb = wait_until(settled, 15, message=lambda: f"a heartbeat with the counters; last {latest[-1:]}"
+                                                          f"\n{node.log_tail()}")
+            own = stub.Stats(storage_pb2.NodeStatsRequest()).stats
+            ref = reference_filter(stub)
+            assert hb.key_count == own.key_count == 35
+            assert hb.capacity == 3000
+            assert hb.geometry == own.geometry and hb.geometry.bits == ref.geometry.bits
+            # fill = set bits / m, predicted FPR = fill^k (ARCHITECTURE.md "Words"; Bloom 1970)
+            assert hb.fill == pytest.approx(ref.set_count() / ref.geometry.bits)
+            assert hb.predicted_fpr == pytest.approx(hb.fill ** hb.geometry.hashes, rel=1e-9)
+            assert own.bytes_pushed >= hb.bytes_pushed > 0
         finally:
             node.stop()

@@ -461,7 +461,7 @@ def test_daemons_refuse_plaintext_unless_allowed(tmp_path: Path) -> None:
     port = free_port()
     for argv in (shardsieve_argv("coordinator", "--listen", f"127.0.0.1:{port}", "--log-format", "text"),
                  shardsieve_argv("node", "--id", "n1", "--listen", f"127.0.0.1:{port}", "--data",
-                                 str(tmp_path / "n1"), "--store", "memory", "--log-format", "text")):
+                                 str(tmp_path / "n1"), "--log-format", "text")):
         proc = subprocess.run(argv, capture_output=True, text=True, timeout=60, env=env)
         assert proc.returncode == 1, proc.stderr
         assert "allow-plaintext" in proc.stderr and "tls-cert" in proc.stderr

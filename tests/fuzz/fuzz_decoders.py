@@ -3,7 +3,7 @@
 Not collected by pytest (no test_ prefix). Run one target for a while, e.g.:
 
     python tests/fuzz/fuzz_decoders.py delta -max_total_time=60
-    python tests/fuzz/fuzz_decoders.py snapshot|sync|config -max_total_time=60
+    python tests/fuzz/fuzz_decoders.py snapshot|sync|config|cli -max_total_time=60
 
 A crasher is written by libFuzzer as crash-<sha1>; turn it into a regression case in
 tests/property/test_fuzz_decoders.py (REGRESSIONS_* / an explicit test) and fix the decoder.
@@ -30,6 +30,9 @@ with atheris.instrument_imports():
     from shardsieve.sync.coordinator_side import CoordinatorSync, DictReplicaSink
     from shardsieve.sync.errors import SyncError
     from shardsieve.v1 import sync_pb2
+
+    import coordinator.settings  # noqa: F401 - instrumented for the config and cli targets
+    import node.settings  # noqa: F401
 
 BITS = (64, 1024, 1 << 20, 1 << 40)
 
@@ -119,7 +122,28 @@ def fuzz_config(data: bytes) -> None:
             return
 
 
-TARGETS = {"delta": fuzz_delta, "snapshot": fuzz_snapshot, "sync": fuzz_sync, "config": fuzz_config}
+def fuzz_cli(data: bytes) -> None:
+    """CLI / environment values: each setting given as arbitrary text, as a flag would carry it."""
+    import dataclasses
+
+    from coordinator.settings import CoordinatorSettings
+    from node.settings import NodeSettings
+
+    fdp = atheris.FuzzedDataProvider(data)
+    cls = (CoordinatorSettings, NodeSettings)[fdp.ConsumeIntInRange(0, 1)]
+    names = [f.name for f in dataclasses.fields(cls)]
+    flags = {names[fdp.ConsumeIntInRange(0, len(names) - 1)]: fdp.ConsumeUnicodeNoSurrogates(16)
+             for _ in range(fdp.ConsumeIntInRange(1, 4))}
+    if cls is NodeSettings:
+        flags.setdefault("id", "n1")
+    try:
+        load_settings(cls, environ={}, overrides=flags)
+    except ConfigError:
+        return
+
+
+TARGETS = {"delta": fuzz_delta, "snapshot": fuzz_snapshot, "sync": fuzz_sync, "config": fuzz_config,
+           "cli": fuzz_cli}
 
 if __name__ == "__main__":
     if len(sys.argv) < 2 or sys.argv[1] not in TARGETS:

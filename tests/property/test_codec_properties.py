@@ -16,6 +16,8 @@ from shardsieve.codec import CodecError, CorruptError, OutOfRangeError, Truncate
 from shardsieve.geometry import Geometry
 from shardsieve.snapshot import SnapshotAssembler, encode_snapshot
 
+SPECIFIC_ERRORS = (TruncatedError, VersionError, OutOfRangeError, CorruptError, codec.OversizeError)
+
 SETTINGS = settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 
 
@@ -141,7 +143,9 @@ def test_delta_header_byte_changed_raises(case: tuple[int, ChangeSet], pick: int
     payload[index] ^= xor
     try:
         codec.decode_delta(bytes(payload), bits)
-    except CodecError:
+    except CodecError as exc:
+        # a specific subclass, never the bare base class (issue 2, point 5)
+        assert type(exc) in SPECIFIC_ERRORS, type(exc)
         return
     raise AssertionError(f"altered header byte {index} of {header} decoded")
 

@@ -172,11 +172,12 @@ def test_multiply_shift_is_exact_high_product() -> None:
         assert int(got.max()) < m
 
 
-def test_range_reduction_is_uniform_for_odd_m() -> None:
+@pytest.mark.parametrize("m", [1_000_003, 999_999_999_989, MAX_BITS - 1])
+def test_range_reduction_is_uniform_for_odd_m(m: int) -> None:
     # Pearson's chi-square goodness of fit of 700,000 positions over 100 equal buckets of
-    # an odd m, at the 99.9% critical value of chi2 with 99 degrees of freedom computed by
-    # the Wilson-Hilferty approximation (Wilson & Hilferty 1931), about 148.3.
-    m = 1_000_003
+    # an odd m (up to 2^40 - 1, issue 2 point 3), at the 99.9% critical value of chi2 with
+    # 99 degrees of freedom computed by the Wilson-Hilferty approximation (Wilson &
+    # Hilferty 1931), about 148.3.
     g = Geometry(m, 7)
     pos = positions([b"manifest-%07d" % i for i in range(100_000)], g).ravel()
     buckets = np.bincount((pos * np.uint64(100) // np.uint64(m)).astype(np.int64), minlength=100)

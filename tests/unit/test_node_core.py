@@ -272,3 +272,56 @@ def test_failed_commit_fails_the_group_and_changes_nothing() -> None:
         core.put_many([(b"lost", b"1")])
     assert core.filter.checksum == checksum and core.key_count == keys and store.get(b"lost") is None
     assert core.put_many([(b"after", b"1")])[0].created   # the node keeps working
+
+
+def test_size_threshold_pushes_before_the_interval() -> None:
+    """Issue 3 point 3: changes are pushed every push interval, or sooner once the size
+    threshold is reached. With a 60 s interval, only the threshold can explain a cut."""
+    import threading
+
+    from shardsieve.testing.procs import wait_until
+
+    core = make_core(push_threshold=20)                 # k = 7 at fpr 0.01: 3 keys pass 20 bits
+    assert core.geometry.hashes == 7
+    core.put_many([(b"t-small", b"v")])                 # 7 changed bits: below the threshold
+    assert not core._push_now.is_set()
+    cuts: list[int] = []
+    cut_seen = threading.Event()
+
+    def on_cut(deltas: list, now: float) -> None:
+        cuts.append(len(deltas))
+        cut_seen.set()
+
+    core.cut_hooks.append(on_cut)
+    core.start_pusher(interval=60.0)
+    try:
+        core.put_many([(f"t-{i}".encode(), b"v") for i in range(3)])   # 21 more: threshold reached
+        wait_until(cut_seen.is_set, 10, message="a cut triggered by the size threshold")
+        assert cuts and cuts[0] >= 1
+        assert core.filter.take_changes().is_empty     # the cut took every pending change
+    finally:
+        core.stop_pusher()
+
+
+def test_rebuild_progress_is_visible_in_stats_and_log(caplog: pytest.LogCaptureFixture) -> None:
+    """Issue 3 point 5: rebuild progress shows in the node's stats (phase and a 0..1 figure
+    that only grows) and in its log."""
+    import logging
+
+    caplog.set_level(logging.INFO, logger="shardsieve.node.core")
+    store = MemoryStore()
+    core = make_core(store, scan_batch=10)
+    for start in range(0, 80, 8):
+        core.put_many([(f"p{i:03d}".encode(), b"v") for i in range(start, start + 8)])
+    assert core.stats()["rebuild_phase"] == "" and core.stats()["rebuild_progress"] == 0.0
+    core.request_rebuild(capacity=1000, target_fpr=0.01, reason="test")
+    seen: list[float] = []
+    while not core.rebuild_step():
+        s = core.stats()
+        assert s["rebuild_phase"] == "scanning"
+        seen.append(float(s["rebuild_progress"]))
+    assert len(seen) >= 7
+    assert seen == sorted(seen) and 0 < seen[0] < seen[-1] <= 0.5     # the scan is the first half
+    assert core.stats()["rebuild_phase"] == ""                           # no coordinator: done at once
+    text = caplog.text
+    assert "rebuild started" in text and "rebuild scan complete" in text

@@ -40,6 +40,13 @@ def test_help_documents_every_setting_and_default() -> None:
         flag = "--" + f.name.replace("_", "-")
         assert flag in text, flag
         assert f"SHARDSIEVE_NODE_{f.name.upper()}" in text
+        # issue 3 point 1: every setting's own entry states its default
+        entry = text[text.index(flag + " "):].split(f"SHARDSIEVE_NODE_{f.name.upper()}")[0]
+        assert "[default:" in entry, (flag, entry)
+    assert text.count("[default:") == len(dataclasses.fields(NodeSettings))
+    for literal in ("default: 1024;", "default: 1048576;", "default: 'full';", "default: 'sqlite';",
+                    "default: 100000;", "default: 0.01;"):
+        assert literal in text, literal   # the dataclass defaults, as documented in docs/node.md
     assert "default: 50" in text          # push interval default shown
     assert "power loss" in text           # durability of the sync levels documented
 
@@ -91,3 +98,12 @@ def test_unknown_file_key_is_refused(tmp_path: Path, captured: list[NodeSettings
     cfg.write_text('[node]\nid = "n"\ncapacty = 5\n')
     result = CliRunner().invoke(node_command, ["--config", str(cfg)])
     assert result.exit_code != 0 and "capacty" in result.output
+
+
+def test_the_daemon_refuses_the_in_memory_store() -> None:
+    # Acknowledged writes must survive a restart (ARCHITECTURE.md promise 4): memory is unit-test only.
+    from node.settings import NodeSettings
+    from shardsieve.config import ConfigError, load_settings
+
+    with pytest.raises(ConfigError, match="unit tests only"):
+        load_settings(NodeSettings, environ={}, overrides={"id": "n1", "store": "memory"})

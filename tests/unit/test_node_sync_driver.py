@@ -1,0 +1,80 @@
+"""SyncDriver reconnects with jittered exponential backoff (issue 3, point 3).
+
+The backoff rule checked here is the "jitter" family of AWS Architecture Blog, "Exponential
+Backoff And Jitter" (Brooker, 2015): the ceiling doubles per failed attempt up to a cap and
+the actual delay is drawn uniformly below it; a stream that worked resets the doubling. No
+socket is opened: each stream attempt is replaced by a scripted outcome and the waits are
+recorded instead of slept.
+"""
+
+from __future__ import annotations
+
+import random
+import threading
+from typing import Any
+
+from node.sync_driver import SyncDriver
+
+
+class _Core:
+    """Just what SyncDriver's constructor and loop touch."""
+
+    def __init__(self) -> None:
+        self.listeners: list[Any] = []
+
+
+class _RecordingStop(threading.Event):
+    """Records every backoff wait instead of sleeping; stops the loop after `limit` waits."""
+
+    def __init__(self, limit: int) -> None:
+        super().__init__()
+        self.limit = limit
+        self.waits: list[float] = []
+
+    def wait(self, timeout: float | None = None) -> bool:
+        assert timeout is not None
+        self.waits.append(timeout)
+        if len(self.waits) >= self.limit:
+            self.set()
+        return self.is_set()
+
+
+def _run(outcomes: list[bool], seed: int, lo: float = 0.1, hi: float = 3.0) -> list[float]:
+    driver = SyncDriver(_Core(), "127.0.0.1:9", backoff_min=lo, backoff_max=hi, rng=random.Random(seed))
+    stop = _RecordingStop(len(outcomes))
+    driver._stop = stop
+    script = iter(outcomes)
+    driver._one_stream = lambda: next(script)  # type: ignore[method-assign]
+    driver._run()
+    return stop.waits
+
+
+def test_ceiling_doubles_per_failure_up_to_the_cap() -> None:
+    lo, hi = 0.1, 3.0
+    waits = _run([False] * 12, seed=7, lo=lo, hi=hi)
+    assert len(waits) == 12
+    for failures, delay in enumerate(waits, start=1):
+        ceiling = min(hi, lo * 2 ** failures)
+        assert 0 < delay <= ceiling, (failures, delay, ceiling)
+    # late delays, drawn below the 3 s cap, are well above the first ceiling (0.2 s): it grew
+    assert max(waits[6:]) > 4 * lo * 2
+    assert all(d <= hi for d in waits)
+
+
+def test_delays_are_jittered_not_fixed() -> None:
+    # the same failure count under different seeds gives different delays (randomised, so
+    # many nodes reconnecting after one outage spread out: the point of jitter)
+    tenth = {round(_run([False] * 10, seed=s)[-1], 6) for s in range(8)}
+    assert len(tenth) == 8
+    # and one sequence is not simply the ceilings
+    waits = _run([False] * 10, seed=3)
+    assert any(d < min(3.0, 0.1 * 2 ** n) * 0.99 for n, d in enumerate(waits, start=1))
+
+
+def test_a_stream_that_worked_resets_the_doubling() -> None:
+    lo, hi = 0.1, 30.0
+    waits = _run([False] * 8 + [True] + [False], seed=11, lo=lo, hi=hi)
+    # after the working stream the ceiling is back at the minimum, and after one more
+    # failure at twice the minimum
+    assert waits[8] <= lo
+    assert waits[9] <= 2 * lo
