@@ -286,6 +286,8 @@ def test_wrong_or_missing_tokens_are_unauthenticated(cluster: LocalCluster) -> N
         assert secret not in node_log
     for secret in (ADMIN_TOKEN, WRITE_TOKEN, READ_TOKEN, NODE_TOKEN, SPARE_TOKEN, STORAGE_TOKEN):
         assert secret not in log                                      # tokens are never logged
+    # this fleet listens in plaintext (allowed explicitly): both daemons said so at start
+    assert "listening in PLAINTEXT" in log and "listening in PLAINTEXT" in node_log
 
 
 def test_spoofed_node_ids_are_permission_denied(cluster: LocalCluster) -> None:

@@ -13,6 +13,7 @@ import os
 import shutil
 import subprocess
 import time
+import urllib.request
 from pathlib import Path
 
 import pytest
@@ -57,6 +58,12 @@ def test_compose_fleet_turns_healthy_and_the_load_test_finds_every_key(docker_cl
                 break
             time.sleep(0.5)   # polling interval of this deadline-bound wait
         assert all(s == "healthy" for s in states.values()), states
+
+        # The metrics ports are published on the host (Prometheus text format, prometheus_client).
+        for port, family in ((9401, b"shardsieve_coordinator_lookups"), (9402, b"shardsieve_coordinator_lookups"),
+                             *((9500 + i, b"shardsieve_node_keys") for i in range(1, 5))):
+            body = urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=10).read()
+            assert family in body, (port, body[:300])
 
         # The job's own command, smaller: through the second coordinator this time.
         run = _compose(project, "run", "--rm", "--no-deps", "loadtest", "loadtest", "--coordinator",
