@@ -84,6 +84,7 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
     cluster = LocalCluster(workdir, node_ids=node_ids, capacity=capacity, fpr=0.01, token=token or "",
                            coordinator_port=port, extra_coordinator_args=["--auto-rebuild", "false"])
     report: dict[str, Any] | None = None
+    kept = False          # set only once everything succeeded with --keep: any failure stops the fleet
     try:
         out.print(f"[bold]{scenario.BUSINESS}[/] (an invented business): starting a coordinator and {nodes} nodes "
                   f"in {workdir} …")
@@ -119,7 +120,7 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
         try:
             from shardsieve.loadtest.plot import draw
             report["plot"] = str(draw(plot_path, report, result.times_s, result.latency_ms))
-        except RuntimeError as exc:  # matplotlib missing: the report stands without the figure
+        except Exception as exc:  # noqa: BLE001 - matplotlib missing or a drawing error: the report stands
             report["plot"] = None
             out.print(f"[yellow]no plot: {exc}[/]")
         if not as_json:
@@ -131,6 +132,7 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
             pids = [h.process.pid for h in cluster.node_handles.values() if h.process] + (
                 [cluster.coordinator.pid] if cluster.coordinator else [])
             (workdir / "pids").write_text(" ".join(str(p) for p in pids) + "\n")
+            kept = True
         elapsed = time.monotonic() - started
         if as_json:
             emit_json({"business": scenario.BUSINESS, "directory": str(workdir),
@@ -144,7 +146,7 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
         cluster.stop()
         raise CliFailure("interrupted; every process the demo started has been stopped", 130) from None
     finally:
-        if not keep or report is None:
+        if not kept:
             cluster.stop()
         signal.signal(signal.SIGTERM, previous_term)
         signal.signal(signal.SIGINT, previous_int)

@@ -8,7 +8,8 @@ of that key started between that write and the end of the read. That is the stor
 check restricted to "absent" replies: a read overlapping a delete may go either way.
 
 Found-replies are also checked: the value must be one some write of the key started before the
-read ended (a read never invents data). Thread-safe; use one History per test.
+read ended (a read never invents data), and not one that an acknowledged overwrite had already
+replaced before the read began (no acknowledged value is lost or changed, e.g. across restarts). Thread-safe; use one History per test.
 """
 
 from __future__ import annotations
@@ -110,8 +111,15 @@ class History:
                     out.append(Violation(r, w, "acknowledged key reported absent"))
                     break
             else:
-                if not any(w.value == r.value and w.start < r.end for w in writes.get(r.key, ())):
+                produced = [w for w in writes.get(r.key, ()) if w.value == r.value and w.start < r.end]
+                if not produced:
                     out.append(Violation(r, None, "read returned a value no write produced"))
+                    continue
+                # An overwrite acknowledged before the read began hides every write that had been
+                # acknowledged before that overwrite started: returning such a value is a lost update.
+                newer = [w for w in writes.get(r.key, ()) if w.end < r.start]
+                if all(any(o.start > w.end and o.value != r.value for o in newer) for w in produced):
+                    out.append(Violation(r, produced[-1], "read returned a value an acknowledged overwrite replaced"))
         return out
 
     def assert_ok(self, limit: int = 10) -> None:

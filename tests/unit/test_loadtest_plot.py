@@ -48,12 +48,6 @@ def test_draw_writes_a_png(tmp_path) -> None:
     assert out.read_bytes()[:8] == PNG_SIGNATURE
 
 
-@pytest.mark.xfail(strict=True, raises=ValueError, reason=(
-    "code gap: plot.draw centres the existing-keys error bar on predicted_probes_per_hit (mean over ALL hit "
-    "lookups, popularity-weighted) but takes low/high from interval['hit'], which is built around the "
-    "distinct-key prediction; with a popular key on another node they disagree, yerr goes negative and "
-    "matplotlib raises ValueError (seen in `shardsieve demo --nodes 2 --records 400 --duration 1`). "
-    "Remove this mark once the bar uses interval['hit']['predicted'] (or clips)."))
 def test_draw_survives_a_popular_key_whose_prediction_differs_from_the_distinct_keys(tmp_path) -> None:
     report = _report(hot_reads=5000)
     hit = report["interval"]["hit"]
