@@ -143,6 +143,8 @@ class NodeCore:
         self.key_count = 0
         self.sync: NodeSync | None = None
         self.rebuild: RebuildScan | None = None
+        self.rebuilds_completed = 0      # old filter retired after every coordinator verified the new one
+        self.rebuilds_abandoned = 0
         self._rebuild_thread: threading.Thread | None = None
         self._pending_flips = 0
         self._push_now = threading.Event()
@@ -470,11 +472,13 @@ class NodeCore:
             elif isinstance(event, node_side.OldFilterRetired):
                 self.store.set_meta({META_CAPACITY: str(sync.capacity), META_FPR: repr(sync.target_fpr)})
                 self.rebuild = None
+                self.rebuilds_completed += 1
                 log.info("rebuild complete, old filter retired", extra={
                     "old_epoch": event.old_epoch, "epoch": event.new_epoch, "capacity": sync.capacity,
                     "geometry": str(sync.geometry)})
             elif isinstance(event, node_side.RebuildAbandoned):
                 self.rebuild = None
+                self.rebuilds_abandoned += 1
                 self._persist_epoch(event.epoch)
                 log.warning("rebuild abandoned", extra={"epoch": event.epoch, "reason": event.reason})
             elif isinstance(event, node_side.SnapshotStarted):
@@ -564,9 +568,12 @@ class NodeCore:
                 "target_fpr": sync.target_fpr, "rebuild_epoch": sync.rebuild_epoch,
                 "rebuild_progress": float(sync.rebuild_progress), "rebuild_phase": sync.rebuild_phase,
                 "saturated_counters": int(filt.saturated_counters()),
+                "rebuilds_completed": self.rebuilds_completed, "rebuilds_abandoned": self.rebuilds_abandoned,
             }
 
     def stats_proto(self) -> sync_pb2.NodeStats:
         s = self.stats()
         geometry = s.pop("geometry")
+        for local_only in ("rebuilds_completed", "rebuilds_abandoned"):   # metrics only, not on the wire
+            s.pop(local_only)
         return sync_pb2.NodeStats(geometry=geometry.to_proto(), **s)  # type: ignore[arg-type, union-attr]

@@ -54,6 +54,11 @@ class NodeCollector(Collector):
         yield counter("shardsieve_node_deletes", "Keys deleted (requests)", s["deletes"])
         yield counter("shardsieve_node_bytes_pushed", "Delta and snapshot bytes sent to coordinators",
                       s["bytes_pushed"])
+        rebuilds = CounterMetricFamily("shardsieve_node_rebuilds", "Filter rebuilds by outcome",
+                                       labels=["node", "outcome"])
+        rebuilds.add_metric([node, "completed"], float(s["rebuilds_completed"]))
+        rebuilds.add_metric([node, "abandoned"], float(s["rebuilds_abandoned"]))
+        yield rebuilds
         yield gauge("shardsieve_node_rebuild_progress", "Rebuild progress 0..1 (0 when idle)", s["rebuild_progress"])
         lag = GaugeMetricFamily("shardsieve_node_coordinator_lag", "Sequences cut but not acknowledged",
                                 labels=["node", "coordinator"])

@@ -275,6 +275,8 @@ def test_metrics_endpoint_matches_stats(tmp_path: Path) -> None:
         assert stats.predicted_fpr == pytest.approx(stats.fill ** stats.geometry.hashes)   # fill^k (Bloom 1970)
         assert values["shardsieve_node_bytes_pushed_total"] == stats.bytes_pushed
         assert values["shardsieve_node_rebuild_progress"] == 0.0
+        assert 'shardsieve_node_rebuilds_total{node="n7",outcome="completed"} 0.0' in text
+        assert 'shardsieve_node_rebuilds_total{node="n7",outcome="abandoned"} 0.0' in text
     finally:
         node.stop()
 

@@ -323,5 +323,6 @@ def test_rebuild_progress_is_visible_in_stats_and_log(caplog: pytest.LogCaptureF
     assert len(seen) >= 7
     assert seen == sorted(seen) and 0 < seen[0] < seen[-1] <= 0.5     # the scan is the first half
     assert core.stats()["rebuild_phase"] == ""                           # no coordinator: done at once
+    assert core.stats()["rebuilds_completed"] == 1 and core.stats()["rebuilds_abandoned"] == 0
     text = caplog.text
     assert "rebuild started" in text and "rebuild scan complete" in text
