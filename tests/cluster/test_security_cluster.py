@@ -367,33 +367,33 @@ def test_fuzzed_deltas_and_snapshots_change_nothing(cluster: LocalCluster) -> No
                                                 metadata=READ_MD)
     assert all("spare" in [c.node_id for c in r.candidates] for r in spare_before.results)
     rng = random.Random(20261201)
-    allowed = {"need_snapshot", "ack", "snapshot_rejected"}
+    # snapshot_verified: a rebuild-purpose snapshot not newer than the replica is confirmed, not installed
+    allowed = {"need_snapshot", "ack", "snapshot_rejected", "snapshot_verified"}
+    # Within every limit (limits have their own test), so each message reaches the protocol object.
     for i in range(150):
         if i % 3 == 0:
             msg = sync_pb2.NodeMessage(snapshot_chunk=filter_pb2.SnapshotChunk(
                 snapshot_id=10 + i, epoch=1, sequence=rng.choice([0, 1, 2]), geometry=GEOMETRY.to_proto(),
                 encoding=rng.randrange(5), purpose=rng.randrange(3), chunk_index=rng.randrange(3),
-                chunk_count=rng.randrange(1, 4), total_bytes=rng.randrange(0, 200),
+                chunk_count=rng.randrange(1, 4), total_bytes=rng.randrange(0, GEOMETRY.byte_size + 1),
                 data=rng.randbytes(rng.randrange(0, 130)), checksum=rng.getrandbits(64), key_count=5))
         else:
             msg = sync_pb2.NodeMessage(delta=filter_pb2.Delta(
                 epoch=1, sequence=1, payload=rng.randbytes(rng.randrange(0, 64)), checksum=rng.getrandbits(64),
                 key_count=rng.randrange(100)))
         fake.send(msg)
-    fake.send(sync_pb2.NodeMessage(heartbeat=sync_pb2.Heartbeat()))
+    # A stream is read in order: once the coordinator shows this heartbeat's marker, it has handled
+    # every fuzzed message before it.
+    marker = 770_001
+    fake.send(sync_pb2.NodeMessage(heartbeat=sync_pb2.Heartbeat(stats=sync_pb2.NodeStats(reads_missed=marker))))
+    wait_until(lambda: {n.node_id: n for n in cluster.fleet_status().nodes}["spare"].reads_missed_reported == marker,
+               15, message="the coordinator to handle the fuzzed messages and the marker heartbeat")
     kinds: list[str] = []
-
-    def drained() -> bool:
-        while True:
-            try:
-                item = fake.replies.get_nowait()
-            except queue.Empty:
-                return False
-            assert not isinstance(item, grpc.RpcError), item          # the stream survives
-            kinds.append(item.WhichOneof("body"))
-            if kinds[-1] == "ack" and len(kinds) > 1:
-                return True
-    wait_until(drained, 15, message="the coordinator's answer to the heartbeat")
+    while not fake.replies.empty():
+        item = fake.replies.get_nowait()
+        assert not isinstance(item, grpc.RpcError), item              # the stream survived all 150
+        kinds.append(item.WhichOneof("body"))
+    assert kinds, "the coordinator answered the fuzzed messages"
     assert set(kinds) <= allowed
     after = coordinator_state(cluster, READ_MD)
     assert after == before
@@ -405,6 +405,8 @@ def test_fuzzed_deltas_and_snapshots_change_nothing(cluster: LocalCluster) -> No
     # the same identity may take the stream over (reconnect); the older stream is then ended
     again = FakeNode(cluster.coordinator_address, md).send(hello("spare", GEOMETRY, checksum=bloom.checksum))
     assert again.recv().WhichOneof("body") in ("ack", "need_snapshot")
+    # the replaced stream is refused on its next message (ABORTED: StaleStream, docs/sync-protocol.md)
+    assert fake.send(sync_pb2.NodeMessage(heartbeat=sync_pb2.Heartbeat())).status() == grpc.StatusCode.ABORTED
     again.close()
     fake.close()
 
