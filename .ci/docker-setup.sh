@@ -60,9 +60,12 @@ else
     fi
     t_install=$(now)
     say "packages ready in $((t_install - t0)) s"
+    # The package may have started an engine itself (systemd hosts): then there is nothing to start.
     # Plain defaults first; where the kernel refuses iptables rules (some sandboxes) fall back
     # to no iptables management: published ports still work through docker-proxy.
-    if ! start_dockerd; then
+    if engine_answers; then
+        say "the installed package started an engine"
+    elif ! start_dockerd; then
         say "dockerd did not answer within ${wait_s} s with defaults; retrying with --iptables=false"
         tail -n 20 "$dockerd_log" >&2 || true
         if ! start_dockerd --iptables=false --ip-masq=false; then
@@ -78,6 +81,7 @@ say "engine answering after $((t1 - t0)) s"
 # mmdebstrap is needed only when the base image is missing.
 if ! command -v mmdebstrap >/dev/null && ! docker image inspect "${SHARDSIEVE_BASE_IMAGE:-shardsieve-base:bookworm}" >/dev/null 2>&1; then
     say "installing mmdebstrap"
+    DEBIAN_FRONTEND=noninteractive apt-get update -qq
     DEBIAN_FRONTEND=noninteractive apt-get install -y -qq mmdebstrap >/dev/null
 fi
 bash compose/make-offline-image.sh

@@ -21,6 +21,13 @@ image="${SHARDSIEVE_IMAGE:-shardsieve:dev}"
 python="${PYTHON:-python3}"
 rebuild_base=0
 
+# A host python3 without pip (plain Debian) gets a throwaway venv that has one.
+if ! "$python" -m pip --version >/dev/null 2>&1; then
+    pip_venv="$(mktemp -d)/pip-venv"
+    "$python" -m venv "$pip_venv" || { echo "make-offline-image.sh: $python has neither pip nor venv" >&2; exit 1; }
+    python="$pip_venv/bin/python"
+fi
+
 while [ $# -gt 0 ]; do
     case "$1" in
         --base) base="$2"; shift 2 ;;

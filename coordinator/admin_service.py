@@ -2,12 +2,11 @@
 decommissioning (ForgetNode).
 
 When a token is configured every call must carry "authorization: Bearer <token>" metadata;
-the comparison is constant-time (hmac.compare_digest) and the token is never logged.
+the comparison is constant-time (security.tokens_equal) and the token is never logged.
 """
 
 from __future__ import annotations
 
-import hmac
 import logging
 import time
 from typing import Any, Callable
@@ -18,6 +17,7 @@ from coordinator.accounting import avoided_fanout, wilson_interval
 from coordinator.fleet import Fleet, NodeRecord
 from coordinator.policy import Policy, PolicyError
 from coordinator.saturation import Decision, RebuildPlan, saturation_reasons
+from shardsieve import security
 from shardsieve.limits import fill_implausibility
 from shardsieve.v1 import admin_pb2, admin_pb2_grpc
 
@@ -33,14 +33,7 @@ class TokenCheck:
     def allowed(self, metadata: object) -> bool:
         if not self._token:
             return True
-        presented = b""
-        for key, value in metadata or ():  # type: ignore[attr-defined]
-            if key.lower() == "authorization":
-                text = value if isinstance(value, str) else value.decode(errors="replace")
-                scheme, _, cred = text.partition(" ")
-                if scheme.lower() == "bearer":
-                    presented = cred.strip().encode()
-        return hmac.compare_digest(presented, self._token)
+        return security.tokens_equal(security.bearer_token(metadata), self._token)  # type: ignore[arg-type]
 
 
 def _status(fleet: Fleet, rec: NodeRecord, now: float) -> admin_pb2.NodeStatus:
@@ -59,7 +52,7 @@ def _status(fleet: Fleet, rec: NodeRecord, now: float) -> admin_pb2.NodeStatus:
         node_id=rec.node_id, address=rec.address, connected=rec.connected, stale=fleet.is_stale(rec, now),
         saturated=bool(reasons), saturation_reasons=reasons,
         geometry=rec.geometry.to_proto() if rec.geometry else None,
-        epoch=rec.epoch, sequence=rec.sequence, key_count=key_count, capacity=capacity, fill=fill,
+        epoch=rec.epoch, sequence=rec.sequence, checksum=rec.checksum, key_count=key_count, capacity=capacity, fill=fill,
         predicted_fpr=rec.predicted_fpr, observed_fpr=c.observed_fpr if c else 0.0,
         observed_fpr_interval=admin_pb2.WilsonInterval(low=low, high=high),
         lookups_checked=c.lookups_checked if c else 0, probes=c.probes if c else 0,

@@ -48,6 +48,7 @@ class NodeRecord:
     geometry: Geometry | None = None
     epoch: int = 0
     sequence: int = 0
+    checksum: int = 0                    # of the replica at (epoch, sequence)
     set_bits: int = 0
     key_count: int = 0
     capacity: int = 0
@@ -195,7 +196,7 @@ class Fleet:
             rec.awaiting = view.awaiting_snapshot
             if view.epoch != rec.epoch and view.has_replica:
                 self.accounting.new_epoch(view.node_id, view.epoch)
-            rec.epoch, rec.sequence = view.epoch, view.sequence
+            rec.epoch, rec.sequence, rec.checksum = view.epoch, view.sequence, view.checksum
             if view.geometry is not None:
                 rec.geometry = view.geometry
             rec.key_count, rec.capacity = view.key_count, view.capacity

@@ -16,7 +16,7 @@ class WilsonInterval(_message.Message):
     def __init__(self, low: _Optional[float] = ..., high: _Optional[float] = ...) -> None: ...
 
 class NodeStatus(_message.Message):
-    __slots__ = ("node_id", "address", "connected", "stale", "saturated", "saturation_reasons", "geometry", "epoch", "sequence", "key_count", "capacity", "fill", "predicted_fpr", "observed_fpr", "observed_fpr_interval", "lookups_checked", "probes", "wasted_probes", "lag_ms", "state", "rebuild_progress", "rebuild_phase", "delta_bytes", "snapshots", "reads_missed_reported", "implausible_fill")
+    __slots__ = ("node_id", "address", "connected", "stale", "saturated", "saturation_reasons", "geometry", "epoch", "sequence", "key_count", "capacity", "fill", "predicted_fpr", "observed_fpr", "observed_fpr_interval", "lookups_checked", "probes", "wasted_probes", "lag_ms", "state", "rebuild_progress", "rebuild_phase", "delta_bytes", "snapshots", "reads_missed_reported", "implausible_fill", "checksum")
     NODE_ID_FIELD_NUMBER: _ClassVar[int]
     ADDRESS_FIELD_NUMBER: _ClassVar[int]
     CONNECTED_FIELD_NUMBER: _ClassVar[int]
@@ -43,6 +43,7 @@ class NodeStatus(_message.Message):
     SNAPSHOTS_FIELD_NUMBER: _ClassVar[int]
     READS_MISSED_REPORTED_FIELD_NUMBER: _ClassVar[int]
     IMPLAUSIBLE_FILL_FIELD_NUMBER: _ClassVar[int]
+    CHECKSUM_FIELD_NUMBER: _ClassVar[int]
     node_id: str
     address: str
     connected: bool
@@ -69,7 +70,8 @@ class NodeStatus(_message.Message):
     snapshots: int
     reads_missed_reported: int
     implausible_fill: bool
-    def __init__(self, node_id: _Optional[str] = ..., address: _Optional[str] = ..., connected: _Optional[bool] = ..., stale: _Optional[bool] = ..., saturated: _Optional[bool] = ..., saturation_reasons: _Optional[_Iterable[str]] = ..., geometry: _Optional[_Union[_filter_pb2.Geometry, _Mapping]] = ..., epoch: _Optional[int] = ..., sequence: _Optional[int] = ..., key_count: _Optional[int] = ..., capacity: _Optional[int] = ..., fill: _Optional[float] = ..., predicted_fpr: _Optional[float] = ..., observed_fpr: _Optional[float] = ..., observed_fpr_interval: _Optional[_Union[WilsonInterval, _Mapping]] = ..., lookups_checked: _Optional[int] = ..., probes: _Optional[int] = ..., wasted_probes: _Optional[int] = ..., lag_ms: _Optional[float] = ..., state: _Optional[str] = ..., rebuild_progress: _Optional[float] = ..., rebuild_phase: _Optional[str] = ..., delta_bytes: _Optional[int] = ..., snapshots: _Optional[int] = ..., reads_missed_reported: _Optional[int] = ..., implausible_fill: _Optional[bool] = ...) -> None: ...
+    checksum: int
+    def __init__(self, node_id: _Optional[str] = ..., address: _Optional[str] = ..., connected: _Optional[bool] = ..., stale: _Optional[bool] = ..., saturated: _Optional[bool] = ..., saturation_reasons: _Optional[_Iterable[str]] = ..., geometry: _Optional[_Union[_filter_pb2.Geometry, _Mapping]] = ..., epoch: _Optional[int] = ..., sequence: _Optional[int] = ..., key_count: _Optional[int] = ..., capacity: _Optional[int] = ..., fill: _Optional[float] = ..., predicted_fpr: _Optional[float] = ..., observed_fpr: _Optional[float] = ..., observed_fpr_interval: _Optional[_Union[WilsonInterval, _Mapping]] = ..., lookups_checked: _Optional[int] = ..., probes: _Optional[int] = ..., wasted_probes: _Optional[int] = ..., lag_ms: _Optional[float] = ..., state: _Optional[str] = ..., rebuild_progress: _Optional[float] = ..., rebuild_phase: _Optional[str] = ..., delta_bytes: _Optional[int] = ..., snapshots: _Optional[int] = ..., reads_missed_reported: _Optional[int] = ..., implausible_fill: _Optional[bool] = ..., checksum: _Optional[int] = ...) -> None: ...
 
 class FleetStatusRequest(_message.Message):
     __slots__ = ()

@@ -14,6 +14,7 @@ import pytest
 
 from shardsieve.localcluster import LocalCluster
 from shardsieve.testing.history import History
+from shardsieve.testing.nodes import reference_filter
 from shardsieve.testing.procs import wait_until
 from shardsieve.v1 import admin_pb2, routing_pb2, storage_pb2
 
@@ -112,6 +113,14 @@ def test_reads_writes_deletes_and_wasted_probes(tmp_path) -> None:
         # Avoided fan-out by definition: 1 - probes / (lookups x nodes) (ARCHITECTURE.md).
         assert fleet.avoided_fanout == pytest.approx(1 - fleet.probes / (fleet.lookups * 4))
         assert fleet.avoided_fanout > 0.5
+
+        # Each replica equals, checksum for checksum, a filter built from scratch over the node's
+        # keys (the node counts deleted keys out exactly; nothing saturated at this fill).
+        def replicas_exact() -> bool:
+            status = {n.node_id: n for n in cluster.fleet_status().nodes}
+            return all(status[nid].checksum == reference_filter(cluster.storage(nid)).checksum for nid in node_ids)
+
+        wait_until(replicas_exact, timeout=10, message="replica checksums equal the nodes' reference filters")
 
 
 def test_read_fails_unavailable_rather_than_wrong_not_found(tmp_path) -> None:

@@ -118,9 +118,9 @@ def snapshot_msgs(bloom: BloomFilter, key_count: int, snapshot_id: int = 1, sequ
 
 
 def coordinator_state(cluster: LocalCluster, metadata: Any = ()) -> tuple[Any, Any]:
-    """(per-node replica position, routing answers for written and absent keys)."""
+    """(per-node replica position and checksum, routing answers for written and absent keys)."""
     status = cluster.fleet_status()
-    positions = sorted((n.node_id, n.epoch, n.sequence, n.key_count, round(n.fill, 9),
+    positions = sorted((n.node_id, n.epoch, n.sequence, n.checksum, n.key_count, round(n.fill, 9),
                         n.geometry.SerializeToString()) for n in status.nodes)
     reply = cluster.router().LocateBatch(routing_pb2.LocateBatchRequest(keys=KEYS + ABSENT), timeout=10,
                                          metadata=metadata)

@@ -6,8 +6,9 @@ it off its network are the faults operators meet when hosts die or networks spli
 image runs in compose/ and in production.
 
 Skips: with no Docker engine answering, every test here is skipped with that reason. When the
-engine answers but the image is missing, the tests skip too, except under CI=true, where they
-fail (.ci/docker-setup.sh must have built it). The image is not rebuilt here: run
+engine answers but the image is missing, the tests skip too. Under CI=true both are failures
+instead: CI must run these tests (.ci/docker-setup.sh starts the engine and builds the image).
+The image is not rebuilt here: run
 compose/make-offline-image.sh (or .ci/docker-setup.sh) after changing the code.
 """
 
@@ -61,11 +62,17 @@ def _engine_problem() -> str | None:
     return None
 
 
+def _in_ci() -> bool:
+    return os.environ.get("CI", "").lower() in ("1", "true", "yes")
+
+
 @pytest.fixture(scope="session")
 def docker_client():
     """A docker SDK client, or a visible skip when no engine answers / the image is missing."""
     problem = _engine_problem()
     if problem:
+        if _in_ci():
+            pytest.fail(problem + " — under CI the container tests must run (.ci/run sets the engine up)")
         pytest.skip(problem)
     import docker
 
@@ -75,7 +82,7 @@ def docker_client():
     except docker.errors.ImageNotFound:
         reason = (f"image {IMAGE} is not built; run compose/make-offline-image.sh "
                   f"(or .ci/docker-setup.sh) first")
-        if os.environ.get("CI", "").lower() in ("1", "true", "yes"):
+        if _in_ci():
             pytest.fail(reason + " — under CI this is an error, not a skip")
         pytest.skip(reason)
     yield client
