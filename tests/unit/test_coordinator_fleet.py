@@ -41,6 +41,7 @@ class _View:
     has_replica: bool = True
     epoch: int = 1
     sequence: int = 0
+    checksum: int = 0
     geometry: Geometry | None = GEO
     key_count: int = 0
     capacity: int = 1000
