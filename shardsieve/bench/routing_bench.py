@@ -6,6 +6,8 @@ Every figure is measured in this run, side by side with its baseline:
   coordinator without the index would do);
 - LocateBatch over gRPC (batches of 1,000 keys) and single-key Locate latency, against an
   in-process coordinator Router service on loopback holding the same 64 replicas;
+  grpc_fraction_of_in_process divides its rate by the same 1,000-key batches sent through the
+  same Router in process (the transport's cost), measured interleaved;
 - write-to-routable latency for writes made directly on a node (a real node + coordinator);
 - index memory per node filter against m/8 bytes (one bit per filter position).
 """
@@ -270,8 +272,13 @@ def bench_routing(as_json: bool, n_keys: int, writes: int, push_interval_ms: int
     index64, keys = inproc.pop("_index64"), inproc.pop("_keys")
     grpc_out = measure_grpc(index64, keys, log)
     result = {**inproc, **grpc_out}
-    # Against the in-process LocateBatch at 64 nodes measured beside it (same load on the machine).
-    result["grpc_fraction_of_in_process"] = result["grpc_batch_keys_per_s"] / result["keys_per_s_64_beside_grpc"]
+    # The cost of the transport: the same 1,000-key LocateBatch calls, through the same router,
+    # over loopback gRPC vs called in process, measured interleaved in one run.
+    result["grpc_fraction_of_in_process"] = (result["grpc_batch_keys_per_s"]
+                                             / result["in_process_router_batch_1000_keys_per_s"])
+    # Stricter, for context: against one whole-batch index lookup (no per-call overhead at all).
+    result["grpc_fraction_of_index_whole_batch"] = (result["grpc_batch_keys_per_s"]
+                                                    / result["keys_per_s_64_beside_grpc"])
     result.update(measure_write_to_routable(writes, push_interval_ms, log))
     targets = dict(TARGETS)
     targets["write_to_routable_p99_ms"] = ("<=", push_interval_ms + 100.0)

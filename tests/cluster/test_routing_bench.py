@@ -35,6 +35,8 @@ def test_bench_routing_json_has_every_field() -> None:
     assert data["speedup_vs_per_node_loop_64"] == pytest.approx(
         data["keys_per_s_64_beside_loop"] / data["per_node_loop_keys_per_s_64"])
     assert data["grpc_fraction_of_in_process"] == pytest.approx(
+        data["grpc_batch_keys_per_s"] / data["in_process_router_batch_1000_keys_per_s"])
+    assert data["grpc_fraction_of_index_whole_batch"] == pytest.approx(
         data["grpc_batch_keys_per_s"] / data["keys_per_s_64_beside_grpc"])
     assert 0 < data["locate_p50_ms"] <= data["locate_p99_ms"]
     assert data["write_to_routable_p99_ms"] > 0
