@@ -9,8 +9,6 @@ SIGTERM / SIGINT: health NOT_SERVING, sync streams end, the server drains, the p
 from __future__ import annotations
 
 import logging
-import signal
-import sys
 import threading
 import time
 from concurrent import futures
@@ -28,6 +26,7 @@ from coordinator.saturation import Decision, RebuildPlan, SaturationMonitor
 from coordinator.settings import CoordinatorSettings
 from coordinator.sync_service import SyncService
 from shardsieve import logs, security
+from shardsieve.daemon_runner import run_until_signalled
 from shardsieve.v1 import admin_pb2_grpc, sync_pb2_grpc
 
 log = logging.getLogger("shardsieve.coordinator")
@@ -164,27 +163,6 @@ class CoordinatorDaemon:
 def run(settings: CoordinatorSettings) -> int:
     """Run until SIGTERM/SIGINT; returns the process exit code."""
     setup_logging(settings)
-    stop = threading.Event()
-
-    def on_signal(signum: int, _frame: object) -> None:
-        log.info("signal received", extra={"signal": signal.Signals(signum).name})
-        stop.set()
-
-    signal.signal(signal.SIGTERM, on_signal)
-    signal.signal(signal.SIGINT, on_signal)
-    try:
-        daemon = CoordinatorDaemon(settings)
-    except (OSError, RuntimeError, ValueError) as exc:
-        log.error("cannot start", extra={"error": str(exc)})
-        print(f"shardsieve coordinator: {exc}", file=sys.stderr)
-        return 1
-    try:
-        daemon.start()
-        while not stop.wait(0.5):
-            pass
-    except Exception:
-        log.exception("fatal error")
-        daemon.stop(grace=1.0)
-        return 1
-    daemon.stop()
-    return 0
+    return run_until_signalled("coordinator", log, lambda: CoordinatorDaemon(settings),
+                               lambda daemon, _stop: daemon.start(),
+                               startup_errors=(OSError, RuntimeError, ValueError))

@@ -30,6 +30,7 @@ from coordinator.policy import Policy
 from coordinator.routing_index import RoutingIndex
 from coordinator.saturation import Decision, NodeView, SaturationMonitor
 from shardsieve.changeset import ChangeSet
+from shardsieve.codec import write_varint
 from shardsieve.geometry import Geometry
 from shardsieve.hashing import positions as hash_positions
 
@@ -73,16 +74,10 @@ class NodeRecord:
 
 
 def varint(value: int) -> bytes:
-    """Protobuf base-128 varint (protobuf encoding guide, "Base 128 Varints")."""
+    """Protobuf base-128 varint (protobuf encoding guide, "Base 128 Varints"): unsigned LEB128."""
     out = bytearray()
-    while True:
-        byte = value & 0x7F
-        value >>= 7
-        if value:
-            out.append(byte | 0x80)
-        else:
-            out.append(byte)
-            return bytes(out)
+    write_varint(out, value)
+    return bytes(out)
 
 
 def _cand_field(cache: dict[tuple[str, str, bool, bool], bytes], node_id: str, address: str, stale: bool,

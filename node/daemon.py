@@ -11,8 +11,6 @@ sent only after the store commit returned.
 from __future__ import annotations
 
 import logging
-import signal
-import sys
 import threading
 from concurrent import futures
 from typing import Any
@@ -26,6 +24,7 @@ from node.settings import NodeSettings
 from node.store import StoreError, open_store
 from node.sync_driver import SyncDriver
 from shardsieve import logs, security
+from shardsieve.daemon_runner import run_until_signalled
 from shardsieve.v1 import storage_pb2_grpc
 
 log = logging.getLogger("shardsieve.node")
@@ -129,31 +128,6 @@ class NodeDaemon:
 def run(settings: NodeSettings) -> int:
     """Run until SIGTERM/SIGINT; returns the process exit code."""
     setup_logging(settings)
-    stop = threading.Event()
-
-    def on_signal(signum: int, _frame: object) -> None:
-        log.info("signal received", extra={"signal": signal.Signals(signum).name})
-        stop.set()
-
-    signal.signal(signal.SIGTERM, on_signal)
-    signal.signal(signal.SIGINT, on_signal)
-    try:
-        daemon = NodeDaemon(settings)
-    except (StoreError, OSError, RuntimeError, ValueError) as exc:
-        log.error("cannot start", extra={"error": str(exc)})
-        print(f"shardsieve node: {exc}", file=sys.stderr)
-        return 1
-    try:
-        daemon.start(stop)
-        while not stop.wait(0.5):
-            pass
-    except LoadCancelled as exc:
-        log.info("stopped before serving", extra={"reason": str(exc)})
-        daemon.stop(grace=1.0)
-        return 0
-    except Exception:
-        log.exception("fatal error")
-        daemon.stop(grace=1.0)
-        return 1
-    daemon.stop()
-    return 0
+    return run_until_signalled("node", log, lambda: NodeDaemon(settings), lambda daemon, stop: daemon.start(stop),
+                               startup_errors=(StoreError, OSError, RuntimeError, ValueError),
+                               quiet_stops=(LoadCancelled,))

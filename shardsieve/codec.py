@@ -62,7 +62,7 @@ class OversizeError(CodecError):
 
 # --------------------------------------------------------------------------- varints
 
-def _write_varint(out: bytearray, value: int) -> None:
+def write_varint(out: bytearray, value: int) -> None:
     """Unsigned LEB128: 7 bits per byte, least significant group first, high bit = more."""
     if value < 0:
         raise ValueError(f"varint value must be non-negative, got {value}")
@@ -277,7 +277,7 @@ def encode_positions(positions: npt.ArrayLike, bits: int) -> bytes:
     """
     arr = _check_positions(positions, bits)
     out = bytearray()
-    _write_varint(out, int(arr.size))
+    write_varint(out, int(arr.size))
     if arr.size:
         gaps = gaps_of(arr)
         r = choose_rice_parameter(gaps, bits)
@@ -318,8 +318,8 @@ def encode_delta(changes: ChangeSet, bits: int) -> bytes:
     if overlaps(set_arr, clr_arr):
         raise ValueError("a position cannot be both set and cleared in one delta")
     out = bytearray((DELTA_FORMAT_VERSION,))
-    _write_varint(out, int(set_arr.size))
-    _write_varint(out, int(clr_arr.size))
+    write_varint(out, int(set_arr.size))
+    write_varint(out, int(clr_arr.size))
     bodies: list[bytes] = []
     for arr in (set_arr, clr_arr):
         if arr.size:
@@ -327,7 +327,7 @@ def encode_delta(changes: ChangeSet, bits: int) -> bytes:
             r = choose_rice_parameter(gaps, bits)
             body = _encode_body(gaps, r)
             out.append(r)
-            _write_varint(out, len(body))
+            write_varint(out, len(body))
             bodies.append(body)
     for body in bodies:
         out += body
