@@ -7,16 +7,10 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from coordinator.policy import MODES, Policy, PolicyError
-from shardsieve.config import ConfigError, setting
+from shardsieve.config import ConfigError, check_address, setting
 
 ENV_PREFIX = "SHARDSIEVE_COORDINATOR_"
 SECTION = "coordinator"
-
-
-def _check_address(name: str, value: str) -> None:
-    host, sep, port = value.rpartition(":")
-    if not sep or not host or not port.isdigit() or not 0 <= int(port) <= 65535:
-        raise ConfigError(f"setting '{name}': {value!r} is not HOST:PORT with a port 0..65535")
 
 
 @dataclass(frozen=True)
@@ -81,7 +75,7 @@ class CoordinatorSettings:
     log_format: str = setting("json", "Log format: 'json' (one object per line) or 'text'.")
 
     def validate(self) -> None:
-        _check_address("listen", self.listen)
+        check_address("listen", self.listen)
         if not self.id or len(self.id) > 128:
             raise ConfigError("setting 'id': must be 1..128 characters")
         if not 0 <= self.metrics_port <= 65535:
@@ -90,7 +84,7 @@ class CoordinatorSettings:
             node_id, sep, addr = item.partition("=")
             if not sep or not node_id:
                 raise ConfigError(f"setting 'expect-node': {item!r} must look like NODE_ID=HOST:PORT")
-            _check_address("expect-node", addr)
+            check_address("expect-node", addr)
         if self.mode not in MODES:
             raise ConfigError(f"setting 'mode': must be one of {', '.join(MODES)}, got {self.mode!r}")
         if not (self.shrink_grace_s >= 0 and math.isfinite(self.shrink_grace_s)):

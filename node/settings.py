@@ -6,16 +6,10 @@ import math
 from dataclasses import dataclass
 from pathlib import Path
 
-from shardsieve.config import ConfigError, setting
+from shardsieve.config import ConfigError, check_address, setting
 
 ENV_PREFIX = "SHARDSIEVE_NODE_"
 SECTION = "node"
-
-
-def _check_address(name: str, value: str) -> None:
-    host, sep, port = value.rpartition(":")
-    if not sep or not host or not port.isdigit() or not 0 <= int(port) <= 65535:
-        raise ConfigError(f"setting '{name}': {value!r} is not HOST:PORT with a port 0..65535")
 
 
 @dataclass(frozen=True)
@@ -66,11 +60,11 @@ class NodeSettings:
             raise ConfigError("setting 'id' is required (--id, SHARDSIEVE_NODE_ID or id in [node])")
         if not all(c.isalnum() or c in "-_." for c in self.id) or len(self.id) > 128:
             raise ConfigError(f"setting 'id': {self.id!r} may hold only letters, digits, '-', '_', '.' (at most 128)")
-        _check_address("listen", self.listen)
+        check_address("listen", self.listen)
         if self.advertise:
-            _check_address("advertise", self.advertise)
+            check_address("advertise", self.advertise)
         for addr in self.coordinator:
-            _check_address("coordinator", addr)
+            check_address("coordinator", addr)
         if len(set(self.coordinator)) != len(self.coordinator):
             raise ConfigError("setting 'coordinator': the same address is listed twice")
         if self.capacity < 1:

@@ -31,6 +31,13 @@ def setting(default: Any, help: str, *, env: str | None = None) -> Any:  # noqa:
     return dataclasses.field(default=default, metadata={"help": help, "env": env})
 
 
+def check_address(name: str, value: str) -> None:
+    """A HOST:PORT setting: ConfigError naming the setting unless the port is a number 0..65535."""
+    host, sep, port = value.rpartition(":")
+    if not sep or not host or not port.isdigit() or not 0 <= int(port) <= 65535:
+        raise ConfigError(f"setting '{name}': {value!r} is not HOST:PORT with a port 0..65535")
+
+
 def env_name(prefix: str, field_name: str, declared: str | None = None) -> str:
     return declared or f"{prefix}{field_name.upper()}"
 
