@@ -175,10 +175,12 @@ class LocalCluster:
 
     def start_coordinator(self) -> DaemonProcess:
         env = {"SHARDSIEVE_COORDINATOR_TOKEN": self.token} if self.token else None
-        self.coordinator = start_daemon(self.coordinator_argv(), self.directory / "coordinator.log", env=env,
-                                        health_address=self.coordinator_address, timeout=self.start_timeout,
-                                        credentials=self.credentials())
-        return self.coordinator
+        def record(proc: DaemonProcess) -> None:
+            self.coordinator = proc        # before any Ctrl-C can interrupt: stop() then finds it
+
+        return start_daemon(self.coordinator_argv(), self.directory / "coordinator.log", env=env,
+                            health_address=self.coordinator_address, timeout=self.start_timeout,
+                            credentials=self.credentials(), on_spawn=record)
 
     def stop_coordinator(self, kill: bool = False) -> None:
         if self.coordinator is not None:
@@ -197,8 +199,12 @@ class LocalCluster:
     def start_node(self, node_id: str, wait_healthy: bool = True) -> DaemonProcess:
         handle = self.node_handles[node_id]
         handle.data_dir.mkdir(parents=True, exist_ok=True)
-        handle.process = start_daemon(handle.argv, handle.log_path, health_address=handle.address if wait_healthy else None,
-                                      timeout=self.start_timeout, credentials=self.credentials())
+        def record(proc: DaemonProcess) -> None:
+            handle.process = proc          # before any Ctrl-C can interrupt: stop() then finds it
+
+        start_daemon(handle.argv, handle.log_path, health_address=handle.address if wait_healthy else None,
+                     timeout=self.start_timeout, credentials=self.credentials(), on_spawn=record)
+        assert handle.process is not None
         if not wait_healthy:
             handle.process.health_address = handle.address
         return handle.process

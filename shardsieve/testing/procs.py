@@ -23,15 +23,17 @@ blindly (`wait_until` polls a predicate).
 
 from __future__ import annotations
 
+import contextlib
 import os
 import signal
 import socket
 import subprocess
 import sys
+import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Mapping, Sequence, TypeVar
+from typing import Callable, Iterator, Mapping, Sequence, TypeVar
 
 T = TypeVar("T")
 
@@ -172,13 +174,40 @@ class DaemonProcess:
             self._log_handle = None
 
 
+_INTERRUPTS = (signal.SIGINT, signal.SIGTERM)
+
+
+@contextlib.contextmanager
+def _interrupts_deferred() -> Iterator[None]:
+    """Hold SIGINT/SIGTERM back for a moment: record them, then re-raise them on the way out.
+
+    A Python-level handler, not a blocked signal mask: a mask would be inherited by the
+    daemons spawned meanwhile, which could then never be stopped with SIGTERM.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    pending: list[int] = []
+    previous = {sig: signal.signal(sig, lambda signum, _frame: pending.append(signum)) for sig in _INTERRUPTS}
+    try:
+        yield
+    finally:
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+        for sig in pending:
+            signal.raise_signal(sig)
+
+
 def start_daemon(argv: Sequence[str], log_path: Path, *, env: Mapping[str, str] | None = None,
                  health_address: str | None = None, health_service: str = "",
-                 timeout: float = 30.0, cwd: Path | None = None, credentials: object = None) -> DaemonProcess:
+                 timeout: float = 30.0, cwd: Path | None = None, credentials: object = None,
+                 on_spawn: Callable[[DaemonProcess], None] | None = None) -> DaemonProcess:
     """Start argv with stdout+stderr appended to log_path; if health_address is given, wait for SERVING.
 
     `env` entries are added to (not replacing) this process's environment. On a failed start
-    the process is killed and ProcessError carries the log tail.
+    the process is killed and ProcessError carries the log tail. `on_spawn` records the new
+    process (e.g. in a cluster's table) with SIGINT/SIGTERM held back, so a Ctrl-C can never
+    land between the spawn and the record and leave an untracked daemon behind.
     """
     log_path = Path(log_path)
     log_path.parent.mkdir(parents=True, exist_ok=True)
@@ -190,9 +219,12 @@ def start_daemon(argv: Sequence[str], log_path: Path, *, env: Mapping[str, str] 
     # (the daemons still log a warning); a caller passing TLS settings or "false" overrides it.
     full_env.setdefault("SHARDSIEVE_NODE_ALLOW_PLAINTEXT", "true")
     full_env.setdefault("SHARDSIEVE_COORDINATOR_ALLOW_PLAINTEXT", "true")
-    popen = subprocess.Popen(list(argv), stdout=handle, stderr=subprocess.STDOUT, env=full_env,
-                             cwd=str(cwd) if cwd else None, start_new_session=True)
-    proc = DaemonProcess(list(argv), popen, log_path, health_address, credentials, handle)
+    with _interrupts_deferred():        # a Ctrl-C that comes meanwhile is raised after the record
+        popen = subprocess.Popen(list(argv), stdout=handle, stderr=subprocess.STDOUT, env=full_env,
+                                 cwd=str(cwd) if cwd else None, start_new_session=True)
+        proc = DaemonProcess(list(argv), popen, log_path, health_address, credentials, handle)
+        if on_spawn is not None:
+            on_spawn(proc)
     if health_address is not None:
         try:
             proc.wait_healthy(timeout, health_service)
