@@ -44,7 +44,8 @@ class CoordinatorDaemon:
         self.fleet = Fleet(settings.policy(), state_dir=settings.state_dir, expected=settings.expected_nodes(),
                            monitor=SaturationMonitor(rebuild_timeout_s=settings.rebuild_timeout_s,
                                                       shrink_grace_s=settings.shrink_grace_s),
-                           max_hints=settings.max_hints, hint_max_age_s=settings.hint_max_age_s)
+                           max_hints=settings.max_hints, hint_max_age_s=settings.hint_max_age_s,
+                           locate_threads=settings.locate_threads)
         self.metrics = Metrics(self.fleet)
         tls = settings.tls_files()
         self.prober = Prober(settings.probe_threads, credentials=tls.channel_credentials(),

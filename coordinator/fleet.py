@@ -107,10 +107,11 @@ class Fleet:
 
     def __init__(self, policy: Policy, *, state_dir: Path | None = None,
                  expected: dict[str, str] | None = None, monitor: SaturationMonitor | None = None,
-                 max_hints: int = 1_000_000, max_decisions: int = 1000, hint_max_age_s: float = 300.0) -> None:
+                 max_hints: int = 1_000_000, max_decisions: int = 1000, hint_max_age_s: float = 300.0,
+                 locate_threads: int = 0) -> None:
         self._lock = threading.RLock()
         self.policy = policy
-        self.index = RoutingIndex()
+        self.index = RoutingIndex(locate_threads)
         self.hints = HintTable(max_hints)
         self.hint_max_age_s = hint_max_age_s
         self.hints_expired = 0               # hints dropped by age while their write was not applied

@@ -73,6 +73,14 @@ class FleetCollector(Collector):
         h = GaugeMetricFamily("shardsieve_coordinator_index_bytes", "Memory of the bit-sliced routing index")
         h.add_metric([], fleet.index.memory_bytes())
         yield h
+        held = GaugeMetricFamily("shardsieve_coordinator_hints", "Read-your-writes hints held")
+        held.add_metric([], len(fleet.hints))
+        yield held
+        expired = CounterMetricFamily("shardsieve_coordinator_hints_expired",
+                                      "Hints dropped by age while the replica still lacked their write "
+                                      "(each one is also logged with its numbers)")
+        expired.add_metric([], fleet.hints_expired)
+        yield expired
 
 
 class Metrics:

@@ -15,7 +15,9 @@ lookups (a lookup never sees a half-installed column).
 
 from __future__ import annotations
 
+import os
 import threading
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Callable, Sequence
 
@@ -31,6 +33,8 @@ _WIDTH_CLASSES: tuple[tuple[int, type[np.unsignedinteger]], ...] = (
 # match() works through a batch in chunks whose rows take about this many bytes (fits in L2).
 _CHUNK_BYTES = 256 * 1024
 _MIN_CHUNK_KEYS = 8192
+# A batch of at least this many keys is matched in one slice per worker thread.
+_PARALLEL_MIN_KEYS = 2 * _MIN_CHUNK_KEYS
 
 PositionsFn = Callable[[Sequence[bytes], Geometry], npt.NDArray[np.uint64]]
 
@@ -46,6 +50,16 @@ def _layout(slots: int) -> tuple[np.dtype, int, int]:
             return np.dtype(dtype), 1, cap
     words = -(-slots // 64)
     return np.dtype(np.uint64), words, words * 64
+
+
+def _zeros(rows: int, words: int, dtype: np.dtype) -> npt.NDArray[np.unsignedinteger]:
+    """A zeroed (rows, words) array starting on a 64-byte boundary: rows of 2^j <= 64 bytes then
+    never straddle two cache lines (the allocator only promises 16-byte alignment, which left
+    every other 32-byte row of a 256-node group spanning two lines)."""
+    size = rows * words * dtype.itemsize
+    raw = np.zeros(size + 64, dtype=np.uint8)
+    start = -raw.ctypes.data % 64
+    return raw[start:start + size].view(dtype).reshape(rows, words)
 
 
 def unpack_le(data: bytes, bits: int) -> npt.NDArray[np.uint8]:
@@ -88,7 +102,7 @@ class _Group:
     def __init__(self, geometry: Geometry) -> None:
         self.geometry = geometry
         self.dtype, self.words, self.capacity = _layout(1)
-        self.rows = np.zeros((geometry.bits, self.words), dtype=self.dtype)
+        self.rows = _zeros(geometry.bits, self.words, self.dtype)
         self.slot_of: dict[str, int] = {}
         self.node_at: list[str | None] = [None] * self.capacity
         self.bits_per_word = self.dtype.itemsize * 8
@@ -103,11 +117,8 @@ class _Group:
     # -- slots -------------------------------------------------------------------------------
     def _grow(self) -> None:
         dtype, words, capacity = _layout(self.capacity + 1)
-        if words == 1:
-            rows = self.rows.astype(dtype)
-        else:
-            rows = np.zeros((self.geometry.bits, words), dtype=dtype)
-            rows[:, :self.words] = self.rows.astype(dtype)
+        rows = _zeros(self.geometry.bits, words, dtype)
+        rows[:, :self.words] = self.rows
         self.rows, self.dtype, self.words, self.capacity = rows, dtype, words, capacity
         self.bits_per_word = dtype.itemsize * 8
         self.node_at.extend([None] * (capacity - len(self.node_at)))
@@ -243,13 +254,49 @@ class _Group:
         return int(self.rows.nbytes)
 
 
-class RoutingIndex:
-    """Bit-sliced replicas of every node's filter, grouped by geometry; thread-safe."""
+def default_workers() -> int:
+    """Threads a large batch is split across: the cores this process may run on, at most 4."""
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:   # not on Linux
+        cores = os.cpu_count() or 1
+    return max(1, min(4, cores))
 
-    def __init__(self) -> None:
+
+class RoutingIndex:
+    """Bit-sliced replicas of every node's filter, grouped by geometry; thread-safe.
+
+    workers: threads that match one large batch (>= _PARALLEL_MIN_KEYS keys), a slice each.
+    Once a group's rows outgrow the cache, matching is bound by memory latency, and each core
+    keeps its own row reads in flight. 1 does every lookup on the calling thread; None (or 0)
+    picks default_workers().
+    """
+
+    def __init__(self, workers: int | None = None) -> None:
+        if workers is None or workers == 0:
+            workers = default_workers()
+        if workers < 1:
+            raise RoutingIndexError(f"workers must be at least 1 (or 0 for one per core), got {workers}")
         self._lock = threading.Lock()
         self._groups: dict[Geometry, _Group] = {}
         self._geometry_of: dict[str, Geometry] = {}
+        self._workers = workers
+        self._pool: ThreadPoolExecutor | None = None
+
+    @property
+    def workers(self) -> int:
+        """Threads a large batch is split across (see the class docstring)."""
+        return self._workers
+
+    @workers.setter
+    def workers(self, workers: int) -> None:
+        if workers < 1:
+            raise RoutingIndexError(f"workers must be at least 1, got {workers}")
+        with self._lock:
+            self._workers = workers
+            if self._pool is not None:   # a new count gets a pool of its own size
+                self._pool.shutdown(wait=False)
+                self._pool = None
 
     # -- mutations ---------------------------------------------------------------------------
     def install(self, node_id: str, geometry: Geometry, column: bytes | npt.NDArray[np.uint8]) -> None:
@@ -327,37 +374,46 @@ class RoutingIndex:
         Hashing runs outside the lock; a group that appeared meanwhile is hashed under it, so
         a node moving between groups is never missed.
         """
-        hashed = {geo: positions(keys, geo) for geo in self.geometries()} if keys else {}
-        return self.locate_hashed(keys, hashed, positions)
-
-    def locate_hashed(self, keys: Sequence[bytes], hashed: dict[Geometry, npt.NDArray[np.uint64]],
-                      positions: PositionsFn) -> Candidates:
-        """Like locate, with positions already computed per geometry (reused across calls)."""
         n = len(keys)
-        key_parts: list[npt.NDArray[np.intp]] = []
-        name_parts: list[npt.NDArray[np.object_]] = []
+        hashed = {geo: positions(keys, geo) for geo in self.geometries()} if n else {}
+        parts: list[tuple[npt.NDArray[np.intp], npt.NDArray[np.object_]]] = []
         if n:
             with self._lock:
                 for geo, group in self._groups.items():
                     pos = hashed.get(geo)
                     if pos is None:
-                        pos = hashed[geo] = positions(keys, geo)
-                    found_keys, slots = group.decode(group.match(pos))
+                        pos = positions(keys, geo)
+                    found_keys, slots = self._match_group(group, pos)
                     if found_keys.size:
-                        key_parts.append(found_keys)
-                        name_parts.append(group.names()[slots])
-        if not key_parts:
+                        parts.append((found_keys, group.names()[slots]))
+        if not parts:
             return Candidates(np.zeros(n + 1, dtype=np.int64), [])
-        if len(key_parts) == 1:   # one geometry group (the usual fleet): already in key order
-            found, names = key_parts[0], name_parts[0]
+        if len(parts) == 1:   # one geometry group (the usual fleet): already in key order
+            found, names = parts[0]
         else:
-            found = np.concatenate(key_parts)
-            names = np.concatenate(name_parts)
+            found = np.concatenate([k for k, _ in parts])
+            names = np.concatenate([v for _, v in parts])
             order = np.argsort(found, kind="stable")
             found, names = found[order], names[order]
         offsets = np.zeros(n + 1, dtype=np.int64)
         np.cumsum(np.bincount(found, minlength=n), out=offsets[1:])
         return Candidates(offsets, names.tolist())
+
+    def _match_group(self, group: _Group, pos: npt.NDArray[np.uint64]) -> tuple[npt.NDArray[np.intp], npt.NDArray[np.intp]]:
+        """(key index, slot) pairs of one group, sorted by key; a large batch in one slice per
+        worker thread, run at once (numpy releases the GIL in the gathers and ANDs)."""
+        n = pos.shape[0]
+        if self._workers == 1 or n < _PARALLEL_MIN_KEYS:
+            return group.decode(group.match(pos))
+        if self._pool is None:
+            self._pool = ThreadPoolExecutor(self._workers - 1, thread_name_prefix="routing-index")
+        bounds = np.linspace(0, n, self._workers + 1).astype(int).tolist()
+        jobs = [self._pool.submit(lambda a=a, b=b: group.decode(group.match(pos[a:b])))
+                for a, b in zip(bounds[1:-1], bounds[2:])]
+        parts = [group.decode(group.match(pos[:bounds[1]]))] + [job.result() for job in jobs]
+        keys = np.concatenate([k + lo for (k, _), lo in zip(parts, bounds)])
+        slots = np.concatenate([s for _, s in parts])
+        return keys, slots
 
     def contains(self, node_id: str, positions_row: npt.ArrayLike) -> bool:
         """Whether all given positions are set in node_id's column (tests, diagnostics)."""

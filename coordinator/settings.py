@@ -67,6 +67,8 @@ class CoordinatorSettings:
     write_deadline_ms: int = setting(5000, "Deadline of a write or delete sent to a node (ms).")
     probe_threads: int = setting(32, "Threads probing nodes concurrently.")
     grpc_workers: int = setting(32, "Threads serving gRPC requests.")
+    locate_threads: int = setting(0, "Threads one large LocateBatch (16,384 keys or more) is split across; "
+                                     "0: one per core, at most 4.")
     max_hints: int = setting(1_000_000, "Most read-your-writes hints held before writes are refused.")
     hint_max_age_s: float = setting(300.0, "Last resort: drop a read-your-writes hint this long after the write "
                                     "even if the node's change never arrived (logged with its numbers; safe mode "
@@ -96,6 +98,8 @@ class CoordinatorSettings:
         for name in ("read_deadline_ms", "write_deadline_ms", "probe_threads", "grpc_workers", "max_hints"):
             if getattr(self, name) < 1:
                 raise ConfigError(f"setting '{name.replace('_', '-')}': must be at least 1, got {getattr(self, name)}")
+        if self.locate_threads < 0:
+            raise ConfigError(f"setting 'locate-threads': must be 0 (one per core) or more, got {self.locate_threads}")
         if self.log_level not in ("debug", "info", "warning", "error"):
             raise ConfigError(f"setting 'log-level': must be debug, info, warning or error, got {self.log_level!r}")
         if self.log_format not in ("json", "text"):

@@ -32,6 +32,10 @@ def test_bench_routing_json_has_every_field() -> None:
                  "per_node_loop_keys_per_s_64"):
         assert data[name] > 0
     assert data["per_key_cost_ratio_256_vs_8"] == pytest.approx(data["keys_per_s_8"] / data["keys_per_s_256"])
+    # Beside it, the same fleets on one thread, and the thread count the figures above used.
+    assert data["locate_threads"] >= 1
+    assert data["per_key_cost_ratio_256_vs_8_one_thread"] == pytest.approx(
+        data["keys_per_s_8_one_thread"] / data["keys_per_s_256_one_thread"])
     assert data["speedup_vs_per_node_loop_64"] == pytest.approx(
         data["keys_per_s_64_beside_loop"] / data["per_node_loop_keys_per_s_64"])
     assert data["grpc_fraction_of_in_process"] == pytest.approx(

@@ -159,3 +159,8 @@ def test_placement_picks_the_fresh_node_with_the_most_free_capacity() -> None:
     fleet.observe(_View("n0", storage_address="a-n0", key_count=100, capacity=1000, connected=False,
                         last_heard_at=100.0))
     assert fleet.placement(now=100.5) == "n2"
+
+
+def test_locate_threads_reach_the_routing_index() -> None:
+    assert Fleet(Policy(), locate_threads=3).index.workers == 3
+    assert Fleet(Policy()).index.workers >= 1   # 0 (the default): one per core

@@ -52,6 +52,7 @@ def test_flags_beat_env_beat_file(tmp_path: Path, captured: list[CoordinatorSett
     (["--listen", "nowhere"], "'listen'"),
     (["--growth", "abc"], "growth"),
     (["--target-fpr", "1.5"], "target"),
+    (["--locate-threads", "-1"], "'locate-threads'"),
 ])
 def test_invalid_setting_is_one_line_naming_it(args: list[str], named: str,
                                                captured: list[CoordinatorSettings]) -> None:

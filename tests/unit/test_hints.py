@@ -303,3 +303,28 @@ def test_an_expired_hint_whose_write_arrived_is_not_reported() -> None:
 def test_a_hint_for_a_node_the_fleet_does_not_know_is_not_held(unknown: str) -> None:
     fleet = Fleet(Policy())
     assert not fleet.add_hint(b"x", unknown, 1, 1, now=0.0) and len(fleet.hints) == 0
+
+
+def test_hints_held_and_expired_are_prometheus_metrics() -> None:
+    """Parsed back with prometheus_client's own text parser (the exposition format's reference
+    implementation, from the package index)."""
+    from prometheus_client import CollectorRegistry, generate_latest
+    from prometheus_client.parser import text_string_to_metric_families
+
+    from coordinator.metrics import FleetCollector
+
+    fleet = Fleet(Policy(), hint_max_age_s=5.0)
+    fleet.nodes[NODE] = NodeRecord(NODE, "127.0.0.1:7101", connected=True, synced=True, epoch=3, sequence=9)
+    registry = CollectorRegistry()
+    registry.register(FleetCollector(fleet, clock=lambda: 0.0))
+
+    def scrape() -> dict[str, float]:
+        text = generate_latest(registry).decode()
+        return {s.name: s.value for f in text_string_to_metric_families(text) for s in f.samples}
+
+    assert fleet.add_hint(b"kelp-late", NODE, 3, 10, now=0.0) and fleet.add_hint(b"kelp-later", NODE, 3, 11, now=4.0)
+    before = scrape()
+    assert before["shardsieve_coordinator_hints"] == 2 and before["shardsieve_coordinator_hints_expired_total"] == 0
+    assert len(fleet.expire_hints(now=6.0)) == 1     # the first is 6 s old, past the 5 s bound; never applied
+    after = scrape()
+    assert after["shardsieve_coordinator_hints"] == 1 and after["shardsieve_coordinator_hints_expired_total"] == 1
