@@ -34,7 +34,8 @@ def test_reads_writes_deletes_and_wasted_probes(tmp_path) -> None:
     # A deliberately loose filter (fpr 0.2, small capacity) so that false positives, and so
     # wasted probes, actually occur in a short run.
     with LocalCluster(tmp_path, nodes=4, capacity=400, fpr=0.2, push_interval_ms=50,
-                      extra_coordinator_args=["--min-capacity", "100", "--auto-rebuild", "false"]) as cluster:
+                      extra_coordinator_args=["--min-capacity", "100", "--auto-rebuild", "false",
+                                              "--locate-threads", "2"]) as cluster:
         router = cluster.router()
         node_ids = sorted(cluster.node_handles)
 
@@ -62,6 +63,22 @@ def test_reads_writes_deletes_and_wasted_probes(tmp_path) -> None:
             return all(any(c.node_id == direct[k] for c in r.candidates) for k, r in zip(direct, replies))
 
         wait_until(routable, timeout=10, message="directly written keys routable")
+        # A batch large enough to be matched in slices on two threads answers exactly as the
+        # same keys asked in batches of 1,000 (matched on the calling thread).
+        # (Retried: a node turning stale between the two calls would change both lists.)
+        big = list(direct) + [f"absent-{i:05d}".encode() for i in range(20_000)]
+
+        def lists(results: list) -> list[list[tuple[str, bool]]]:
+            return [[(c.node_id, c.stale) for c in r.candidates] for r in results]
+
+        def big_batch_agrees() -> list | None:
+            whole = router.LocateBatch(routing_pb2.LocateBatchRequest(keys=big), timeout=30).results
+            pieces = [r for lo in range(0, len(big), 1000) for r in router.LocateBatch(
+                routing_pb2.LocateBatchRequest(keys=big[lo:lo + 1000]), timeout=10).results]
+            return list(whole) if lists(whole) == lists(pieces) else None
+
+        whole = wait_until(big_batch_agrees, timeout=30, message="large batch agrees with small batches")
+        assert all(any(c.node_id == direct[k] for c in r.candidates) for k, r in zip(direct, whole))
         for key in direct:
             reply = _read(router, history, key)
             assert reply.found and reply.node_id == direct[key]
