@@ -484,6 +484,17 @@ class CoordinatorSync:
         node.counters.delta_bytes += len(d.payload)
         return [self._ack(node)]
 
+    @staticmethod
+    def _replica_holds(node: _Node, epoch: int, sequence: int, checksum: int) -> bool:
+        """Whether the replica already holds what a snapshot at (epoch, sequence) describes: the
+        same history at or past that sequence. At the very same sequence the checksums must
+        agree too; if they differ the replica diverged from the node and the snapshot replaces
+        it. (Behind the replica's sequence there is nothing to compare: every delta since was
+        verified against the node's checksum when it was applied.)"""
+        if not node.has_replica or node.replica_foreign or epoch != node.epoch or sequence > node.sequence:
+            return False
+        return sequence < node.sequence or checksum == node.checksum
+
     def _already_have(self, node: _Node, c: filter_pb2.SnapshotChunk) -> list[sync_pb2.CoordinatorMessage]:
         """Replies to a snapshot that is not newer than the replica: confirm where we are."""
         out = []
@@ -507,8 +518,7 @@ class CoordinatorSync:
         if asm is None or c.snapshot_id != asm.snapshot_id:
             if c.snapshot_id <= node.last_snapshot_id or (asm is not None and c.snapshot_id < asm.snapshot_id):
                 return []   # a late chunk of an attempt already settled or superseded
-            if node.has_replica and c.epoch == node.epoch and c.sequence <= node.sequence \
-                    and not node.replica_foreign:
+            if self._replica_holds(node, int(c.epoch), int(c.sequence), int(c.checksum)):
                 node.last_snapshot_id = c.snapshot_id
                 return self._already_have(node, c)
             if not c.HasField("geometry"):
@@ -535,8 +545,7 @@ class CoordinatorSync:
         asm.last_chunk_at = now
         if not asm.assembler.complete:
             return []
-        if node.has_replica and asm.epoch == node.epoch and asm.sequence <= node.sequence \
-                and not node.replica_foreign:
+        if self._replica_holds(node, asm.epoch, asm.sequence, asm.checksum):
             # deltas moved the replica past this snapshot while it assembled: installing it
             # would take back changes already applied (and keys already routable)
             node.assembly = None

@@ -378,3 +378,21 @@ def test_request_rebuild_refuses_bad_sizes_and_unknown_nodes() -> None:
         sync.request_rebuild(NODE, 10, 1.5, "x", 0.0)
     with pytest.raises(KeyError):
         sync.request_rebuild("node-nobody", 10, 0.01, "x", 0.0)
+
+
+def test_a_snapshot_at_the_replica_position_with_another_checksum_replaces_the_replica() -> None:
+    """Same epoch and sequence, different filter: the replica diverged from the node, so the
+    node's verified snapshot wins (ARCHITECTURE.md promise 1: the replica must hold every key
+    the node's filter holds). The same snapshot with the replica's own checksum is only acked."""
+    sync, sink, node = synced(keys=["box-1", "box-2"])
+    same = node.snapshot()
+    out = send_all(sync, same)
+    assert kinds(out) == ["ack"] and sync.node(NODE).counters.snapshots_installed == 1   # nothing to do
+    extra = [p for p in reference_positions("box-99", G) if not node.bloom.bits[p]]
+    node.bloom.apply(ChangeSet.of(extra, []))   # the node's filter moves without a delta
+    before = sink.replicas[NODE].copy()
+    assert before != node.bloom and sync.node(NODE).sequence == node.sequence
+    out = send_all(sync, node.snapshot(chunk=8))
+    assert kinds(out) == ["ack"] and sync.node(NODE).counters.snapshots_installed == 2
+    assert sink.replicas[NODE] == node.bloom and sync.node(NODE).checksum == node.bloom.checksum
+    assert all(sink.replicas[NODE].bits[p] for p in reference_positions("box-99", G))
