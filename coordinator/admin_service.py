@@ -89,6 +89,10 @@ class AdminService(admin_pb2_grpc.AdminServicer):
         self.clock = clock
         self.wall = wall
 
+    def set_token(self, token: str) -> None:
+        """Require `token` from now on ('' : none); used when the token file is re-read."""
+        self._check = TokenCheck(token)
+
     def _guard(self, context: grpc.ServicerContext) -> None:
         if not self._check.allowed(context.invocation_metadata()):
             context.abort(grpc.StatusCode.UNAUTHENTICATED,

@@ -26,6 +26,7 @@ from coordinator.saturation import Decision, RebuildPlan, SaturationMonitor
 from coordinator.settings import CoordinatorSettings
 from coordinator.sync_service import SyncService
 from shardsieve import logs, security
+from shardsieve.config import ConfigError
 from shardsieve.daemon_runner import run_until_signalled
 from shardsieve.v1 import admin_pb2_grpc, sync_pb2_grpc
 
@@ -48,30 +49,26 @@ class CoordinatorDaemon:
                            locate_threads=settings.locate_threads)
         self.metrics = Metrics(self.fleet)
         tls = settings.tls_files()
+        self._secrets = secrets = settings.secrets()
         self.prober = Prober(settings.probe_threads, credentials=tls.channel_credentials(),
-                             metadata=security.auth_metadata(settings.secret("node_storage_token")))
+                             metadata=security.auth_metadata(secrets["node-storage-token"]))
         self.router = Router(self.fleet, self.prober, read_deadline_s=settings.read_deadline_ms / 1000.0,
                              write_deadline_s=settings.write_deadline_ms / 1000.0, metrics=self.metrics,
                              max_key_bytes=settings.max_key_bytes, max_value_bytes=settings.max_value_bytes,
                              max_batch_keys=settings.max_batch_keys)
-        node_tokens = settings.node_tokens()
+        node_tokens = secrets["node-token"]
         self.node_auth = "certificate" if settings.tls_client_auth else "token" if node_tokens else "open"
-        self.sync = SyncService(self.fleet, metrics=self.metrics,
-                                authorizer=security.NodeAuthorizer(self.node_auth, node_tokens),
+        self.node_authorizer = security.NodeAuthorizer(self.node_auth, node_tokens)
+        self.sync = SyncService(self.fleet, metrics=self.metrics, authorizer=self.node_authorizer,
                                 limiter=security.StreamLimiter(settings.max_streams_per_peer),
                                 limits=settings.sync_limits())
-        self.admin = AdminService(self.fleet, settings.id, settings.admin_token(), self.start_rebuild,
+        self.admin = AdminService(self.fleet, settings.id, secrets["token"], self.start_rebuild,
                                   forget_node=self.sync.forget)
-        write_token, read_token = settings.secret("write_token"), settings.secret("read_token")
-        guard = security.TokenGuard({
-            "/shardsieve.v1.Admin/": settings.admin_token(),
-            "/shardsieve.v1.Router/Write": write_token, "/shardsieve.v1.Router/Remove": write_token,
-            "/shardsieve.v1.Router/Locate": read_token, "/shardsieve.v1.Router/LocateBatch": read_token,
-            "/shardsieve.v1.Router/Read": read_token})
+        # Installed even with no token configured, so a reload (SIGHUP) can start requiring one.
+        self.guard = security.TokenGuard(self._token_rules(secrets))
         self.server = grpc.server(futures.ThreadPoolExecutor(max_workers=settings.grpc_workers,
                                                              thread_name_prefix="grpc"),
-                                  interceptors=[guard, security.DecodeGuard()] if guard.active
-                                  else [security.DecodeGuard()],
+                                  interceptors=[self.guard, security.DecodeGuard()],
                                   options=[("grpc.max_receive_message_length", settings.max_message_bytes),
                                            ("grpc.max_send_message_length", 64 << 20)])
         add_router_service(RouterService(self.router), self.server)
@@ -97,6 +94,36 @@ class CoordinatorDaemon:
     def _set_health(self, status: int) -> None:
         for name in HEALTH_SERVICES:
             self.health.set(name, status)
+
+    # -- tokens --------------------------------------------------------------------------------------
+    @staticmethod
+    def _token_rules(secrets: dict[str, Any]) -> dict[str, str]:
+        write, read = secrets["write-token"], secrets["read-token"]
+        return {"/shardsieve.v1.Admin/": secrets["token"],
+                "/shardsieve.v1.Router/Write": write, "/shardsieve.v1.Router/Remove": write,
+                "/shardsieve.v1.Router/Locate": read, "/shardsieve.v1.Router/LocateBatch": read,
+                "/shardsieve.v1.Router/Read": read}
+
+    def reload_secrets(self) -> list[str]:
+        """Read the token files again and apply them (SIGHUP): returns the names of the settings
+        whose token changed. All or nothing: a bad or unreadable file raises ConfigError and the
+        tokens in force stay. Tokens given as values (flag, environment, config table) cannot
+        change; the node authentication mode is fixed at start."""
+        new = self.settings.secrets()
+        if self.node_auth == "token" and not new["node-token"]:
+            raise ConfigError("setting 'node-token-file': no node tokens left; this coordinator authenticates "
+                              "nodes by token (restart it to change that)")
+        changed = sorted(name for name in new if new[name] != self._secrets[name])
+        if self.node_auth == "token":
+            self.node_authorizer.set_tokens(new["node-token"])
+        elif new["node-token"] and "node-token" in changed:
+            log.warning("node tokens are configured now but take effect only after a restart",
+                        extra={"node_auth": self.node_auth})
+        self.guard.update(self._token_rules(new))
+        self.admin.set_token(new["token"])
+        self.prober.set_metadata(security.auth_metadata(new["node-storage-token"]))
+        self._secrets = new
+        return changed
 
     # -- rebuilds ------------------------------------------------------------------------------------
     def start_rebuild(self, plan: RebuildPlan, now: float) -> None:
@@ -136,9 +163,9 @@ class CoordinatorDaemon:
         self._set_health(health_pb2.HealthCheckResponse.SERVING)
         log.info("serving", extra={"address": self.address, "mode": self.fleet.policy.mode,
                                    "known_nodes": len(self.fleet.nodes),
-                                   "admin_token": "configured" if self.settings.admin_token() else "none",
-                                   "read_token": "configured" if self.settings.secret("read_token") else "none",
-                                   "write_token": "configured" if self.settings.secret("write_token") else "none",
+                                   "admin_token": "configured" if self._secrets["token"] else "none",
+                                   "read_token": "configured" if self._secrets["read-token"] else "none",
+                                   "write_token": "configured" if self._secrets["write-token"] else "none",
                                    "tls": "mutual" if self.settings.tls_client_auth else
                                    "server" if self.settings.tls_files().enabled else "off",
                                    "node_auth": self.node_auth})

@@ -51,6 +51,10 @@ class Prober:
         self._lock = threading.Lock()
         self._stubs: dict[str, tuple[grpc.Channel, storage_pb2_grpc.NodeStorageStub]] = {}
 
+    def set_metadata(self, metadata: tuple[tuple[str, str], ...]) -> None:
+        """Metadata (the nodes' storage token) for every probe from now on."""
+        self._metadata = metadata
+
     def stub(self, address: str) -> storage_pb2_grpc.NodeStorageStub:
         with self._lock:
             entry = self._stubs.get(address)

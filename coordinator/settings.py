@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 from coordinator.policy import MODES, Policy, PolicyError
 from shardsieve.config import ConfigError, check_address, setting
@@ -148,7 +149,8 @@ class CoordinatorSettings:
         return parse_node_tokens(self.node_token, self.node_token_file)
 
     def secret(self, name: str) -> str:
-        """'read_token' / 'write_token' / 'node_storage_token': the value, else its file's first line; never logged."""
+        """'token' / 'read_token' / 'write_token' / 'node_storage_token': the value, else its file's first
+        line; never logged."""
         from shardsieve.security import read_token
 
         return read_token(getattr(self, name), getattr(self, f"{name}_file"), name.replace("_", "-"))
@@ -160,13 +162,15 @@ class CoordinatorSettings:
                       min_capacity=self.min_capacity)
 
     def admin_token(self) -> str:
-        """The configured token (flag/env/file value, else the token file's first line); never logged."""
-        if self.token:
-            return self.token
-        if self.token_file is not None:
-            lines = self.token_file.read_text().splitlines()
-            return lines[0].strip() if lines else ""
-        return ""
+        """The admin token (flag/env/file value, else the token file's first line); never logged."""
+        return self.secret("token")
+
+    def secrets(self) -> dict[str, Any]:
+        """Every token setting as it stands now (token files read again): what a reload applies.
+        ConfigError names a bad or unreadable one, never a value."""
+        return {"token": self.admin_token(), "read-token": self.secret("read_token"),
+                "write-token": self.secret("write_token"), "node-storage-token": self.secret("node_storage_token"),
+                "node-token": self.node_tokens()}
 
     def expected_nodes(self) -> dict[str, str]:
         return dict(item.split("=", 1) for item in self.expect_node)

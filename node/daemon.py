@@ -46,11 +46,12 @@ class NodeDaemon:
                              push_interval=settings.push_interval_ms / 1000.0,
                              limits=Limits(settings.max_key_bytes, settings.max_value_bytes, settings.max_batch),
                              scan_batch=settings.scan_batch)
-        guard = security.TokenGuard({"/shardsieve.v1.NodeStorage/": settings.secret("token")})
+        self._secrets = settings.secrets()
+        # Installed even with no token configured, so a reload (SIGHUP) can start requiring one.
+        self.guard = security.TokenGuard({"/shardsieve.v1.NodeStorage/": self._secrets["token"]})
         self.server = grpc.server(futures.ThreadPoolExecutor(max_workers=settings.grpc_workers,
                                                              thread_name_prefix="grpc"),
-                                  interceptors=[guard, security.DecodeGuard()] if guard.active
-                                  else [security.DecodeGuard()],
+                                  interceptors=[self.guard, security.DecodeGuard()],
                                   options=[("grpc.max_receive_message_length", 64 << 20),
                                            ("grpc.max_send_message_length", 64 << 20)])
         self.health = health.HealthServicer()
@@ -100,9 +101,22 @@ class NodeDaemon:
                                 backoff_min=self.settings.reconnect_min_ms / 1000.0,
                                 backoff_max=self.settings.reconnect_max_ms / 1000.0,
                                 credentials=self.settings.tls_files().channel_credentials(),
-                                metadata=security.auth_metadata(self.settings.secret("sync_token")))
+                                metadata=security.auth_metadata(self._secrets["sync-token"]))
             driver.start()
             self.drivers.append(driver)
+
+    def reload_secrets(self) -> list[str]:
+        """Read the token files again and apply them (SIGHUP): returns the names of the settings
+        whose token changed. A bad or unreadable file raises ConfigError and the tokens in force
+        stay. The storage token applies to the next call; the sync token to the next (re)connect
+        of each sync stream (an open stream was authenticated when it opened)."""
+        new = self.settings.secrets()
+        changed = sorted(name for name in new if new[name] != self._secrets[name])
+        self.guard.update({"/shardsieve.v1.NodeStorage/": new["token"]})
+        for driver in self.drivers:
+            driver.metadata = security.auth_metadata(new["sync-token"])
+        self._secrets = new
+        return changed
 
     def stop(self, grace: float = 5.0) -> None:
         if self._stopped.is_set():

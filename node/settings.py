@@ -108,6 +108,10 @@ class NodeSettings:
 
         return read_token(getattr(self, name), getattr(self, f"{name}_file"), name.replace("_", "-"))
 
+    def secrets(self) -> dict[str, str]:
+        """Both token settings as they stand now (token files read again): what a reload applies."""
+        return {"token": self.secret("token"), "sync-token": self.secret("sync_token")}
+
     @property
     def storage_address(self) -> str:
         """The address put in Hello; note a listen port 0 is resolved by the daemon."""

@@ -1,4 +1,5 @@
-"""The process lifecycle both daemons share: start, serve until SIGTERM/SIGINT, stop cleanly."""
+"""The process lifecycle both daemons share: start, serve until SIGTERM/SIGINT, stop cleanly;
+SIGHUP re-reads the token files (see docs/security.md, "Rotating tokens")."""
 
 from __future__ import annotations
 
@@ -11,6 +12,8 @@ from typing import Callable, Protocol, TypeVar
 
 class Daemon(Protocol):
     def stop(self, grace: float = ...) -> None: ...
+
+    def reload_secrets(self) -> list[str]: ...
 
 
 D = TypeVar("D", bound=Daemon)
@@ -26,13 +29,18 @@ def run_until_signalled(role: str, log: logging.Logger, build: Callable[[], D],
     `quiet_stops` while starting (e.g. a signal during the startup filter load): exit 0.
     """
     stop = threading.Event()
+    reload = threading.Event()
 
     def on_signal(signum: int, _frame: object) -> None:
         log.info("signal received", extra={"signal": signal.Signals(signum).name})
         stop.set()
 
+    def on_hangup(_signum: int, _frame: object) -> None:
+        reload.set()     # handled by the main loop, outside the signal handler
+
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
+    signal.signal(signal.SIGHUP, on_hangup)
     try:
         daemon = build()
     except startup_errors as exc:
@@ -41,8 +49,10 @@ def run_until_signalled(role: str, log: logging.Logger, build: Callable[[], D],
         return 1
     try:
         start(daemon, stop)
-        while not stop.wait(0.5):
-            pass
+        while not stop.wait(0.2):
+            if reload.is_set():
+                reload.clear()
+                _reload(daemon, log)
     except quiet_stops as exc:
         log.info("stopped before serving", extra={"reason": str(exc)})
         daemon.stop(grace=1.0)
@@ -53,3 +63,13 @@ def run_until_signalled(role: str, log: logging.Logger, build: Callable[[], D],
         return 1
     daemon.stop()
     return 0
+
+
+def _reload(daemon: Daemon, log: logging.Logger) -> None:
+    """Apply the token files as they are now; a bad one is logged and changes nothing."""
+    try:
+        changed = daemon.reload_secrets()
+    except (ValueError, OSError) as exc:      # ConfigError is a ValueError
+        log.error("token files not reloaded; the tokens in force stay", extra={"error": str(exc)})
+        return
+    log.info("token files reloaded", extra={"changed": changed or "none"})

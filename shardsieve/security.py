@@ -280,6 +280,13 @@ class NodeAuthorizer:
         self.mode = mode
         self._tokens = dict(node_tokens or {})
 
+    def set_tokens(self, node_tokens: Mapping[str, str]) -> None:
+        """Replace the node tokens (rotation; streams already open stay open). The mode stays:
+        token mode refuses an empty set, since no node could connect any more."""
+        if self.mode == "token" and not node_tokens:
+            raise ValueError("token mode needs at least one node token")
+        self._tokens = dict(node_tokens)
+
     def refusal(self, node_id: str, who: PeerIdentity) -> str | None:
         """None when `who` may open node_id's stream, else the reason (safe to log and send)."""
         if self.mode == "certificate":
@@ -366,6 +373,11 @@ class TokenGuard(grpc.ServerInterceptor):
     def __init__(self, rules: Mapping[str, str], on_refused: Callable[[str], None] | None = None) -> None:
         self._rules = {k: v for k, v in rules.items() if v}
         self._on_refused = on_refused
+
+    def update(self, rules: Mapping[str, str]) -> None:
+        """Replace every rule at once (token rotation): a call is checked against the old rules
+        or the new ones, never a mix."""
+        self._rules = {k: v for k, v in rules.items() if v}
 
     @property
     def active(self) -> bool:

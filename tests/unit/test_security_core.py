@@ -125,6 +125,16 @@ def test_token_mode_checks_per_node_tokens_and_never_echoes_them() -> None:
     assert "tok-one" not in PeerIdentity("h", token="tok-one").describe()
 
 
+def test_node_tokens_can_be_replaced_but_token_mode_never_emptied() -> None:
+    auth = NodeAuthorizer("token", {"node-1": "tok-old"})
+    auth.set_tokens({"node-1": "tok-new"})
+    assert auth.refusal("node-1", PeerIdentity("h", token="tok-new")) is None
+    assert auth.refusal("node-1", PeerIdentity("h", token="tok-old")) is not None
+    with pytest.raises(ValueError, match="at least one"):
+        auth.set_tokens({})
+    assert auth.refusal("node-1", PeerIdentity("h", token="tok-new")) is None   # refused change: nothing changed
+
+
 def test_open_mode_identity_is_the_peer_host() -> None:
     auth = NodeAuthorizer("open")
     assert auth.refusal("anything", PeerIdentity("h")) is None
@@ -295,3 +305,33 @@ def test_second_stream_needs_the_same_identity_as_the_connected_one() -> None:
         svc._identity["n1"] = svc.authorizer.identity_key(first)
         assert svc._refusal("n1", same) is None, mode               # reconnect takeover
         assert svc._refusal("n1", other) is not None, mode          # refused while n1 is connected
+
+
+def test_token_guard_rules_can_be_replaced_at_once() -> None:
+    """Rotation: after update() the new token passes and the old one is refused; a guard made
+    without tokens starts checking once it is given one."""
+    rec = _Recorder()
+    guard = TokenGuard({})
+    server = grpc.server(futures.ThreadPoolExecutor(2), interceptors=[guard, DecodeGuard()])
+    health_pb2_grpc.add_HealthServicer_to_server(rec, server)
+    port = server.add_insecure_port("127.0.0.1:0")
+    server.start()
+    try:
+        with grpc.insecure_channel(f"127.0.0.1:{port}") as channel:
+            stub = health_pb2_grpc.HealthStub(channel)
+
+            def code(token: str) -> grpc.StatusCode:
+                metadata = (("authorization", f"Bearer {token}"),) if token else ()
+                try:
+                    stub.Check(health_pb2.HealthCheckRequest(), timeout=3, metadata=metadata)
+                except grpc.RpcError as exc:
+                    return exc.code()
+                return grpc.StatusCode.OK
+
+            assert code("") == grpc.StatusCode.OK and not guard.active
+            guard.update({"/grpc.health.v1.Health/": "kelp-one"})
+            assert code("") == grpc.StatusCode.UNAUTHENTICATED and code("kelp-one") == grpc.StatusCode.OK
+            guard.update({"/grpc.health.v1.Health/": "kelp-two"})
+            assert code("kelp-one") == grpc.StatusCode.UNAUTHENTICATED and code("kelp-two") == grpc.StatusCode.OK
+    finally:
+        server.stop(0)
