@@ -162,7 +162,7 @@ class CoordinatorDaemon:
         self._monitor_thread.start()
         self._set_health(health_pb2.HealthCheckResponse.SERVING)
         log.info("serving", extra={"address": self.address, "mode": self.fleet.policy.mode,
-                                   "known_nodes": len(self.fleet.nodes),
+                                   "known_nodes": len(self.fleet.nodes), "locate_threads": self.fleet.index.workers,
                                    "admin_token": "configured" if self._secrets["token"] else "none",
                                    "read_token": "configured" if self._secrets["read-token"] else "none",
                                    "write_token": "configured" if self._secrets["write-token"] else "none",

@@ -10,7 +10,8 @@ Row width fits the group size so memory per node stays about m/8 bytes: uint8 ro
 to 8 nodes, uint16, uint32, uint64, then several uint64 words per row.
 
 Pure data structure: no I/O, no clocks. One lock makes every mutation atomic with respect to
-lookups (a lookup never sees a half-installed column).
+lookups (a lookup never sees a half-installed column). A large batch is matched in slices on a
+small thread pool of its own, still under that lock (see RoutingIndex).
 """
 
 from __future__ import annotations
