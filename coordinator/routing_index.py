@@ -294,6 +294,8 @@ class RoutingIndex:
         if workers < 1:
             raise RoutingIndexError(f"workers must be at least 1, got {workers}")
         with self._lock:
+            if workers == self._workers:
+                return                    # keep the pool and its threads
             self._workers = workers
             if self._pool is not None:   # a new count gets a pool of its own size
                 self._pool.shutdown(wait=False)
