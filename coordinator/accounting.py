@@ -4,42 +4,17 @@ For every read the coordinator knows, per node, whether its filter was consulted
 was probed, and whether the probe found the key. From that it derives:
 - wasted probes: probes that found nothing (whatever the reason the node was listed),
 - observed FPR: filter false positives over the lookups checked against that node's filter
-  for keys it did not hold, with a Wilson score 95% interval (Wilson, "Probable inference,
-  the law of succession, and statistical inference", JASA 1927),
-- predicted FPR: fill^k (the standard Bloom filter estimate from the fraction of set bits,
-  Broder & Mitzenmacher 2004),
-- avoided fan-out = 1 - probes / (lookups x nodes).
+  for keys it did not hold, with a Wilson score 95% interval (shardsieve/intervals.py).
+Predicted FPR (fill^k) lives in shardsieve/sizing.py, avoided fan-out in shardsieve/fanout.py.
 """
 
 from __future__ import annotations
 
-import math
 import threading
 from dataclasses import dataclass, field
 from typing import Iterable
 
-Z95 = 1.959963984540054  # two-sided 95% normal quantile (standard normal table)
-
-
-def wilson_interval(successes: int, trials: int, z: float = Z95) -> tuple[float, float]:
-    """Wilson score interval for a binomial proportion; (0, 1) when there are no trials."""
-    if trials < 0 or successes < 0 or successes > trials:
-        raise ValueError(f"need 0 <= successes <= trials, got {successes} of {trials}")
-    if trials == 0:
-        return 0.0, 1.0
-    p = successes / trials
-    z2 = z * z
-    denom = 1.0 + z2 / trials
-    centre = (p + z2 / (2 * trials)) / denom
-    half = z * math.sqrt(p * (1 - p) / trials + z2 / (4 * trials * trials)) / denom
-    return max(0.0, centre - half), min(1.0, centre + half)
-
-
-def predicted_fpr(fill: float, hashes: int) -> float:
-    """fill^k: the chance all k positions of a key not in the set are already set."""
-    if not 0.0 <= fill <= 1.0:
-        raise ValueError(f"fill must be within [0, 1], got {fill}")
-    return float(fill ** hashes)
+from shardsieve.intervals import wilson_interval
 
 
 @dataclass
@@ -149,9 +124,3 @@ class Accounting:
         with self._lock:
             return ({k: NodeCounters(**vars(v)) for k, v in self.nodes.items()}, FleetTotals(**vars(self.totals)))
 
-
-def avoided_fanout(lookups: int, probes: int, nodes: int) -> float:
-    """1 - probes / (lookups x nodes); 0 when nothing was looked up."""
-    if lookups <= 0 or nodes <= 0:
-        return 0.0
-    return 1.0 - probes / (lookups * nodes)

@@ -13,11 +13,12 @@ from typing import Any, Callable
 
 import grpc
 
-from coordinator.accounting import avoided_fanout, wilson_interval
-from coordinator.fleet import Fleet, NodeRecord
-from coordinator.policy import Policy, PolicyError
-from coordinator.saturation import Decision, RebuildPlan, saturation_reasons
+from shardsieve.coordinator.fleet import Fleet, NodeRecord
+from shardsieve.coordinator.policy import Policy, PolicyError
+from shardsieve.coordinator.saturation import Decision, RebuildPlan, saturation_reasons
 from shardsieve import security
+from shardsieve.fanout import avoided_fanout
+from shardsieve.intervals import wilson_interval
 from shardsieve.limits import fill_implausibility
 from shardsieve.v1 import admin_pb2, admin_pb2_grpc
 
@@ -80,7 +81,7 @@ class AdminService(admin_pb2_grpc.AdminServicer):
                  wall: Callable[[], float] = time.time,
                  forget_node: Callable[[str, bool], dict[str, Any]] | None = None) -> None:
         """forget_node(node_id, force): the daemon passes SyncService.forget (KeyError: unknown,
-        coordinator.sync_service.NodeConnected: refused); without it the fleet alone is used."""
+        shardsieve.coordinator.sync_service.NodeConnected: refused); without it the fleet alone is used."""
         self.fleet = fleet
         self.forget_node = forget_node or self._forget_in_fleet
         self.coordinator_id = coordinator_id
@@ -108,7 +109,7 @@ class AdminService(admin_pb2_grpc.AdminServicer):
         return admin_pb2.FleetStatusReply(
             coordinator_id=self.coordinator_id, mode=self.fleet.policy.mode,
             nodes=[_status(self.fleet, r, now) for r in recs], lookups=totals.lookups, probes=totals.probes,
-            wasted_probes=totals.wasted_probes, avoided_fanout=avoided_fanout(totals.lookups, totals.probes, len(recs)),
+            wasted_probes=totals.wasted_probes, avoided_fanout=avoided_fanout(probes=totals.probes, lookups=totals.lookups, nodes=len(recs)),
             observed_fpr=totals.false_positives / totals.lookups_checked if totals.lookups_checked else 0.0,
             observed_fpr_interval=admin_pb2.WilsonInterval(low=low, high=high),
             rebuilds_in_progress=len(self.fleet.monitor.in_flight))
@@ -179,7 +180,7 @@ class AdminService(admin_pb2_grpc.AdminServicer):
 
     def _forget_in_fleet(self, node_id: str, force: bool) -> dict[str, Any]:
         """ForgetNode without a sync service (in-process use): the fleet's record decides."""
-        from coordinator.sync_service import NodeConnected
+        from shardsieve.coordinator.sync_service import NodeConnected
 
         rec = next((r for r in self.fleet.records() if r.node_id == node_id), None)
         if rec is None:
@@ -192,7 +193,7 @@ class AdminService(admin_pb2_grpc.AdminServicer):
 
     def ForgetNode(self, request: admin_pb2.ForgetNodeRequest, context: grpc.ServicerContext) -> admin_pb2.ForgetNodeReply:
         self._guard(context)
-        from coordinator.sync_service import NodeConnected
+        from shardsieve.coordinator.sync_service import NodeConnected
 
         node_id = request.node_id
         if not node_id:

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import click
 
-from coordinator.settings import ENV_PREFIX, SECTION, CoordinatorSettings
+from shardsieve.coordinator.settings import ENV_PREFIX, SECTION, CoordinatorSettings
 from shardsieve.config import ConfigError, env_name, load_settings
 
 _EPILOG = ("Every setting can also come from the [coordinator] table of the --config TOML file (keys are "
@@ -91,6 +91,6 @@ def coordinator_command(config_file: Path | None, id_: str | None, **flags: obje
     except ConfigError as exc:
         click.echo(f"shardsieve coordinator: {exc}", err=True)
         sys.exit(2)
-    from coordinator.daemon import run
+    from shardsieve.coordinator.daemon import run
 
     sys.exit(run(settings))

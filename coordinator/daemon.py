@@ -17,14 +17,14 @@ from typing import Any
 import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
 
-from coordinator.admin_service import AdminService
-from coordinator.fleet import Fleet
-from coordinator.metrics import Metrics
-from coordinator.probes import Prober
-from coordinator.router_service import Router, RouterService, add_router_service
-from coordinator.saturation import Decision, RebuildPlan, SaturationMonitor
-from coordinator.settings import CoordinatorSettings
-from coordinator.sync_service import SyncService
+from shardsieve.coordinator.admin_service import AdminService
+from shardsieve.coordinator.fleet import Fleet
+from shardsieve.coordinator.metrics import Metrics
+from shardsieve.coordinator.probes import Prober
+from shardsieve.coordinator.router_service import Router, RouterService, add_router_service
+from shardsieve.coordinator.saturation import Decision, RebuildPlan, SaturationMonitor
+from shardsieve.coordinator.settings import CoordinatorSettings
+from shardsieve.coordinator.sync_service import SyncService
 from shardsieve import logs, security
 from shardsieve.config import ConfigError
 from shardsieve.daemon_runner import run_until_signalled

@@ -24,15 +24,16 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from coordinator.accounting import Accounting, ProbeOutcome
-from coordinator.hints import Hint, HintTable
-from coordinator.policy import Policy
-from coordinator.routing_index import RoutingIndex
-from coordinator.saturation import Decision, NodeView, SaturationMonitor
+from shardsieve.coordinator.accounting import Accounting, ProbeOutcome
+from shardsieve.coordinator.hints import Hint, HintTable
+from shardsieve.coordinator.policy import Policy
+from shardsieve.coordinator.routing_index import RoutingIndex
+from shardsieve.coordinator.saturation import Decision, NodeView, SaturationMonitor
 from shardsieve.changeset import ChangeSet
 from shardsieve.codec import write_varint
 from shardsieve.geometry import Geometry
 from shardsieve.hashing import positions as hash_positions
+from shardsieve.sizing import fill_fpr
 
 log = logging.getLogger("shardsieve.coordinator.fleet")
 
@@ -70,7 +71,7 @@ class NodeRecord:
 
     @property
     def predicted_fpr(self) -> float:
-        return float(self.fill ** self.geometry.hashes) if self.geometry else 0.0
+        return fill_fpr(self.fill, self.geometry.hashes) if self.geometry else 0.0
 
 
 def varint(value: int) -> bytes:

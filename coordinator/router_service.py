@@ -15,9 +15,9 @@ from typing import Callable
 
 import grpc
 
-from coordinator.accounting import ProbeOutcome
-from coordinator.fleet import Candidate, Fleet
-from coordinator.probes import ProbeResult, Prober
+from shardsieve.coordinator.accounting import ProbeOutcome
+from shardsieve.coordinator.fleet import Candidate, Fleet
+from shardsieve.coordinator.probes import ProbeResult, Prober
 from shardsieve.v1 import routing_pb2, storage_pb2
 
 log = logging.getLogger("shardsieve.coordinator.router")

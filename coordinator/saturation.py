@@ -16,9 +16,10 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
-from coordinator.accounting import wilson_interval
-from coordinator.policy import Policy
+from shardsieve.coordinator.policy import Policy
 from shardsieve.geometry import Geometry, GeometryError, geometry_for
+from shardsieve.intervals import wilson_interval
+from shardsieve.sizing import fill_fpr
 
 
 @dataclass(frozen=True)
@@ -38,7 +39,7 @@ class NodeView:
 
     @property
     def predicted_fpr(self) -> float:
-        return float(self.fill ** self.hashes)
+        return fill_fpr(self.fill, self.hashes)
 
 
 @dataclass(frozen=True)

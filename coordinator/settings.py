@@ -7,7 +7,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from coordinator.policy import MODES, Policy, PolicyError
+from shardsieve.coordinator.policy import MODES, Policy, PolicyError
 from shardsieve.config import ConfigError, check_address, setting
 
 ENV_PREFIX = "SHARDSIEVE_COORDINATOR_"

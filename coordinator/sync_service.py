@@ -17,7 +17,7 @@ from typing import Any, Callable, Iterator
 
 import grpc
 
-from coordinator.fleet import Fleet
+from shardsieve.coordinator.fleet import Fleet
 from shardsieve.limits import SyncLimits, check_node_message
 from shardsieve.security import NodeAuthorizer, PeerIdentity, StreamLimiter, peer_identity
 from shardsieve.sync.coordinator_side import CoordinatorSync, CoordinatorSyncConfig

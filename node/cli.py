@@ -7,7 +7,7 @@ from pathlib import Path
 
 import click
 
-from node.settings import ENV_PREFIX, SECTION, NodeSettings
+from shardsieve.node.settings import ENV_PREFIX, SECTION, NodeSettings
 from shardsieve.config import ConfigError, load_settings
 
 _EPILOG = ("Every setting can also come from the [node] table of the --config TOML file (keys are the "
@@ -94,6 +94,6 @@ def node_command(config_file: Path | None, id_: str | None, **flags: object) -> 
     except ConfigError as exc:
         click.echo(f"shardsieve node: {exc}", err=True)
         sys.exit(2)
-    from node.daemon import run
+    from shardsieve.node.daemon import run
 
     sys.exit(run(settings))

@@ -24,7 +24,7 @@ import time
 from dataclasses import dataclass, field
 from typing import Callable, Sequence
 
-from node.store import Store, StoreError
+from shardsieve.node.store import Store, StoreError
 from shardsieve import hashing
 from shardsieve.bloom import CountingBloomFilter
 from shardsieve.geometry import Geometry, geometry_for

@@ -18,11 +18,11 @@ from typing import Any
 import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
 
-from node.core import Limits, LoadCancelled, NodeCore
-from node.service import NodeStorageService
-from node.settings import NodeSettings
-from node.store import StoreError, open_store
-from node.sync_driver import SyncDriver
+from shardsieve.node.core import Limits, LoadCancelled, NodeCore
+from shardsieve.node.service import NodeStorageService
+from shardsieve.node.settings import NodeSettings
+from shardsieve.node.store import StoreError, open_store
+from shardsieve.node.sync_driver import SyncDriver
 from shardsieve import logs, security
 from shardsieve.daemon_runner import run_until_signalled
 from shardsieve.v1 import storage_pb2_grpc
@@ -80,7 +80,7 @@ class NodeDaemon:
         log.info("listening", extra={"address": self.address, "data": str(self.settings.data),
                                      "sync_level": self.settings.sync_level, "store": self.settings.store})
         if self.settings.metrics_port:
-            from node.metrics import start_metrics
+            from shardsieve.node.metrics import start_metrics
 
             host = self.settings.listen.rpartition(":")[0]
             self.metrics_server = start_metrics(self.core, host, self.settings.metrics_port,

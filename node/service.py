@@ -12,8 +12,8 @@ from typing import Callable, TypeVar
 
 import grpc
 
-from node.core import InvalidInput, NodeCore, NotReady, WriteResult
-from node.store import StoreError
+from shardsieve.node.core import InvalidInput, NodeCore, NotReady, WriteResult
+from shardsieve.node.store import StoreError
 from shardsieve.v1 import storage_pb2, storage_pb2_grpc
 
 log = logging.getLogger("shardsieve.node.service")

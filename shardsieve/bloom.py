@@ -14,7 +14,6 @@ combine with element-wise ANDs over contiguous rows.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 
 import numpy as np
@@ -22,8 +21,9 @@ import numpy.typing as npt
 from bitarray import bitarray
 
 from shardsieve import checksum as _checksum
-from shardsieve.changeset import ChangeSet
+from shardsieve.changeset import ChangeSet, sorted_unique
 from shardsieve.geometry import Geometry
+from shardsieve.sizing import estimated_keys, fill_fpr
 from shardsieve.hashing import CHUNK_KEYS, digests, key_positions, positions_from_digests, positions_kn
 
 _S3 = np.uint64(3)
@@ -168,19 +168,8 @@ def _positions_of_bytes(buf: npt.NDArray[np.uint8]) -> Positions:
     return np.concatenate(parts)
 
 
-def _sorted_unique(values: Positions) -> Positions:
-    """np.unique via sort + diff (much faster than np.unique's generic path for uint64)."""
-    if values.size == 0:
-        return np.zeros(0, dtype=np.uint64)
-    s = np.sort(values.ravel())
-    keep = np.empty(s.size, dtype=np.bool_)
-    keep[0] = True
-    np.not_equal(s[1:], s[:-1], out=keep[1:])
-    return s[keep]
-
-
 def _unique_counts(values: Positions) -> tuple[Positions, npt.NDArray[np.int64]]:
-    """Sorted distinct values and how often each occurs (sort based; see _sorted_unique)."""
+    """Sorted distinct values and how often each occurs (sort based, like changeset.sorted_unique)."""
     s = np.sort(values.ravel())
     if s.size == 0:
         return s.astype(np.uint64), np.zeros(0, dtype=np.int64)
@@ -272,7 +261,7 @@ class BloomFilter:
         if self._checksum is not None:
             new = pos.ravel()[_test_bits(self._buf, pos.ravel()) == 0]
             if new.size:
-                self._checksum ^= _checksum.xor_of(_sorted_unique(new))
+                self._checksum ^= _checksum.xor_of(sorted_unique(new))
         _set_bits(self._buf, pos)
 
     def contains(self, key: bytes | str) -> bool:
@@ -358,7 +347,7 @@ class BloomFilter:
 
     def predicted_fpr(self) -> float:
         """fill^k: the chance an absent key finds all k of its bits set."""
-        return float(self.fill() ** self.geometry.hashes)
+        return fill_fpr(self.fill(), self.geometry.hashes)
 
     def estimated_cardinality(self) -> float:
         """Swamidass & Baldi (2007): n = -(m/k) ln(1 - X/m), X set bits; inf when full."""
@@ -405,10 +394,7 @@ class BloomFilter:
 
 def estimated_cardinality(geometry: Geometry, set_bits: int) -> float:
     """Swamidass & Baldi (2007) estimate of the keys in a filter with set_bits bits set."""
-    m, k = geometry.bits, geometry.hashes
-    if set_bits >= m:
-        return math.inf
-    return -(m / k) * math.log1p(-set_bits / m)
+    return estimated_keys(geometry.bits, geometry.hashes, set_bits)
 
 
 class CountingBloomFilter:

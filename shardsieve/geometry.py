@@ -2,7 +2,7 @@
 
 A geometry is part of the wire contract: two filters can be compared, merged or
 replicated only when their geometries are equal. Sizes snap to a ladder of powers of two
-(ARCHITECTURE.md, "Geometries come from a ladder") so a fleet shares a handful of
+(docs/architecture.md#geometries-come-from-a-ladder) so a fleet shares a handful of
 geometries and range reduction becomes a shift.
 """
 
@@ -10,6 +10,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
+
+from shardsieve.sizing import optimal_bits, optimal_hashes
 
 if TYPE_CHECKING:  # pragma: no cover
     from shardsieve.v1 import filter_pb2
@@ -87,8 +89,6 @@ def ladder_step(min_bits: int) -> int:
 def geometry_for(capacity: int, target_fpr: float, seed: int = 0) -> Geometry:
     """Geometry for capacity keys at target_fpr: m from the sizing formula rounded up to
     the ladder, k from the formula's m (so every node of a fleet with one target shares k)."""
-    from shardsieve.sizing import optimal_bits, optimal_hashes
-
     formula_bits = optimal_bits(capacity, target_fpr)
     hashes = min(optimal_hashes(formula_bits, capacity), MAX_HASHES)
     geometry = Geometry(bits=ladder_step(formula_bits), hashes=hashes, scheme=SCHEME_MMH3_KM_V1, seed=seed)

@@ -17,6 +17,7 @@ import math
 from dataclasses import dataclass
 
 from shardsieve.geometry import MAX_BITS, MAX_HASHES, MIN_BITS
+from shardsieve.sizing import expected_fill
 from shardsieve.snapshot import MAX_CHUNK_BYTES
 from shardsieve.sync.errors import InvalidHello, MalformedMessage, SyncError
 from shardsieve.v1 import filter_pb2, sync_pb2
@@ -113,15 +114,6 @@ def check_node_message(msg: sync_pb2.NodeMessage, limits: SyncLimits) -> None:
 
 #: Chance, per check, that an honest filter is flagged (the Hoeffding tail bound below).
 FALSE_ALARM = 1e-12
-
-
-def expected_fill(bits: int, hashes: int, key_count: int) -> float:
-    """Expected fraction of set bits after inserting key_count distinct keys:
-    1 - (1 - 1/m)^(k n) (Broder & Mitzenmacher, "Network Applications of Bloom Filters: A
-    Survey", Internet Mathematics 1(4), 2004, section 2.1)."""
-    if bits <= 0:
-        return 0.0
-    return -math.expm1(hashes * key_count * math.log1p(-1.0 / bits))
 
 
 def fill_tolerance(bits: int) -> float:

@@ -61,8 +61,8 @@ def measure(puts: int = 2000, clients: int = 8, sync_level: str = "full", push_i
             latency_samples: int = 400, value_bytes: int = 100, seed: int = 1) -> dict[str, Any]:
     import grpc
 
-    from node.core import NodeCore
-    from node.store import SqliteStore
+    from shardsieve.node.core import NodeCore
+    from shardsieve.node.store import SqliteStore
     from shardsieve.testing.procs import free_port, shardsieve_argv, start_daemon
     from shardsieve.testing.sync_peer import TestCoordinator
     from shardsieve.v1 import storage_pb2, storage_pb2_grpc

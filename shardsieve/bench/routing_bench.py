@@ -73,7 +73,7 @@ def _columns(n_nodes: int, geometry: Any, keys: list[bytes], rng: np.random.Gene
 
 
 def _index(n_nodes: int, geometry: Any, keys: list[bytes], rng: np.random.Generator) -> tuple[Any, list[bytes]]:
-    from coordinator.routing_index import RoutingIndex
+    from shardsieve.coordinator.routing_index import RoutingIndex
 
     index = RoutingIndex()
     cols = _columns(n_nodes, geometry, keys, rng)
@@ -165,10 +165,10 @@ def measure_grpc(index: Any, keys: list[bytes], log: Callable[[str], None]) -> d
     """LocateBatch / Locate against an in-process Router service over loopback gRPC."""
     import grpc
 
-    from coordinator.fleet import Fleet, NodeRecord
-    from coordinator.policy import Policy
-    from coordinator.probes import Prober
-    from coordinator.router_service import Router, RouterService, add_router_service
+    from shardsieve.coordinator.fleet import Fleet, NodeRecord
+    from shardsieve.coordinator.policy import Policy
+    from shardsieve.coordinator.probes import Prober
+    from shardsieve.coordinator.router_service import Router, RouterService, add_router_service
     from shardsieve.v1 import routing_pb2, routing_pb2_grpc
 
     fleet = Fleet(Policy(mode="safe"))

@@ -10,8 +10,8 @@ from shardsieve.cli.lazy import LazyGroup
 COMMANDS = {
     "plan": "shardsieve.cli.plan:plan",
     "bench": "shardsieve.cli.bench:bench",
-    "node": "node.cli:node_command",
-    "coordinator": "coordinator.cli:coordinator_command",
+    "node": "shardsieve.node.cli:node_command",
+    "coordinator": "shardsieve.coordinator.cli:coordinator_command",
     "status": "shardsieve.cli.ops:status",
     "inspect": "shardsieve.cli.ops:inspect_node",
     "rebuild": "shardsieve.cli.ops:rebuild",

@@ -8,7 +8,7 @@ from collections.abc import Callable
 
 import click
 
-from shardsieve.sizing import Plan, plan as make_plan
+from shardsieve.fleet_plan import Plan, plan as make_plan
 
 JSON_FIELDS = (
     "keys", "fpr", "nodes", "bits_per_key", "hashes", "formula_bits", "ladder_bits",

@@ -5,7 +5,7 @@ output). Prediction from each node's predicted false-positive rate p_j = fill_j^
 (Bloom 1970; Broder & Mitzenmacher 2004), with every candidate probed:
   existing key held by node i:  1 + sum_{j != i} p_j     (= 1 + (N-1) p when all p_j = p)
   absent key:                   sum_j p_j                (= N p)
-avoided fan-out = 1 - probes / (lookups x N) (ARCHITECTURE.md, "Words").
+avoided fan-out = 1 - probes / (lookups x N). The formulas live in shardsieve/fanout.py.
 """
 
 from __future__ import annotations
@@ -16,7 +16,8 @@ from typing import Any, Mapping
 
 from hdrh.histogram import HdrHistogram
 
-from shardsieve.loadtest.stats import binomial_acceptance_interval, wilson_interval
+from shardsieve.fanout import avoided_fanout, expected_probes_hit, expected_probes_miss
+from shardsieve.intervals import binomial_acceptance_interval, wilson_interval
 
 INTERVAL_METHOD = ("exact binomial acceptance region around the prediction (equal tails, as inverted by "
                    "Clopper & Pearson 1934); binomial bound is conservative for unequal node rates "
@@ -26,23 +27,6 @@ INTERVAL_METHOD = ("exact binomial acceptance region around the prediction (equa
 _LAT_LOW_US = 1
 _LAT_HIGH_US = 600_000_000
 _LAT_DIGITS = 3
-
-
-def predicted_probes_hit(fprs: Mapping[str, float], owner: str) -> float:
-    """1 + sum of p_j over every node but the owner."""
-    return 1.0 + sum(p for node, p in fprs.items() if node != owner)
-
-
-def predicted_probes_miss(fprs: Mapping[str, float]) -> float:
-    """Sum of p_j over every node."""
-    return float(sum(fprs.values()))
-
-
-def avoided_fanout(probes: float, lookups: int, nodes: int) -> float:
-    """1 - probes / (lookups x nodes); 0 with no lookups."""
-    if lookups <= 0 or nodes <= 0:
-        return 0.0
-    return 1.0 - probes / (lookups * nodes)
 
 
 class Tally:
@@ -64,8 +48,8 @@ class Tally:
         self.false_negatives = 0
         self.phantom_hits = 0
         self.false_negative_keys: list[bytes] = []
-        self._miss_pred = predicted_probes_miss(self.fprs)
-        self._hit_pred_by_owner = {node: predicted_probes_hit(self.fprs, node) for node in self.fprs}
+        self._miss_pred = expected_probes_miss(self.fprs)
+        self._hit_pred_by_owner = {node: expected_probes_hit(self.fprs, node) for node in self.fprs}
         # First observation per distinct existing key: repeated reads of a popular key repeat the
         # same filter answers, so only distinct keys count as independent trials for the interval.
         self._seen: set[bytes] = set()
@@ -97,7 +81,7 @@ class Tally:
         self.hit_probes += probes
         pred = self._hit_pred_by_owner.get(owner)
         if pred is None:  # owner not in the fleet view (should not happen): all others count
-            pred = 1.0 + predicted_probes_miss(self.fprs)
+            pred = 1.0 + expected_probes_miss(self.fprs)
         self.hit_predicted += pred
         if not found:
             self.false_negatives += 1
@@ -194,8 +178,8 @@ class Tally:
             "predicted_probes_per_miss": pred_miss,
             "ratio_hit": ratio(probes_hit, pred_hit),
             "ratio_miss": ratio(probes_miss, pred_miss),
-            "avoided_fanout": avoided_fanout(total_probes, self.lookups, self.nodes),
-            "predicted_avoided_fanout": avoided_fanout(pred_total, self.lookups, self.nodes),
+            "avoided_fanout": avoided_fanout(probes=total_probes, lookups=self.lookups, nodes=self.nodes),
+            "predicted_avoided_fanout": avoided_fanout(probes=pred_total, lookups=self.lookups, nodes=self.nodes),
             "false_negatives": self.false_negatives,
             "false_negative_keys": [k.decode("utf-8", "backslashreplace") for k in self.false_negative_keys],
             "phantom_hits": self.phantom_hits,

@@ -202,7 +202,7 @@ def test_unavailable_is_not_a_write(tmp_path: Path) -> None:
 def test_not_serving_until_filter_loaded_then_holds_every_stored_key(tmp_path: Path) -> None:
     """A store written before start: health answers NOT_SERVING while the filter is rebuilt
     from it (writes get UNAVAILABLE meanwhile), then SERVING with every stored key in the filter."""
-    from node.store import SqliteStore
+    from shardsieve.node.store import SqliteStore
     from shardsieve.testing.nodes import NodeProcess
     from shardsieve.testing.procs import free_port, health_status, shardsieve_argv, start_daemon
 

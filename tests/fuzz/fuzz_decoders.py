@@ -31,8 +31,8 @@ with atheris.instrument_imports():
     from shardsieve.sync.errors import SyncError
     from shardsieve.v1 import sync_pb2
 
-    import coordinator.settings  # noqa: F401 - instrumented for the config and cli targets
-    import node.settings  # noqa: F401
+    import shardsieve.coordinator.settings  # noqa: F401 - instrumented for the config and cli targets
+    import shardsieve.node.settings  # noqa: F401
 
 BITS = (64, 1024, 1 << 20, 1 << 40)
 
@@ -111,7 +111,7 @@ def fuzz_sync(data: bytes) -> None:
 
 
 def fuzz_config(data: bytes) -> None:
-    from coordinator.settings import CoordinatorSettings
+    from shardsieve.coordinator.settings import CoordinatorSettings
 
     with tempfile.TemporaryDirectory() as d:
         path = Path(d) / "c.toml"
@@ -126,8 +126,8 @@ def fuzz_cli(data: bytes) -> None:
     """CLI / environment values: each setting given as arbitrary text, as a flag would carry it."""
     import dataclasses
 
-    from coordinator.settings import CoordinatorSettings
-    from node.settings import NodeSettings
+    from shardsieve.coordinator.settings import CoordinatorSettings
+    from shardsieve.node.settings import NodeSettings
 
     fdp = atheris.FuzzedDataProvider(data)
     cls = (CoordinatorSettings, NodeSettings)[fdp.ConsumeIntInRange(0, 1)]

@@ -20,8 +20,8 @@ from google.protobuf.message import DecodeError
 from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
-from coordinator.settings import CoordinatorSettings
-from node.settings import NodeSettings
+from shardsieve.coordinator.settings import CoordinatorSettings
+from shardsieve.node.settings import NodeSettings
 from shardsieve import codec
 from shardsieve.bloom import BloomFilter
 from shardsieve.changeset import ChangeSet

@@ -6,8 +6,11 @@ import math
 
 import pytest
 
-from coordinator.accounting import Accounting, ProbeOutcome, avoided_fanout, predicted_fpr, wilson_interval
-from coordinator.hints import HintTable
+from shardsieve.coordinator.accounting import Accounting, ProbeOutcome
+from shardsieve.fanout import avoided_fanout
+from shardsieve.intervals import wilson_interval
+from shardsieve.sizing import fill_fpr as predicted_fpr
+from shardsieve.coordinator.hints import HintTable
 
 
 def test_wilson_interval_matches_published_example() -> None:
@@ -56,8 +59,8 @@ def test_read_accounting_counts_probes_waste_and_false_positives() -> None:
     assert (nodes["n2"].wasted_probes, nodes["n2"].false_positives, nodes["n2"].lookups_checked) == (1, 1, 1)
     assert (nodes["n3"].lookups_checked, nodes["n3"].false_positives) == (1, 0)
     assert (nodes["n4"].wasted_probes, nodes["n4"].false_positives, nodes["n4"].lookups_checked) == (1, 0, 0)
-    # Avoided fan-out by its definition 1 - probes / (lookups x nodes) (ARCHITECTURE.md words).
-    assert avoided_fanout(totals.lookups, totals.probes, 4) == pytest.approx(1 - 3 / 4)
+    # Avoided fan-out by its definition 1 - probes / (lookups x nodes) (docs/architecture.md#words).
+    assert avoided_fanout(probes=totals.probes, lookups=totals.lookups, nodes=4) == pytest.approx(1 - 3 / 4)
 
 
 def test_unreachable_probe_is_not_evidence() -> None:

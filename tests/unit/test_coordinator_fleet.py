@@ -9,8 +9,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-from coordinator.fleet import Fleet
-from coordinator.policy import Policy
+from shardsieve.coordinator.fleet import Fleet
+from shardsieve.coordinator.policy import Policy
 from shardsieve.bloom import BloomFilter
 from shardsieve.geometry import Geometry
 from shardsieve.v1 import routing_pb2

@@ -13,16 +13,16 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-import coordinator.daemon
-from coordinator.cli import coordinator_command
-from coordinator.settings import ENV_PREFIX, CoordinatorSettings
+import shardsieve.coordinator.daemon
+from shardsieve.coordinator.cli import coordinator_command
+from shardsieve.coordinator.settings import ENV_PREFIX, CoordinatorSettings
 from shardsieve.config import env_name
 
 
 @pytest.fixture
 def captured(monkeypatch: pytest.MonkeyPatch) -> list[CoordinatorSettings]:
     seen: list[CoordinatorSettings] = []
-    monkeypatch.setattr(coordinator.daemon, "run", lambda s: seen.append(s) or 0)
+    monkeypatch.setattr(shardsieve.coordinator.daemon, "run", lambda s: seen.append(s) or 0)
     for f in dataclasses.fields(CoordinatorSettings):
         monkeypatch.delenv(env_name(ENV_PREFIX, f.name, f.metadata.get("env")), raising=False)
     return seen

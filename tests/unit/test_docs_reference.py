@@ -17,8 +17,8 @@ from pathlib import Path
 import click
 import pytest
 
-from coordinator.settings import ENV_PREFIX as COORDINATOR_ENV, CoordinatorSettings
-from node.settings import ENV_PREFIX as NODE_ENV, NodeSettings
+from shardsieve.coordinator.settings import ENV_PREFIX as COORDINATOR_ENV, CoordinatorSettings
+from shardsieve.node.settings import ENV_PREFIX as NODE_ENV, NodeSettings
 from shardsieve.cli.main import cli
 from shardsieve.config import env_name
 

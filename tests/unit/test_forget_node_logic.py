@@ -16,11 +16,11 @@ from typing import Any
 import grpc
 import pytest
 
-from coordinator.accounting import ProbeOutcome
-from coordinator.admin_service import AdminService
-from coordinator.fleet import Fleet
-from coordinator.policy import Policy
-from coordinator.sync_service import SyncService, _Failure
+from shardsieve.coordinator.accounting import ProbeOutcome
+from shardsieve.coordinator.admin_service import AdminService
+from shardsieve.coordinator.fleet import Fleet
+from shardsieve.coordinator.policy import Policy
+from shardsieve.coordinator.sync_service import SyncService, _Failure
 from shardsieve.bloom import CountingBloomFilter
 from shardsieve.geometry import Geometry
 from shardsieve.sync.node_side import NodeSync

@@ -23,14 +23,14 @@ from typing import Any
 import mmh3
 import pytest
 
-from coordinator.fleet import Fleet, NodeRecord
-from coordinator.hints import HintTable
-from coordinator.policy import Policy
-from coordinator.probes import ProbeResult
-from coordinator.router_service import Router
-from node.core import Limits, NodeCore
-from node.service import _ack
-from node.store import MemoryStore
+from shardsieve.coordinator.fleet import Fleet, NodeRecord
+from shardsieve.coordinator.hints import HintTable
+from shardsieve.coordinator.policy import Policy
+from shardsieve.coordinator.probes import ProbeResult
+from shardsieve.coordinator.router_service import Router
+from shardsieve.node.core import Limits, NodeCore
+from shardsieve.node.service import _ack
+from shardsieve.node.store import MemoryStore
 from shardsieve.geometry import Geometry
 from shardsieve.sync.coordinator_side import CoordinatorSync
 from shardsieve.v1 import filter_pb2, storage_pb2, sync_pb2
@@ -311,7 +311,7 @@ def test_hints_held_and_expired_are_prometheus_metrics() -> None:
     from prometheus_client import CollectorRegistry, generate_latest
     from prometheus_client.parser import text_string_to_metric_families
 
-    from coordinator.metrics import FleetCollector
+    from shardsieve.coordinator.metrics import FleetCollector
 
     fleet = Fleet(Policy(), hint_max_age_s=5.0)
     fleet.nodes[NODE] = NodeRecord(NODE, "127.0.0.1:7101", connected=True, synced=True, epoch=3, sequence=9)

@@ -7,7 +7,10 @@ import hashlib
 import numpy as np
 import pytest
 
-from shardsieve.loadtest.report import Tally, avoided_fanout, predicted_probes_hit, predicted_probes_miss
+from shardsieve.fanout import avoided_fanout
+from shardsieve.fanout import expected_probes_hit as predicted_probes_hit
+from shardsieve.fanout import expected_probes_miss as predicted_probes_miss
+from shardsieve.loadtest.report import Tally
 
 REPORT_FIELDS = {"lookups", "throughput_per_s", "latency_ms", "probes_per_hit", "probes_per_miss",
                  "predicted_probes_per_hit", "predicted_probes_per_miss", "avoided_fanout", "false_negatives"}
@@ -47,9 +50,11 @@ def test_predictions_reduce_to_the_textbook_forms_when_rates_are_equal() -> None
 
 
 def test_avoided_fanout_definition() -> None:
-    # ARCHITECTURE.md "Words": avoided fan-out = 1 - probes / (lookups x nodes).
-    assert avoided_fanout(110, 100, 8) == pytest.approx(1 - 110 / 800)
-    assert avoided_fanout(0, 0, 8) == 0.0
+    # docs/architecture.md#words: avoided fan-out = 1 - probes / (lookups x nodes).
+    assert avoided_fanout(probes=110, lookups=100, nodes=8) == pytest.approx(1 - 110 / 800)
+    assert avoided_fanout(probes=0, lookups=0, nodes=8) == 0.0
+    with pytest.raises(TypeError):   # keyword-only: a swapped (probes, lookups) cannot slip through
+        avoided_fanout(110, 100, 8)  # type: ignore[misc]
 
 
 def simulate(rng: np.random.Generator, nodes: int = 6, keys_per_node: int = 400, lookups: int = 6000,

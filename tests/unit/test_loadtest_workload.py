@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from shardsieve.loadtest.stats import binomial_acceptance_interval
+from shardsieve.intervals import binomial_acceptance_interval
 from shardsieve.loadtest.workload import LookupStream, Popularity, absent_key, place_keys, seed_key
 
 

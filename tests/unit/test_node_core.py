@@ -14,8 +14,8 @@ import random
 import numpy as np
 import pytest
 
-from node.core import InvalidInput, Limits, NodeCore, NotReady
-from node.store import MemoryStore, iter_all_keys
+from shardsieve.node.core import InvalidInput, Limits, NodeCore, NotReady
+from shardsieve.node.store import MemoryStore, iter_all_keys
 from shardsieve import hashing
 from shardsieve.bloom import CountingBloomFilter
 from shardsieve.geometry import geometry_for
@@ -223,7 +223,7 @@ class GatedStore(MemoryStore):
             self.gate.wait(10)
         if self.fail_next:
             self.fail_next = False
-            from node.store import StoreError
+            from shardsieve.node.store import StoreError
 
             raise StoreError("disk full (simulated)")
         self.transactions.append(len(ops))
@@ -260,7 +260,7 @@ def test_concurrent_writers_share_one_commit() -> None:
 
 
 def test_failed_commit_fails_the_group_and_changes_nothing() -> None:
-    from node.store import StoreError
+    from shardsieve.node.store import StoreError
 
     store = GatedStore()
     store.gate.set()

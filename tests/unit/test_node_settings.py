@@ -13,9 +13,9 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-import node.daemon
-from node.cli import node_command
-from node.settings import NodeSettings
+import shardsieve.node.daemon
+from shardsieve.node.cli import node_command
+from shardsieve.node.settings import NodeSettings
 
 
 @pytest.fixture
@@ -26,7 +26,7 @@ def captured(monkeypatch: pytest.MonkeyPatch) -> list[NodeSettings]:
         seen.append(settings)
         return 0
 
-    monkeypatch.setattr(node.daemon, "run", fake_run)
+    monkeypatch.setattr(shardsieve.node.daemon, "run", fake_run)
     for f in dataclasses.fields(NodeSettings):
         monkeypatch.delenv(f"SHARDSIEVE_NODE_{f.name.upper()}", raising=False)
     return seen
@@ -102,7 +102,7 @@ def test_unknown_file_key_is_refused(tmp_path: Path, captured: list[NodeSettings
 
 def test_the_daemon_refuses_the_in_memory_store() -> None:
     # Acknowledged writes must survive a restart (ARCHITECTURE.md promise 4): memory is unit-test only.
-    from node.settings import NodeSettings
+    from shardsieve.node.settings import NodeSettings
     from shardsieve.config import ConfigError, load_settings
 
     with pytest.raises(ConfigError, match="unit tests only"):

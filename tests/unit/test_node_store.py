@@ -13,7 +13,7 @@ from pathlib import Path
 
 import pytest
 
-from node.store import MemoryStore, SqliteStore, StoreError, iter_all_keys, open_store
+from shardsieve.node.store import MemoryStore, SqliteStore, StoreError, iter_all_keys, open_store
 
 
 @pytest.fixture(params=["memory", "sqlite"])

@@ -13,7 +13,7 @@ import random
 import threading
 from typing import Any
 
-from node.sync_driver import SyncDriver
+from shardsieve.node.sync_driver import SyncDriver
 
 
 class _Core:

@@ -12,7 +12,7 @@ import threading
 import numpy as np
 import pytest
 
-from coordinator.routing_index import RoutingIndex, RoutingIndexError
+from shardsieve.coordinator.routing_index import RoutingIndex, RoutingIndexError
 from shardsieve.bloom import BloomFilter, FilterDivergedError
 from shardsieve.geometry import Geometry, geometry_for
 from shardsieve.hashing import positions
@@ -173,7 +173,7 @@ def test_install_is_atomic_for_concurrent_lookups() -> None:
 def test_decode_matches_a_bit_by_bit_reading(dtype: type, words: int) -> None:
     """decode() turns AND results into (key, slot) pairs; reference: reading every bit one by one
     (slot = word * bits-per-word + bit, little-endian bit order within a word; common practice)."""
-    from coordinator.routing_index import _Group
+    from shardsieve.coordinator.routing_index import _Group
 
     rng = np.random.default_rng(words * 131 + np.dtype(dtype).itemsize)
     group = _Group(geometry_for(1000, 0.01))

@@ -6,8 +6,8 @@ import math
 
 import pytest
 
-from coordinator.policy import Policy, PolicyError
-from coordinator.saturation import NodeView, SaturationMonitor, saturation_reasons
+from shardsieve.coordinator.policy import Policy, PolicyError
+from shardsieve.coordinator.saturation import NodeView, SaturationMonitor, saturation_reasons
 from shardsieve.geometry import geometry_for
 from shardsieve.sizing import false_positive_rate
 

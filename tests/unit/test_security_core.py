@@ -291,7 +291,7 @@ def test_decode_guard_answers_invalid_argument_for_garbage(guarded: tuple[grpc.C
 def test_second_stream_needs_the_same_identity_as_the_connected_one() -> None:
     import queue
 
-    from coordinator.sync_service import SyncService
+    from shardsieve.coordinator.sync_service import SyncService
     from shardsieve.sync.coordinator_side import CoordinatorSync, DictReplicaSink
 
     for mode, first, same, other in (

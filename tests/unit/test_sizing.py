@@ -15,7 +15,8 @@ from shardsieve.geometry import (
     geometry_for,
     ladder_step,
 )
-from shardsieve.sizing import capacity_for, false_positive_rate, optimal_bits, optimal_hashes, plan
+from shardsieve.fleet_plan import plan
+from shardsieve.sizing import capacity_for, false_positive_rate, optimal_bits, optimal_hashes
 
 CASES = [(1_000, 0.1), (10_000, 0.01), (1_000_000, 0.01), (5_000_000, 1e-3), (123_457, 1e-4), (1, 0.5)]
 

@@ -8,7 +8,7 @@ from fractions import Fraction
 import numpy as np
 import pytest
 
-from shardsieve.loadtest.stats import binomial_acceptance_interval, wilson_interval, z_for
+from shardsieve.intervals import binomial_acceptance_interval, wilson_interval, z_for
 
 
 def exact_tails(n: int, p: Fraction) -> list[Fraction]:

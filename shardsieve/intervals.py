@@ -1,7 +1,9 @@
-"""Binomial intervals for checking measured probe counts against the prediction.
+"""Binomial intervals: the one home of the confidence intervals the coordinator and the load
+tester compute (observed false-positive rates, measured probe counts against the prediction).
 
 - `wilson_interval`: the score interval for a proportion (E. B. Wilson, "Probable inference, the
-  law of succession, and statistical inference", JASA 22, 1927).
+  law of succession, and statistical inference", JASA 22, 1927). The coordinator's accounting and
+  saturation policy use 95 %; the load tester's report 99.9 %.
 - `binomial_acceptance_interval`: the equal-tailed acceptance region of the exact binomial test,
   the same tails Clopper & Pearson (Biometrika 26, 1934) invert for their interval. Used "around
   the prediction": if the model is right, the count of wasted probes falls inside with at least
@@ -15,10 +17,12 @@ Statist. 27, 1956), so a binomial interval with the mean rate is conservative.
 
 from __future__ import annotations
 
+import functools
 import math
 from statistics import NormalDist
 
 
+@functools.lru_cache(maxsize=16)
 def z_for(confidence: float) -> float:
     """Two-sided standard-normal quantile, e.g. 0.999 -> 3.2905."""
     if not 0.0 < confidence < 1.0:
@@ -26,7 +30,7 @@ def z_for(confidence: float) -> float:
     return NormalDist().inv_cdf(0.5 + confidence / 2.0)
 
 
-def wilson_interval(successes: int, trials: int, confidence: float = 0.999) -> tuple[float, float]:
+def wilson_interval(successes: int, trials: int, confidence: float = 0.95) -> tuple[float, float]:
     """Wilson score interval for successes/trials; (0, 1) when there are no trials."""
     if trials < 0 or successes < 0 or successes > trials:
         raise ValueError(f"need 0 <= successes <= trials, got {successes}/{trials}")
@@ -38,7 +42,10 @@ def wilson_interval(successes: int, trials: int, confidence: float = 0.999) -> t
     denom = 1.0 + z * z / n
     centre = (phat + z * z / (2 * n)) / denom
     half = z * math.sqrt(phat * (1 - phat) / n + z * z / (4 * n * n)) / denom
-    return (max(0.0, centre - half), min(1.0, centre + half))
+    # at 0 or n successes the bound is exactly 0 or 1 (the closed form); do not let rounding say otherwise
+    low = 0.0 if successes == 0 else max(0.0, centre - half)
+    high = 1.0 if successes == trials else min(1.0, centre + half)
+    return (low, high)
 
 
 def _log_pmf(k: int, n: int, p: float) -> float:
