@@ -9,7 +9,9 @@ from __future__ import annotations
 import atexit
 import re
 import shlex
+import shutil
 import signal
+import sys
 import tempfile
 import time
 from pathlib import Path
@@ -152,6 +154,19 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
         signal.signal(signal.SIGINT, previous_int)
 
 
+def command_word() -> str:
+    """How to invoke this very `shardsieve` from the user's shell: the bare name when it is on
+    PATH, else the script beside this interpreter (a virtualenv that is not activated), else
+    `python -m` (the commands we print must work as pasted)."""
+    script = Path(sys.executable).with_name("shardsieve")
+    on_path = shutil.which("shardsieve")
+    if on_path and (not script.exists() or Path(on_path).resolve() == script.resolve()):
+        return "shardsieve"
+    if script.exists():
+        return shlex.quote(str(script))
+    return f"{shlex.quote(sys.executable)} -m shardsieve.cli.main"
+
+
 def _print_next_steps(out: Console, address: str, workdir: Path, keep: bool, token: str | None,
                       recs: list[scenario.Record], elapsed: float) -> None:
     if not keep:
@@ -162,13 +177,14 @@ def _print_next_steps(out: Console, address: str, workdir: Path, keep: bool, tok
     if token:
         env += f" SHARDSIEVE_TOKEN={shlex.quote(token)}"
     key = shlex.quote(scenario.example_keys(recs, 1)[0])
+    cmd = command_word()
     out.print(f"demo ready in {elapsed:.1f}s; the fleet keeps running. Explore it:\n"
               f"  {env}\n"
-              f"  shardsieve status                       # red rows: sheds over capacity\n"
-              f"  shardsieve locate {key}\n"
-              f"  shardsieve get {key}\n"
-              f"  shardsieve rebuild --flagged --dry-run   # then without --dry-run, with --wait\n"
-              f"  shardsieve loadtest --reuse --duration 5\n"
+              f"  {cmd} status                       # red rows: sheds over capacity\n"
+              f"  {cmd} locate {key}\n"
+              f"  {cmd} get {key}\n"
+              f"  {cmd} rebuild --flagged --dry-run   # then without --dry-run, with --wait\n"
+              f"  {cmd} loadtest --reuse --duration 5\n"
               f"Stop it with: kill $(cat {shlex.quote(str(workdir / 'pids'))})")
 
 

@@ -93,12 +93,14 @@ def _channel(address: str, tls: ProbeTls):  # noqa: ANN202 - grpc.Channel
 
 
 def check(addresses: Sequence[str], timeout: float, tls: ProbeTls | None = None) -> tuple[bool, list[str]]:
-    """Ask each address; True when one answers SERVING. Returns the per-address report lines."""
+    """Ask every address (each gets its own answer line, in order); True when at least one
+    answers SERVING."""
     import grpc
     from grpc_health.v1 import health_pb2, health_pb2_grpc
 
     tls = tls or ProbeTls()
     lines = []
+    serving = False
     for address in addresses:
         with _channel(address, tls) as channel:
             try:
@@ -109,9 +111,16 @@ def check(addresses: Sequence[str], timeout: float, tls: ProbeTls | None = None)
                 continue
         name = _STATUS_NAMES.get(int(reply.status), str(reply.status))
         lines.append(f"{address}: {name}")
-        if reply.status == health_pb2.HealthCheckResponse.SERVING:
-            return True, lines
-    return False, lines
+        serving = serving or reply.status == health_pb2.HealthCheckResponse.SERVING
+    return serving, lines
+
+
+def _utf8(text: str) -> bool:
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:   # bytes that were not UTF-8 on the command line (PEP 383)
+        return False
+    return True
 
 
 _FILE = click.Path(exists=True, dir_okay=False, path_type=Path)
@@ -129,7 +138,8 @@ def health(addresses: tuple[str, ...], timeout: float, ca: Path | None, cert: Pa
            server_name: str | None) -> None:
     """Ask daemons' gRPC health service: exit 0 when any ADDRESS (HOST:PORT) answers SERVING, else 1.
 
-    Prints one line: each address asked and its answer (SERVING, NOT_SERVING, unreachable).
+    Asks every address and prints one line with each address and its answer (SERVING,
+    NOT_SERVING, unreachable).
     Without ADDRESS: $SHARDSIEVE_HEALTH_ADDRESS, else the daemon's listen setting from
     $SHARDSIEVE_NODE_LISTEN / $SHARDSIEVE_COORDINATOR_LISTEN, else 127.0.0.1:7400 and :7500.
     Without --ca/--cert the TLS files come from $SHARDSIEVE_NODE_TLS_* or
@@ -139,7 +149,7 @@ def health(addresses: tuple[str, ...], timeout: float, ca: Path | None, cert: Pa
         raise click.BadParameter(f"must be above 0, got {timeout}", param_hint="--timeout")
     for address in addresses:
         host, sep, port = address.rpartition(":")
-        if not sep or not host or not port.isdigit():
+        if not sep or not host or not port.isdigit() or not address.isprintable() or not _utf8(address):
             raise click.BadParameter(f"{address!r} is not HOST:PORT", param_hint="ADDRESS")
     if (cert is None) != (key is None):
         raise click.UsageError("--cert and --key go together: give both or neither")

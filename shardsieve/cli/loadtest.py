@@ -13,7 +13,7 @@ from rich.table import Table
 from shardsieve.cli.ops import (
     ClientError, CliFailure, OneLineCommand, console, coordinator_options, emit_json, fmt_rate, guarded, open_client,
 )
-from shardsieve.client import EXIT_FAILURE
+from shardsieve.client import EXIT_FAILURE, EXIT_INVALID
 from shardsieve.loadtest.runner import LoadtestOptions, Phases, run_loadtest
 
 EXIT_FALSE_NEGATIVES = 8
@@ -125,39 +125,60 @@ def render_report(report: Mapping[str, Any], out: Console) -> None:
 @click.option("--confidence", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.999,
               show_default=True, help="Confidence of the binomial interval around the prediction.")
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False), default=None,
-              help="Draw probes per lookup and latency over the run to this PNG (needs matplotlib).")
+              help="Draw probes per lookup and latency over the run to this PNG (needs matplotlib). Its folder "
+                   "must exist; the path is checked before the run starts.")
+@click.option("--keep-keys", is_flag=True,
+              help="Leave the seeded keys (lt/<run>/...) on the nodes; by default they are removed at the end.")
 @coordinator_options
 @guarded
 def loadtest(keys: int, reuse: bool, existing_share: float, zipf_s: float, concurrency: int, count: int | None,
              duration_s: float | None, value_size: int, seed: int | None, routable_timeout: float, confidence: float,
-             plot_path: str | None, coordinator: str | None, token: str | None, config_file: str | None,
-             timeout_s: float | None, as_json: bool) -> None:
+             plot_path: str | None, keep_keys: bool, coordinator: str | None, token: str | None,
+             config_file: str | None, timeout_s: float | None, as_json: bool) -> None:
     """Measure probes per lookup against the prediction from the fleet's filters.
 
     Seeds --keys keys on the nodes directly (the coordinator learns them from the nodes' deltas),
-    waits until every one is routed, then reads through the coordinator. Exits 8 if any seeded
-    key was reported absent (a false negative).
+    waits until every one is routed, then reads through the coordinator. The seeded keys are
+    removed from the nodes at the end (also after a failure) unless --keep-keys. Exits 8 if any
+    seeded key was reported absent (a false negative).
     """
     if count is not None and duration_s is not None:
         raise ClientError("give --count or --duration, not both", 2)
     if keys == 0 and existing_share > 0:
         raise ClientError("--keys 0 leaves no existing keys to read: pass --existing-share 0 or seed keys", 2)
+    if plot_path:
+        from shardsieve.loadtest.plot import check_target
+        try:
+            check_target(plot_path)
+        except ValueError as exc:
+            raise ClientError(f"{exc}; nothing was run", EXIT_INVALID) from None
     opts = LoadtestOptions(keys=keys, reuse=reuse, existing_share=existing_share, zipf_s=zipf_s,
                            concurrency=concurrency, count=count,
                            duration_s=None if count is not None else (duration_s or 10.0), value_size=value_size,
-                           seed=seed, routable_timeout_s=routable_timeout, confidence=confidence)
+                           seed=seed, routable_timeout_s=routable_timeout, confidence=confidence, keep_keys=keep_keys)
     result = execute(opts, coordinator, token, config_file, timeout_s, show_progress=not as_json)
     report = result.report
+    plot_error = None
     if plot_path:
-        report["plot"] = draw_plot(plot_path, result)
+        try:
+            report["plot"] = draw_plot(plot_path, result)
+        except RuntimeError as exc:   # the report stands whatever happens to the figure
+            report["plot"], plot_error = None, str(exc)
+            report["plot_error"] = plot_error
     if as_json:
         emit_json(report)
     else:
         out = console()
         render_report(report, out)
-        if plot_path:
+        if report.get("plot"):
             out.print(f"plot: {report['plot']}")
+        if report.get("seed_prefix"):
+            out.print(f"seeded keys ({report['seed_prefix']}...): " + (
+                "kept on the nodes (--keep-keys)" if report.get("kept_seeded_keys")
+                else f"{report['removed_seeded_keys']:,} removed from the nodes"))
     check_false_negatives(report)
+    if plot_error:
+        raise CliFailure(f"{plot_error}; the report above is complete", EXIT_FAILURE)
 
 
 def execute(opts: LoadtestOptions, coordinator: str | None, token: str | None, config_file: str | None,
@@ -173,11 +194,9 @@ def execute(opts: LoadtestOptions, coordinator: str | None, token: str | None, c
 
 
 def draw_plot(path: str, result: Any) -> str:
+    """Draw the figure; RuntimeError (with a one-line reason) when it cannot be written."""
     from shardsieve.loadtest.plot import draw
-    try:
-        return str(draw(path, result.report, result.times_s, result.latency_ms))
-    except RuntimeError as exc:
-        raise CliFailure(str(exc), EXIT_FAILURE) from None
+    return str(draw(path, result.report, result.times_s, result.latency_ms))
 
 
 def check_false_negatives(report: Mapping[str, Any]) -> None:

@@ -27,6 +27,9 @@ from shardsieve.client import (
 
 F = TypeVar("F", bound=Callable[..., Any])
 
+# No filter of at most 2^40 bits (the largest geometry, shardsieve/geometry.py) holds more keys.
+MAX_CAPACITY = 1 << 40
+
 
 # ---------------------------------------------------------------------------------------------
 # One-line failures
@@ -43,14 +46,44 @@ def _one_line_usage(ctx: click.Context, exc: click.UsageError) -> CliFailure:
     return CliFailure(f"{exc.format_message()} (see `{ctx.command_path} --help`)", EXIT_USAGE)
 
 
+# Arguments taken as raw bytes: a KEY or VALUE typed in a non-UTF-8 locale keeps its bytes.
+BYTE_PARAMS = frozenset({"key", "value"})
+
+
+def _undecodable(value: Any) -> bool:
+    """Whether a command-line string holds bytes that were not UTF-8: Python keeps them as lone
+    surrogates (PEP 383, "surrogateescape"), which no protobuf string field accepts."""
+    values = value if isinstance(value, (tuple, list)) else (value,)
+    for v in values:
+        if isinstance(v, str):
+            try:
+                v.encode("utf-8")
+            except UnicodeEncodeError:
+                return True
+    return False
+
+
+def check_utf8_params(ctx: click.Context) -> None:
+    """Refuse (exit 2) a text argument that is not UTF-8, naming it; KEY and VALUE are bytes."""
+    for name, value in ctx.params.items():
+        if name not in BYTE_PARAMS and _undecodable(value):
+            flag = "--" + name.replace("_", "-") if any(
+                p.name == name and isinstance(p, click.Option) for p in ctx.command.params) else name.upper()
+            raise CliFailure(f"{flag} is not valid UTF-8 text ({value!r}): node ids, names and addresses are "
+                             f"text; give it in UTF-8 (see `{ctx.command_path} --help`)", EXIT_USAGE)
+
+
 class OneLineCommand(click.Command):
-    """A click command whose usage errors are one line too (no usage block)."""
+    """A click command whose usage errors are one line too (no usage block), and whose text
+    arguments must be UTF-8."""
 
     def parse_args(self, ctx: click.Context, args: list[str]) -> list[str]:
         try:
-            return super().parse_args(ctx, args)
+            rest = super().parse_args(ctx, args)
         except click.UsageError as exc:
             raise _one_line_usage(ctx, exc) from None
+        check_utf8_params(ctx)
+        return rest
 
 
 class OneLineGroup(click.Group):
@@ -173,10 +206,7 @@ def _scalar(field: Any, value: Any) -> Any:
 # Formatting helpers
 # ---------------------------------------------------------------------------------------------
 def fmt_rate(p: float) -> str:
-    if p == 0:
-        return "0"
-    if p >= 0.001:
-        return f"{p:.2%}"
+    """A rate in one format whatever its size (rates span 1e-9 .. 1): scientific, 3 digits."""
     return f"{p:.2e}"
 
 
@@ -199,8 +229,10 @@ def geometry_text(g: Any) -> str:
 
 
 def decode_key(key: str, hex_input: bool) -> bytes:
+    """The bytes of KEY/VALUE as typed: UTF-8 text, or in a non-UTF-8 locale the raw bytes
+    (surrogateescape restores them, PEP 383), or hexadecimal with --hex."""
     if not hex_input:
-        return key.encode("utf-8")
+        return key.encode("utf-8", "surrogateescape")
     try:
         return bytes.fromhex(key)
     except ValueError:
@@ -264,17 +296,20 @@ def status(coordinator: str | None, token: str | None, config_file: str | None, 
         emit_json(message_to_dict(reply))
         return
     out = console()
-    table = Table(title=f"coordinator {reply.coordinator_id or client.address} · {reply.mode or '?'} mode · "
-                        f"{len(reply.nodes)} nodes")
+    count = len(reply.nodes)
+    table = Table(title=f"fleet seen by {reply.coordinator_id or 'a coordinator'} at {client.address} · "
+                        f"{reply.mode or '?'} mode · {count} node{'' if count == 1 else 's'}")
     for col, justify in (("node", "left"), ("address", "left"), ("keys", "right"), ("capacity", "right"),
                          ("fill", "right"), ("predicted FPR", "right"), ("observed FPR", "right"),
                          ("lag", "right"), ("state", "left")):
         table.add_column(col, justify=justify)  # type: ignore[arg-type]
     for n in sorted(reply.nodes, key=lambda n: n.node_id):
-        observed = fmt_rate(n.observed_fpr) if n.lookups_checked else "-"
+        observed = fmt_rate(n.observed_fpr) if n.lookups_checked else ""   # blank: nothing measured yet
         table.add_row(n.node_id, n.address, fmt_count(n.key_count), fmt_count(n.capacity), f"{n.fill:.1%}",
                       fmt_rate(n.predicted_fpr), observed, fmt_lag(n.lag_ms), state_text(n), style=row_style(n))
     out.print(table)
+    if any(not n.lookups_checked for n in reply.nodes):
+        out.print("[dim]observed FPR is blank for a node no lookup has been checked against yet[/]")
     iv = reply.observed_fpr_interval
     out.print(f"lookups {fmt_count(reply.lookups)} · probes {fmt_count(reply.probes)} · wasted "
               f"{fmt_count(reply.wasted_probes)} · avoided fan-out {reply.avoided_fanout:.1%} · observed FPR "
@@ -322,9 +357,10 @@ def inspect_node(node: str, coordinator: str | None, token: str | None, config_f
         ("fill", f"{n.fill:.2%}" + ("  (implausible for its key count)" if n.implausible_fill else "")),
         ("predicted FPR", fmt_rate(n.predicted_fpr)),
         ("observed FPR", (f"{fmt_rate(n.observed_fpr)} (Wilson 95%: {fmt_rate(iv.low)}..{fmt_rate(iv.high)}; "
-                          f"{fmt_count(n.lookups_checked)} lookups checked)") if n.lookups_checked else "-"),
+                          f"{fmt_count(n.lookups_checked)} lookups checked)") if n.lookups_checked
+                         else "not measured yet (no lookup checked against this node)"),
         ("probes / wasted", f"{fmt_count(n.probes)} / {fmt_count(n.wasted_probes)}"),
-        ("misses the node counted", fmt_count(n.reads_missed_reported)),
+        ("reads the node answered not-found", fmt_count(n.reads_missed_reported)),
         ("lag", fmt_lag(n.lag_ms)),
         ("saturation", ", ".join(n.saturation_reasons) if n.saturated else "no"),
         ("rebuild", f"{n.rebuild_phase} {n.rebuild_progress:.0%}" if n.rebuild_phase else "idle"),
@@ -397,8 +433,8 @@ def wait_for_rebuilds(client: CoordinatorClient, before: dict[str, int], queued:
 @click.command(cls=OneLineCommand, short_help="Replace nodes' filters with freshly sized ones.")
 @click.argument("nodes", nargs=-1, metavar="[NODE]...")
 @click.option("--flagged", is_flag=True, help="Rebuild every node the saturation monitor flagged.")
-@click.option("--capacity", type=click.IntRange(min=1), default=None,
-              help="Keys to size the new filter for (default: the policy's growth x current keys).")
+@click.option("--capacity", type=click.IntRange(min=1, max=MAX_CAPACITY), default=None,
+              help="Keys to size the new filter for, 1..2^40 (default: the policy's growth x current keys).")
 @click.option("--fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
               help="Target false-positive rate of the new filter (default: the policy target).")
 @click.option("--dry-run", is_flag=True, help="Show the plan (capacity, geometry, reason) and change nothing.")
@@ -464,7 +500,9 @@ def rebuild(nodes: tuple[str, ...], flagged: bool, capacity: int | None, fpr: fl
 # ---------------------------------------------------------------------------------------------
 # locate / get / put / delete
 # ---------------------------------------------------------------------------------------------
-hex_option = click.option("--hex", "hex_input", is_flag=True, help="KEY (and VALUE) are given in hexadecimal.")
+hex_option = click.option("--hex", "hex_input", is_flag=True, help="KEY is given in hexadecimal (binary keys).")
+hex_pair_option = click.option("--hex", "hex_input", is_flag=True,
+                               help="KEY and VALUE are given in hexadecimal (binary keys and values).")
 
 
 @click.command(cls=OneLineCommand)
@@ -526,7 +564,7 @@ def get(key: str, hex_input: bool, coordinator: str | None, token: str | None, c
 @click.argument("key")
 @click.argument("value")
 @click.option("--node", "node_id", default="", help="Store on this node id (default: the coordinator places it).")
-@hex_option
+@hex_pair_option
 @coordinator_options
 @guarded
 def put(key: str, value: str, node_id: str, hex_input: bool, coordinator: str | None, token: str | None,
@@ -630,9 +668,9 @@ def parse_assignments(pairs: Iterable[str]) -> dict[str, str]:
         name = name.strip().replace("-", "_")
         if not sep or not name or not value.strip():
             raise ClientError(f"{pair!r} is not NAME=VALUE (e.g. target_fpr=0.01); names: "
-                              f"{', '.join(POLICY_HELP)}", EXIT_INVALID)
+                              f"{', '.join(POLICY_HELP)}", EXIT_USAGE)
         if name in values:
-            raise ClientError(f"{name} is given twice: give each setting once", EXIT_INVALID)
+            raise ClientError(f"{name} is given twice: give each setting once", EXIT_USAGE)
         values[name] = value.strip()
     return values
 

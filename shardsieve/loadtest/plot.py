@@ -6,6 +6,8 @@ RuntimeError that says how to install it.
 
 from __future__ import annotations
 
+import importlib.util
+import os
 from pathlib import Path
 from typing import Any, Mapping, Sequence
 
@@ -27,6 +29,23 @@ def latency_over_time(times_s: Sequence[float], latency_ms: Sequence[float], buc
         p50.append(float(np.percentile(sel, 50)))
         p99.append(float(np.percentile(sel, 99)))
     return np.array(starts), np.array(p50), np.array(p99)
+
+
+def check_target(path: str | Path) -> Path:
+    """Refuse a plot path that cannot be written, before a run spends minutes: its folder must
+    exist (it is never created silently: a typo in it would hide the plot) and be writable, the
+    path must not be a folder, and matplotlib must be installed. ValueError says which."""
+    path = Path(path)
+    parent = path.parent if str(path.parent) else Path(".")
+    if path.is_dir():
+        raise ValueError(f"--plot {path} is a folder; give a file name such as {path / 'report.png'}")
+    if not parent.is_dir():
+        raise ValueError(f"--plot {path}: the folder {parent} does not exist; create it or choose another path")
+    if not os.access(parent, os.W_OK | os.X_OK) or (path.exists() and not os.access(path, os.W_OK)):
+        raise ValueError(f"--plot {path}: not writable by this user; choose another path")
+    if importlib.util.find_spec("matplotlib") is None:
+        raise ValueError("--plot needs matplotlib: pip install 'shardsieve[plot]'")
+    return path
 
 
 def draw(path: str | Path, report: Mapping[str, Any], times_s: Sequence[float],
@@ -68,7 +87,10 @@ def draw(path: str | Path, report: Mapping[str, Any], times_s: Sequence[float],
     ax2.set_title("Lookup latency over the run")
     ax2.legend(fontsize=8)
     fig.tight_layout()
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    try:
+        fig.savefig(path, dpi=110)
+    except OSError as exc:
+        raise RuntimeError(f"could not write the plot to {path}: {exc.strerror or exc}") from None
+    finally:
+        plt.close(fig)
     return path

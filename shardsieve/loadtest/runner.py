@@ -103,13 +103,23 @@ def seed(channels: NodeChannels, keys: Sequence[bytes], owners: Sequence[str], v
                 on_progress(len(chunk))
 
 
-def seed_new(channels: NodeChannels, node_ids: Sequence[str], count: int, rng: np.random.Generator,
-             run_id: str, value_size: int = 64, on_progress: Progress | None = None
-             ) -> tuple[list[bytes], list[str]]:
-    keys = [seed_key(run_id, i) for i in range(count)]
-    owners = place_keys(rng, count, sorted(node_ids))
-    seed(channels, keys, owners, value_size=value_size, on_progress=on_progress)
-    return keys, owners
+def remove_seeded(channels: NodeChannels, keys: Sequence[bytes], owners: Sequence[str], batch: int = 500,
+                  on_progress: Progress | None = None) -> int:
+    """BatchDelete the keys a run seeded from their owner nodes; returns how many existed."""
+    from shardsieve.v1 import storage_pb2
+    by_node: dict[str, list[bytes]] = {}
+    for key, owner in zip(keys, owners):
+        by_node.setdefault(owner, []).append(key)
+    removed = 0
+    for node_id, node_keys in by_node.items():
+        stub = channels.stubs[node_id]
+        for i in range(0, len(node_keys), batch):
+            chunk = node_keys[i:i + batch]
+            reply = channels.call(node_id, "BatchDelete", stub.BatchDelete, storage_pb2.BatchDeleteRequest(keys=chunk))
+            removed += sum(1 for ack in reply.acks if ack.created)
+            if on_progress:
+                on_progress(len(chunk))
+    return removed
 
 
 def scan_existing(channels: NodeChannels, limit: int, on_progress: Progress | None = None,
@@ -267,6 +277,7 @@ class LoadtestOptions:
     ready_timeout_s: float = 60.0
     routable_timeout_s: float = 120.0
     confidence: float = 0.999
+    keep_keys: bool = False      # leave the seeded lt/<run>/... keys on the nodes afterwards
 
 
 @dataclass
@@ -286,7 +297,9 @@ class Phases:
 
 def run_loadtest(client: CoordinatorClient, opts: LoadtestOptions, phases: Phases | None = None,
                  stop: threading.Event | None = None) -> LoadtestResult:
-    """Seed (or reuse) keys, wait until they are routed, read, and build the report."""
+    """Seed (or reuse) keys, wait until they are routed, read, and build the report. Seeded keys
+    are removed from the nodes at the end — also when the run fails or is interrupted — unless
+    opts.keep_keys; reused keys are never touched."""
     from shardsieve.loadtest.workload import new_run_id
 
     phases = phases or Phases()
@@ -294,6 +307,7 @@ def run_loadtest(client: CoordinatorClient, opts: LoadtestOptions, phases: Phase
     run_id = new_run_id() if opts.seed is None else f"s{opts.seed}"
     view = wait_fleet_ready(client, opts.ready_timeout_s)
     channels = NodeChannels(view, client.metadata, client.settings.credentials())
+    seeded: tuple[list[bytes], list[str]] = ([], [])
     try:
         if opts.reuse:
             phases.start("collecting existing keys", None)
@@ -303,10 +317,37 @@ def run_loadtest(client: CoordinatorClient, opts: LoadtestOptions, phases: Phase
                 raise ClientError("--reuse found no keys on the nodes: seed some first (drop --reuse)", EXIT_FAILURE)
         else:
             phases.start(f"seeding {opts.keys:,} keys on {len(view)} nodes", opts.keys)
-            keys, owners = seed_new(channels, list(view), opts.keys, rng, run_id, opts.value_size, phases.advance)
+            keys = [seed_key(run_id, i) for i in range(opts.keys)]
+            owners = place_keys(rng, opts.keys, sorted(view))
+            seeded = (keys, owners)   # from here on, whatever happens, they are cleaned up
+            seed(channels, keys, owners, value_size=opts.value_size, on_progress=phases.advance)
             phases.finish()
+        result = _measure(client, opts, phases, stop, rng, run_id, keys, owners, view)
+    except BaseException:
+        if seeded[0] and not opts.keep_keys:
+            try:
+                remove_seeded(channels, *seeded)
+            except ClientError:
+                pass   # the original failure is the one to report
+        raise
+    else:
+        if seeded[0] and not opts.keep_keys:
+            phases.start(f"removing the {len(seeded[0]):,} seeded keys", len(seeded[0]))
+            result.report["removed_seeded_keys"] = remove_seeded(channels, *seeded, on_progress=phases.advance)
+            phases.finish()
+        else:
+            result.report["removed_seeded_keys"] = 0
+        result.report["kept_seeded_keys"] = bool(seeded[0]) and opts.keep_keys
+        result.report["seed_prefix"] = seed_key(run_id, 0).decode().rsplit("/", 1)[0] + "/" if seeded[0] else None
+        return result
     finally:
         channels.close()
+
+
+def _measure(client: CoordinatorClient, opts: LoadtestOptions, phases: Phases, stop: threading.Event | None,
+             rng: np.random.Generator, run_id: str, keys: list[bytes], owners: list[str],
+             view: dict[str, NodeInfo]) -> LoadtestResult:
+    """Wait until the keys are routed, read through the coordinator, build the report."""
     if keys:
         phases.start("waiting until the coordinator routes every key", len(keys))
         wait_routable(client, keys, owners, opts.routable_timeout_s, on_progress=phases.advance)

@@ -41,7 +41,7 @@ def test_small_loadtest_matches_prediction_without_false_negatives(tmp_path: Pat
         proc = subprocess.run(
             [sys.executable, "-m", "shardsieve.cli.main", "loadtest", "--coordinator", cluster.coordinator_address,
              "--keys", "1600", "--count", "3000", "--concurrency", "4", "--seed", "7", "--json",
-             "--plot", str(tmp_path / "lt.png")],
+             "--plot", str(tmp_path / "lt.png"), "--keep-keys"],
             capture_output=True, text=True, env=env, timeout=240)
         assert proc.returncode == 0, proc.stderr[-2000:]
         report = json.loads(proc.stdout)

@@ -19,7 +19,7 @@ from click.testing import CliRunner
 
 from shardsieve.cli.main import cli
 from shardsieve.client import (
-    DEFAULT_COORDINATOR, EXIT_AUTH, EXIT_INVALID, EXIT_NOT_FOUND, EXIT_UNAVAILABLE, EXIT_UNREACHABLE,
+    DEFAULT_COORDINATOR, EXIT_AUTH, EXIT_INVALID, EXIT_USAGE, EXIT_NOT_FOUND, EXIT_UNAVAILABLE, EXIT_UNREACHABLE,
     ClientError, resolve_settings, translate_error,
 )
 from shardsieve.testing.procs import free_port
@@ -303,6 +303,77 @@ def test_policy_show_and_set(fake) -> None:  # type: ignore[no-untyped-def]
     assert res.exit_code == EXIT_INVALID
     assert "nothing was changed" in one_line_error(res)
     assert admin.policy.target_fpr == pytest.approx(0.02)
-    res = run(["policy", "set", "target_fpr", *common])
-    assert res.exit_code == EXIT_INVALID
+    res = run(["policy", "set", "target_fpr", *common])   # no '=': a malformed command line (docs/cli.md)
+    assert res.exit_code == EXIT_USAGE
     assert "NAME=VALUE" in one_line_error(res)
+    assert admin.policy.target_fpr == pytest.approx(0.02)
+
+
+# -- command-line rails ----------------------------------------------------------------------------
+def test_a_key_typed_in_a_non_utf8_locale_keeps_its_bytes(fake) -> None:  # type: ignore[no-untyped-def]
+    """Python keeps undecodable argv bytes as lone surrogates (PEP 383); KEY and VALUE are sent as
+    the very bytes typed, never a crash."""
+    addr, _, router = fake
+    key, value = "crate/\udcff\udcfe", "\udce9t\udce9"          # the bytes ff fe and e9 74 e9 (Latin-1 'été')
+    res = run(["put", key, value, "--json", "--coordinator", addr])
+    assert res.exit_code == 0, res.output
+    assert router.store[b"crate/\xff\xfe"] == b"\xe9t\xe9"
+    res = run(["get", key, "--hex", "--coordinator", addr])   # --hex: the key is hex, so this is bad hex
+    assert res.exit_code == EXIT_INVALID
+    res = run(["get", "63726174652fFFFE", "--hex", "--coordinator", addr])
+    assert (res.exit_code, res.stdout.strip()) == (0, "e974e9")
+
+
+@pytest.mark.parametrize("args, named", [
+    (["put", "k", "v", "--node", "n\udcff"], "--node"),
+    (["inspect", "n\udcff"], "NODE"),
+    (["rebuild", "n\udcff", "--dry-run"], "NODES"),
+    (["policy", "set", "mode=f\udcffst"], "ASSIGNMENTS"),
+])
+def test_text_arguments_that_are_not_utf8_are_refused_by_name(fake, args: list[str], named: str) -> None:  # type: ignore[no-untyped-def]
+    addr, admin, router = fake
+    before = (len(admin.rebuilds), dict(router.store), admin.policy.mode)
+    res = run([*args, "--coordinator", addr, "--token", TOKEN])
+    assert res.exit_code == EXIT_USAGE
+    line = one_line_error(res)
+    assert named in line and "UTF-8" in line
+    assert (len(admin.rebuilds), dict(router.store), admin.policy.mode) == before   # nothing sent
+
+
+def test_out_of_range_capacity_is_a_usage_error_not_a_crash(fake) -> None:  # type: ignore[no-untyped-def]
+    addr, admin, _ = fake
+    sent = len(admin.rebuilds)
+    res = run(["rebuild", "n1", "--capacity", "99999999999999999999", "--dry-run", "--coordinator", addr,
+               "--token", TOKEN])
+    assert res.exit_code == EXIT_USAGE
+    line = one_line_error(res)
+    assert "--capacity" in line and "unexpected" not in line
+    assert len(admin.rebuilds) == sent
+
+
+def test_status_table_words_and_one_rate_format(fake) -> None:  # type: ignore[no-untyped-def]
+    addr, _, _ = fake
+    res = run(["status", "--coordinator", addr, "--token", TOKEN], env={"COLUMNS": "220"})
+    assert res.exit_code == 0, res.output
+    title = next(line for line in res.stdout.splitlines() if "mode" in line)
+    assert "coordinator coordinator" not in title and "fake" in title and "4 nodes" in title
+    rows = [line for line in res.stdout.splitlines() if line.startswith("│ n")]
+    for row in rows:   # every rate cell in the same scientific format (predicted 0.0081, observed 0.01)
+        cells = [c.strip() for c in row.split("│")]
+        assert re.fullmatch(r"\d\.\d\de[-+]\d\d", cells[6]), cells
+        assert re.fullmatch(r"\d\.\d\de[-+]\d\d", cells[7]), cells
+
+
+def test_help_of_single_key_commands_mentions_no_value() -> None:
+    for command in ("get", "locate", "delete"):
+        text = run([command, "--help"]).stdout
+        assert "VALUE" not in text, command
+    assert "KEY and VALUE" in run(["put", "--help"]).stdout
+
+
+def test_inspect_labels_the_nodes_own_miss_count(fake) -> None:  # type: ignore[no-untyped-def]
+    addr, _, _ = fake
+    res = run(["inspect", "n1", "--coordinator", addr, "--token", TOKEN])
+    assert res.exit_code == 0
+    assert "misses the node counted" not in res.stdout
+    assert "reads the node answered not-found" in res.stdout

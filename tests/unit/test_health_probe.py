@@ -64,6 +64,17 @@ def test_exit_code_follows_the_health_status(health_server) -> None:  # noqa: AN
     assert result.exit_code == 0 and "SERVING" in result.output
 
 
+def test_every_address_is_asked_and_reported(health_server) -> None:  # noqa: ANN001
+    """A SERVING answer first does not hide the others: each address gets its own answer."""
+    address, servicer, _ = health_server
+    servicer.set("", health_pb2.HealthCheckResponse.SERVING)
+    dead = f"127.0.0.1:{free_port()}"
+    result = CliRunner().invoke(health_command, [address, dead, address, "--timeout", "0.5"])
+    assert result.exit_code == 0, result.output
+    answers = [part.strip() for part in result.output.strip().split(";")]
+    assert answers == [f"{address}: SERVING", f"{dead}: unreachable (UNAVAILABLE)", f"{address}: SERVING"]
+
+
 def test_nothing_listening_is_unhealthy_and_says_unreachable() -> None:
     result = CliRunner().invoke(health_command, [f"127.0.0.1:{free_port()}", "--timeout", "0.5"])
     assert result.exit_code == 1 and "unreachable" in result.output
