@@ -20,7 +20,7 @@ class Plan:
     """What a fleet of `nodes` nodes, each holding `keys` keys at target `fpr`, costs and buys.
 
     Filter figures are per node (each node's filter is sized for `keys` keys). Probe figures
-    use the target rate p as the issue's formulas state: a key that exists costs
+    use the target rate p (shardsieve/fanout.py): a key that exists costs
     1 + (K-1)p probes, one that does not costs K p; avoided fan-out is 1 - probes/K.
     """
 

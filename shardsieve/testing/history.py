@@ -1,15 +1,25 @@
-"""A history checker for cluster and container tests: no acknowledged key is ever reported absent.
+"""A history checker for cluster and container tests: what a read reports must agree with the
+acknowledged writes and deletes around it.
 
-Tests record every acknowledged write and delete, and every read reply, with the monotonic
-times the operation started and finished. `violations()` then finds each read that reported a
-key absent although a write of that key was acknowledged before the read started and no delete
-of that key started between that write and the end of the read. That is the store's promise
-(ARCHITECTURE.md, promises 1-3) stated over an observed history, in the style of a linearizability
-check restricted to "absent" replies: a read overlapping a delete may go either way.
+Tests record every write and delete (acknowledged, or with an unknown outcome after an error) and
+every read reply, with the monotonic times the operation started and finished. `violations()`
+judges each read against the operations around it, in the style of a linearizability check
+(Herlihy & Wing, "Linearizability: a correctness condition for concurrent objects", ACM TOPLAS
+12(3), 1990) restricted to single keys: an operation that overlaps the read may count as before
+or after it. The rules are the promises of docs/architecture.md#promises stated over an observed
+history (#1-no-false-negatives-once-synced, #2-read-your-writes-through-a-coordinator,
+#4-nothing-acknowledged-is-lost):
 
-Found-replies are also checked: the value must be one some write of the key started before the
-read ended (a read never invents data), and not one that an acknowledged overwrite had already
-replaced before the read began (no acknowledged value is lost or changed, e.g. across restarts). Thread-safe; use one History per test.
+- lost key: a read reports k absent although a write of k was acknowledged before the read
+  started and no delete of k started between that write's start and the read's end;
+- invented value: a read finds a value no write of k started before the read ended;
+- lost update: a read finds a value that an acknowledged overwrite had replaced before the read
+  started;
+- resurrection: a read finds k although a delete of k was acknowledged before the read started
+  and no write of k that may have taken effect after that delete (one that overlapped or
+  followed it, acknowledged or still in flight when the read ended) exists.
+
+Thread-safe; use one History per test.
 """
 
 from __future__ import annotations
@@ -30,18 +40,25 @@ class Op:
     found: bool = False
     node_id: str = ""
     via: str = ""        # "coordinator" or "node"
+    acknowledged: bool = True   # False: the call failed, so the operation may or may not have happened
+
+    def may_follow(self, other: Op) -> bool:
+        """Whether this operation may have taken effect after `other` did: it overlaps or follows
+        it, or its outcome is unknown (an unacknowledged operation may still land at any time)."""
+        return not self.acknowledged or self.end > other.start
 
 
 @dataclass(frozen=True)
 class Violation:
     read: Op
-    write: Op | None
+    write: Op | None     # the write (or, for a resurrection, the delete) the read contradicts
     why: str
 
     def __str__(self) -> str:
         return (f"{self.why}: key {self.read.key!r} read [{self.read.start:.3f}, {self.read.end:.3f}] "
                 f"found={self.read.found} value={self.read.value!r}"
-                + (f"; write acked at {self.write.end:.3f} on {self.write.node_id} via {self.write.via}"
+                + (f"; {self.write.kind} acked at {self.write.end:.3f}"
+                   + (f" on {self.write.node_id}" if self.write.node_id else "") + f" via {self.write.via}"
                    if self.write else ""))
 
 
@@ -60,13 +77,18 @@ class History:
         return op
 
     def write(self, key: bytes, value: bytes, start: float, end: float | None = None, node_id: str = "",
-              via: str = "coordinator") -> Op:
-        """Record an acknowledged write (call only after the ack arrived)."""
-        return self._add(Op("write", key, start, self.now() if end is None else end, value, True, node_id, via))
+              via: str = "coordinator", acknowledged: bool = True) -> Op:
+        """Record a write: after its ack arrived, or with acknowledged=False after the call failed
+        (it may still have happened, so it may explain a value a read finds)."""
+        return self._add(Op("write", key, start, self.now() if end is None else end, value, True, node_id, via,
+                            acknowledged))
 
-    def delete(self, key: bytes, start: float, end: float | None = None, via: str = "coordinator") -> Op:
-        """Record a delete; record it even when unacknowledged (it may have happened)."""
-        return self._add(Op("delete", key, start, self.now() if end is None else end, via=via))
+    def delete(self, key: bytes, start: float, end: float | None = None, via: str = "coordinator",
+               acknowledged: bool = True) -> Op:
+        """Record a delete: after its ack arrived, or with acknowledged=False after the call failed
+        (it may have happened, so it may explain an absent key, but nothing must stay deleted)."""
+        return self._add(Op("delete", key, start, self.now() if end is None else end, via=via,
+                            acknowledged=acknowledged))
 
     def read(self, key: bytes, found: bool, value: bytes | None, start: float, end: float | None = None,
              node_id: str = "") -> Op:
@@ -77,20 +99,27 @@ class History:
         with self._lock:
             return {op.key for op in self.ops if op.kind == "write"}
 
+    def keys_written_on(self, node_id: str) -> list[bytes]:
+        """Keys of the acknowledged writes that landed on node_id, in the order recorded."""
+        with self._lock:
+            return [op.key for op in self.ops if op.kind == "write" and op.acknowledged and op.node_id == node_id]
+
     def live_keys(self) -> dict[bytes, bytes]:
         """Keys whose last recorded operation is an acknowledged write, with that write's value
-        (for a final sweep once the load stopped)."""
+        (for a final sweep once the load stopped). A key whose last operation was not
+        acknowledged is left out: its state is unknown."""
         with self._lock:
             ops = sorted((op for op in self.ops if op.kind != "read"), key=lambda o: o.start)
         live: dict[bytes, bytes] = {}
         for op in ops:
-            if op.kind == "write":
+            if op.kind == "write" and op.acknowledged:
                 live[op.key] = op.value or b""
             else:
                 live.pop(op.key, None)
         return live
 
     def violations(self) -> list[Violation]:
+        """Every read that breaks one of the rules in the module docstring (at most one per read)."""
         with self._lock:
             ops = list(self.ops)
         writes: dict[bytes, list[Op]] = defaultdict(list)
@@ -102,25 +131,38 @@ class History:
                 deletes[op.key].append(op)
         out: list[Violation] = []
         for r in (op for op in ops if op.kind == "read"):
-            if not r.found:
-                for w in writes.get(r.key, ()):
-                    if w.end >= r.start:
-                        continue            # not acknowledged before the read began
-                    if any(d.start < r.end and d.end > w.start for d in deletes.get(r.key, ())):
-                        continue            # a delete after (or overlapping) that write may explain it
-                    out.append(Violation(r, w, "acknowledged key reported absent"))
-                    break
-            else:
-                produced = [w for w in writes.get(r.key, ()) if w.value == r.value and w.start < r.end]
-                if not produced:
-                    out.append(Violation(r, None, "read returned a value no write produced"))
-                    continue
-                # An overwrite acknowledged before the read began hides every write that had been
-                # acknowledged before that overwrite started: returning such a value is a lost update.
-                newer = [w for w in writes.get(r.key, ()) if w.end < r.start]
-                if all(any(o.start > w.end and o.value != r.value for o in newer) for w in produced):
-                    out.append(Violation(r, produced[-1], "read returned a value an acknowledged overwrite replaced"))
+            problem = (self._absent_problem(r, writes[r.key], deletes[r.key]) if not r.found
+                       else self._found_problem(r, writes[r.key], deletes[r.key]))
+            if problem is not None:
+                out.append(problem)
         return out
+
+    @staticmethod
+    def _absent_problem(r: Op, writes: list[Op], deletes: list[Op]) -> Violation | None:
+        for w in writes:
+            if not w.acknowledged or w.end >= r.start:
+                continue            # not acknowledged before the read began
+            if any(d.start < r.end and d.may_follow(w) for d in deletes):
+                continue            # a delete after (or overlapping) that write may explain it
+            return Violation(r, w, "acknowledged key reported absent")
+        return None
+
+    @staticmethod
+    def _found_problem(r: Op, writes: list[Op], deletes: list[Op]) -> Violation | None:
+        produced = [w for w in writes if w.value == r.value and w.start < r.end]
+        if not produced:
+            return Violation(r, None, "read returned a value no write produced")
+        # A delete acknowledged before the read began removed the key for good, unless a write
+        # started before the read ended may have landed after that delete.
+        for d in deletes:
+            if d.acknowledged and d.end < r.start and not any(w.start < r.end and w.may_follow(d) for w in writes):
+                return Violation(r, d, "read found a key an acknowledged delete removed")
+        # An overwrite acknowledged before the read began hides every write that had been
+        # acknowledged before that overwrite started: returning such a value is a lost update.
+        newer = [w for w in writes if w.acknowledged and w.end < r.start]
+        if all(w.acknowledged and any(o.start > w.end and o.value != r.value for o in newer) for w in produced):
+            return Violation(r, produced[-1], "read returned a value an acknowledged overwrite replaced")
+        return None
 
     def assert_ok(self, limit: int = 10) -> None:
         bad = self.violations()

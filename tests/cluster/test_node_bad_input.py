@@ -3,7 +3,8 @@
 "Nothing changed" is checked from outside the node: its Stats (key count, fill, sequence,
 writes/deletes), a Get of a known key and of the rejected key, its keys via ScanKeys, and the
 test coordinator's replica compared with a filter rebuilt from those keys. Expected status
-codes are the ones the issue names (INVALID_ARGUMENT for request limits); the limits are the
+codes are the ones docs/security.md lists ("Status codes a hostile client gets": INVALID_ARGUMENT
+for request limits); the limits are the
 documented defaults (1 KiB keys, 1 MiB values) or the ones passed on the command line here.
 """
 

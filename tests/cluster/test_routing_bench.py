@@ -1,4 +1,5 @@
-"""`shardsieve bench routing --json` runs end to end and reports every field issue 4 point 10 names.
+"""`shardsieve bench routing --json` runs end to end and reports every field docs/cli.md
+("Planning, benchmarks and setup") names.
 
 Speed is not asserted (benchmarks print ratios; tests do not time things): the test checks the
 benchmark reports what it says, on a small key count, and that its ratios are the quotients of
@@ -47,7 +48,8 @@ def test_bench_routing_json_has_every_field() -> None:
     # 256 nodes fill four 64-bit words per row exactly: one bit per node per filter position, so the
     # index holds m/8 bytes per node filter (one bit per position; common practice).
     assert data["memory_ratio_vs_m_over_8"] == pytest.approx(1.0)
-    # The targets block names the issue's bounds, write-to-routable as push interval + 100 ms.
+    # The targets block names the bounds the benchmark checks, write-to-routable as push interval +
+    # 100 ms (docs/architecture.md#3-bounded-staleness: push interval plus network delay).
     targets = data["targets"]
     assert targets["write_to_routable_p99_ms"]["bound"] == 150.0
     assert {k: (v["op"], v["bound"]) for k, v in targets.items() if k != "write_to_routable_p99_ms"} == {

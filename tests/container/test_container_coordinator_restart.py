@@ -1,10 +1,10 @@
 """The coordinator container is killed and restarted while clients keep writing and reading.
 
-Reference: ARCHITECTURE.md — "coordinator: ... soft state rebuilt from the nodes", promise 1 (no
-false negatives once synced, through restarts of either side) and the safe-mode rule (nodes not
-yet resynced are stale and listed for every key). Measured and printed: coordinator container
-start -> every node in sync. The bound asserted is our own budget for a loaded 2-core machine
-(reconnect backoff capped at 0.5 s plus one snapshot per node), not a published figure.
+Reference: docs/architecture.md#who-owns-which-state (a coordinator's state is soft: replicas
+come back from the nodes), docs/architecture.md#1-no-false-negatives-once-synced (through restarts
+of either side) and docs/architecture.md#3-bounded-staleness (nodes not yet resynced are stale and
+safe mode lists them for every key). Measured and printed, never asserted (speed belongs in the
+README's figures): coordinator container start -> every node in sync.
 """
 
 from __future__ import annotations
@@ -21,7 +21,7 @@ from shardsieve.testing.procs import wait_until
 pytestmark = [pytest.mark.container, pytest.mark.cluster, pytest.mark.timeout(240)]
 
 SEED_KEYS = 150          # invented scenario: orders of a fictional bakery chain, "crumbworth"
-RESYNC_BOUND_S = 30.0    # our budget (see module docstring)
+RESYNC_DEADLINE_S = 60.0  # how long to wait for the resync before giving up (a deadline, not a claim)
 
 
 def key_of(i: int) -> bytes:
@@ -104,7 +104,7 @@ def test_coordinator_restart_under_load_resyncs_all_nodes_without_false_negative
         cluster.restart(coordinator)          # same container: same state volume, alias and host port
         started = time.monotonic()
         cluster.wait_serving(coordinator)
-        resync_s = cluster.wait_synced(coordinator, nodes, timeout=RESYNC_BOUND_S + 30)
+        cluster.wait_synced(coordinator, nodes, timeout=RESYNC_DEADLINE_S)
         all_synced = time.monotonic()
         # Keep the load on after the resync, so reads span the whole restart.
         wait_until(lambda: load.snapshot()["found"] >= before["found"] + 30, 30,
@@ -114,7 +114,6 @@ def test_coordinator_restart_under_load_resyncs_all_nodes_without_false_negative
     report_time("coordinator restart: container start -> all nodes in sync", all_synced - started)
     report_time("coordinator restart: kill -> all nodes in sync", all_synced - killed,
                 detail="load over the run: " + ", ".join(f"{k} {v}" for k, v in counts.items()))
-    assert all_synced - started <= RESYNC_BOUND_S, f"resync took {all_synced - started:.1f}s (waited {resync_s:.1f}s)"
     # Zero false negatives in safe mode: no acknowledged key was ever read as absent.
     assert counts["absent"] == 0, counts
     assert counts["write_ok"] > before["write_ok"], "writes resumed after the restart"

@@ -1,7 +1,7 @@
 """A node container is killed (SIGKILL, no clean shutdown) and a new container starts on its volume.
 
-Checked against the promises in ARCHITECTURE.md ("Promises every part keeps" 1 and 4): every write
-the coordinator acknowledged is still on the node, the coordinator's replica of the node's filter
+Checked against docs/architecture.md#1-no-false-negatives-once-synced and
+docs/architecture.md#4-nothing-acknowledged-is-lost: every write the coordinator acknowledged is still on the node, the coordinator's replica of the node's filter
 catches up, and afterwards no lookup misses a key. The recovery time (new container started ->
 coordinator in sync with the node) is measured and printed.
 """

@@ -3,8 +3,8 @@ network disconnect): the coordinator must not turn "cannot ask" into "not found"
 
 Reference: the Router contract in proto/shardsieve/v1/routing.proto ("UNAVAILABLE when a
 candidate that may hold the key could not be asked: absence cannot be proven then") and the safe
-mode rule of ARCHITECTURE.md ("stale: a node whose stream is down or whose last applied change is
-older than stale-after"; safe mode adds stale nodes to every candidate list). After healing the
+mode rule of docs/architecture.md#words ("stale": a node whose stream is down or from which
+nothing arrived for stale-after-s; safe mode adds stale nodes to every candidate list). After healing the
 node resyncs and reads succeed; the heal -> resynced time is measured and printed.
 """
 

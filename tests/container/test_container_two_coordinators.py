@@ -1,8 +1,8 @@
 """Two coordinators side by side: both route every key; when one dies the other serves every key.
 
-Reference: ARCHITECTURE.md — "coordinator: a process holding a replica of every node's filter;
-several may run side by side, each independent" and promise 3 (a write seen by one coordinator
-reaches the other within the push interval; the test waits for that with a deadline).
+Reference: docs/architecture.md#words ("coordinator": several may run side by side, each
+independent of the others) and docs/architecture.md#3-bounded-staleness (a write seen by one
+coordinator reaches the other within the push interval; the test waits for that with a deadline).
 """
 
 from __future__ import annotations

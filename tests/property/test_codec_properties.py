@@ -1,5 +1,6 @@
 """Property tests of the delta codec and snapshots: every delta and snapshot round-trips,
-every corruption of an encoded delta raises the specific error (issue 2, point 7)."""
+every corruption of an encoded delta raises the specific error
+(docs/architecture.md#5-bad-input-changes-nothing)."""
 
 from __future__ import annotations
 
@@ -144,7 +145,7 @@ def test_delta_header_byte_changed_raises(case: tuple[int, ChangeSet], pick: int
     try:
         codec.decode_delta(bytes(payload), bits)
     except CodecError as exc:
-        # a specific subclass, never the bare base class (issue 2, point 5)
+        # a specific subclass, never the bare base class (docs/architecture.md#5-bad-input-changes-nothing)
         assert type(exc) in SPECIFIC_ERRORS, type(exc)
         return
     raise AssertionError(f"altered header byte {index} of {header} decoded")

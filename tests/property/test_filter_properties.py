@@ -1,4 +1,5 @@
-"""Hypothesis properties of the Bloom and counting filters (issue 2, point 7)."""
+"""Hypothesis properties of the Bloom and counting filters (no false negatives:
+docs/architecture.md#1-no-false-negatives-once-synced)."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""`shardsieve status`: saturated and stale nodes stand out (issue 5 point 1).
+"""`shardsieve status`: saturated and stale nodes stand out (docs/cli.md, "Commands").
 
 The rows are built from admin_pb2.NodeStatus messages (the wire contract), and the rendered
 table is checked through rich's own recorder (Console(record=True).export_text),

@@ -220,7 +220,8 @@ def test_size_within_3_percent_of_entropy_bound(density: float) -> None:
     d = round(density * M)
     payload = encode_delta(ChangeSet(_random_positions(rng, M, d), _positions([])), M)
     # Entropy bound: log2 C(m, d) bits for a uniform d-subset of m (Shannon source coding /
-    # Kraft–McMillan; Cover & Thomas, "Elements of Information Theory", ch. 5). Issue 2 asks <= 1.03x.
+    # Kraft–McMillan; Cover & Thomas, "Elements of Information Theory", ch. 5). Our target, <= 1.03x,
+    # is the one README.md "Benchmarks" states.
     assert 8 * len(payload) <= 1.03 * codec.entropy_bound_bits(d, M)
 
 
@@ -232,7 +233,8 @@ def test_smaller_than_zlib_and_zstd_of_the_gap_array(density: float) -> None:
     ours = len(encode_delta(ChangeSet(positions, _positions([])), M))
     gaps = codec.gaps_of(positions).astype("<u4").tobytes()
     # Reference compressors: zlib level 9 (RFC 1950/1951, Python stdlib) and zstd level 19
-    # (zstandard package) of the same gaps as little-endian uint32. Issue 2 asks <= 0.85x zstd.
+    # (zstandard package) of the same gaps as little-endian uint32. Our target, <= 0.85x
+    # zstd, is the one README.md "Benchmarks" states.
     assert ours < len(zlib.compress(gaps, 9))
     assert ours <= 0.85 * len(zstandard.ZstdCompressor(level=19).compress(gaps))
 

@@ -1,4 +1,5 @@
-"""`shardsieve coordinator` settings: flags > environment > config file > defaults (issue 4 point 1).
+"""`shardsieve coordinator` settings: flags > environment > config file > defaults (docs/coordinator.md,
+"Settings").
 
 Precedence is the documented rule of shardsieve.config (flags win over environment over file
 over defaults: common practice for twelve-factor style daemons). The CLI is driven with click's
@@ -41,7 +42,7 @@ def test_flags_beat_env_beat_file(tmp_path: Path, captured: list[CoordinatorSett
     assert (s.id, s.listen, s.stale_after_s) == ("coord-from-file", "127.0.0.1:7411", 5.0)   # file only
     assert s.growth == 4.0 and s.max_concurrent_rebuilds == 3                               # env beats file
     assert s.mode == "fast" and s.metrics_port == 9412                                      # flag beats env
-    # Issue 4 defaults: stale-after 2 s, ratio 2, safe mode, shrink below a quarter, one rebuild at a time.
+    # Documented defaults (docs/coordinator.md, "Settings"): stale-after 2 s, ratio 2, safe mode, shrink below a quarter, one rebuild at a time.
     d = CoordinatorSettings()
     assert (d.stale_after_s, d.saturation_ratio, d.growth, d.mode, d.shrink_below, d.max_concurrent_rebuilds) == \
         (2.0, 2.0, 2.0, "safe", 0.25, 1)

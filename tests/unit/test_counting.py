@@ -72,7 +72,8 @@ def test_saturated_counters_are_never_decremented() -> None:
     assert cbf.saturated_counters() == distinct
     for _ in range(20):
         cbf.remove(key)
-    # pinned at 15: the bits stay set, so no false negative can appear (issue 2, point 4)
+    # pinned at 15: the bits stay set, so no false negative can appear
+    # (docs/architecture.md#1-no-false-negatives-once-synced)
     assert cbf.contains(key)
     assert cbf.saturated_counters() == distinct
     assert [int(p) for p in cbf.saturated_positions()] == sorted({int(p) for p in key_positions(key, G)})

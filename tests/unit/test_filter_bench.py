@@ -1,4 +1,5 @@
-"""`shardsieve bench filter` runs end to end and reports every field the issue names.
+"""`shardsieve bench filter` runs end to end and reports every field docs/wire-formats.md
+("How the delta size is measured") and README.md "Benchmarks" name.
 
 Speed is not asserted here (benchmarks print ratios; tests do not time things): the test
 checks the benchmark measures what it says, on a small key count.

@@ -2,8 +2,9 @@
 
 The run itself is replaced by a report built by the real Tally from recorded lookups (so the
 command's own wiring — print the report, then judge it — is what is tested). Requirement
-source: issue 5 point 2 ("false negatives ... must be zero, and the run exits non-zero if
-not"); exit code 8 is the one documented in README.md "Operating from the terminal".
+source: docs/loadtest.md ("What it does": the run exits 8 if any seeded key was reported absent)
+and docs/architecture.md#1-no-false-negatives-once-synced; exit code 8 is the one documented in
+README.md "Operating from the terminal".
 """
 
 from __future__ import annotations

@@ -1,4 +1,4 @@
-"""The load-test figure (issue 5 point 2, --plot): it is written, and its latency series is right.
+"""The load-test figure (docs/loadtest.md, "The plot"): it is written, and its latency series is right.
 
 Reference for the per-second latency percentiles: numpy.percentile on the raw values of each
 second, computed here independently. The PNG is checked by its signature (PNG spec, section 5.2:

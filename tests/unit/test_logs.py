@@ -1,4 +1,7 @@
-"""Structured logs (issue 4 point 8): one JSON object per line carrying every `extra=` field.
+"""Structured logs: one JSON object per line carrying every `extra=` field.
+
+What the daemons log is in docs/node.md ("Operations") and docs/coordinator.md ("Accounting and
+saturation": every decision is logged with its numbers).
 
 Reference: the json module parses each formatted line back (RFC 8259 JSON), so the check does
 not depend on the formatter's own encoding.

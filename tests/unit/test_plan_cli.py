@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-import math
 
 import pytest
 from click.testing import CliRunner
@@ -24,24 +23,26 @@ def test_json_fields_and_values() -> None:
     assert code == 0
     data = json.loads(out)
     assert REQUIRED_FIELDS <= set(data)
-    # m/n = -ln p / (ln 2)^2 and k = round((m/n) ln 2) (Bloom 1970)
-    m = math.ceil(-1_000_000 * math.log(0.01) / math.log(2) ** 2)
-    assert data["bits_per_key"] == pytest.approx(m / 1_000_000)
-    assert data["hashes"] == round(m / 1_000_000 * math.log(2))
-    # the ladder step actually used: next power of two above the formula m
-    assert data["ladder_bits"] == 1 << math.ceil(math.log2(m))
-    assert data["filter_bytes_per_node"] == data["ladder_bits"] // 8
-    assert data["coordinator_bytes"] == 20 * data["filter_bytes_per_node"]
-    # probes per lookup: 1 + (K-1)p for a present key, K p for an absent one (issue 2, point 2)
-    assert data["expected_probes_hit"] == pytest.approx(1 + 19 * 0.01)
-    assert data["expected_probes_miss"] == pytest.approx(20 * 0.01)
-    assert data["avoided_fanout_hit"] == pytest.approx(1 - (1 + 19 * 0.01) / 20)
+    # 10^6 keys at 1%: m = 9,585,059 bits and k = 7 (Kedmi, "Bloom Filters for the Perplexed", 2017,
+    # for m; hand arithmetic in tests/unit/test_sizing.py, WORKED_EXAMPLES), so 9.585059 bits per key.
+    assert data["bits_per_key"] == pytest.approx(9.585059)
+    assert data["hashes"] == 7
+    # the ladder step actually used: 2^24 = 16,777,216 (2^23 = 8,388,608 is below 9,585,059);
+    # 2,097,152 bytes per node, 41,943,040 bytes for 20 nodes
+    assert data["ladder_bits"] == 16_777_216
+    assert data["filter_bytes_per_node"] == 2_097_152
+    assert data["coordinator_bytes"] == 41_943_040
+    # probes per lookup (docs/loadtest.md, "The prediction"): 1 + 19 * 0.01 = 1.19 for a present key,
+    # 20 * 0.01 = 0.2 for an absent one; avoided fan-out (docs/architecture.md#words) 1 - 1.19/20 = 0.9405
+    assert data["expected_probes_hit"] == pytest.approx(1.19)
+    assert data["expected_probes_miss"] == pytest.approx(0.2)
+    assert data["avoided_fanout_hit"] == pytest.approx(0.9405)
 
 
 def test_table_shows_formula_and_ladder() -> None:
     code, out = run("--keys", "1000000", "--fpr", "0.01", "--nodes", "3")
     assert code == 0
-    assert "9,585,059" in out            # the formula m
+    assert "9,585,059" in out            # the formula m (Kedmi 2017; see test_json_fields_and_values)
     assert "16,777,216" in out           # the ladder step used (2^24)
     assert "ladder" in out
 
@@ -50,6 +51,7 @@ def test_nodes_default_to_one() -> None:
     code, out = run("--keys", "500", "--fpr", "0.05", "--json")
     assert code == 0
     data = json.loads(out)
+    # one node: every lookup probes it, 1 + 0 * p = 1 probe, nothing avoided (docs/loadtest.md, "The prediction")
     assert data["nodes"] == 1 and data["expected_probes_hit"] == 1.0 and data["avoided_fanout_hit"] == 0.0
 
 

@@ -15,8 +15,8 @@ from shardsieve.sizing import false_positive_rate
 # Fan, Cao, Almeida & Broder, "Summary Cache: A Scalable Wide-Area Web Cache Sharing
 # Protocol", IEEE/ACM Transactions on Networking 8(3), 2000: table of false-positive
 # probabilities by bits per entry m/n (rows) and hash count k (columns). The two entries
-# named in our issue (m/n=8,k=6 -> 0.0216; m/n=10,k=7 -> 0.00819) are quoted there; the
-# others are recalled from memory of the same table. Entries are kept as the printed
+# m/n=8,k=6 -> 0.0216 and m/n=10,k=7 -> 0.00819 were given to the project as quoted from that
+# table; the others are recalled from memory of the same table. Entries are kept as the printed
 # strings because the table's precision varies (0.092 but 0.0804).
 SUMMARY_CACHE_TABLE: dict[int, list[str]] = {
     2: ['0.393', '0.400'],
@@ -46,7 +46,7 @@ def test_formula_reproduces_summary_cache_table(ratio: int) -> None:
         assert abs(ours - float(printed)) <= _printed_half_unit(printed) + 1e-12, (ratio, k, ours, printed)
 
 
-def test_summary_cache_entries_named_in_the_issue() -> None:
+def test_the_two_quoted_summary_cache_entries() -> None:
     # Fan et al. (2000): m/n = 8, k = 6 -> 0.0216 ; m/n = 10, k = 7 -> 0.00819
     assert round(false_positive_rate(8_000_000, 6, 1_000_000), 4) == 0.0216
     assert round(false_positive_rate(10_000_000, 7, 1_000_000), 5) == 0.00819

@@ -119,7 +119,7 @@ def test_large_filter_splits_at_one_mebibyte() -> None:
     bloom = BloomFilter.from_bytes(geometry, np.random.default_rng(4).bytes(geometry.byte_size))  # fill ~ 1/2
     snap = encode_snapshot(bloom)
     assert snap.encoding == ENCODING_RAW
-    # issue 2, point 5: snapshot chunks are at most 1 MiB (a literal, so the limit cannot drift)
+    # snapshot chunks are at most 1 MiB (docs/wire-formats.md, "Snapshots") (a literal, so the limit cannot drift)
     assert MAX_CHUNK_BYTES == 1 << 20
     assert all(len(c) <= 1 << 20 for c in snap.chunks)
     assert [len(c) for c in snap.chunks] == [1 << 20, 1 << 20]      # 2 MiB of RAW filter bytes
