@@ -105,7 +105,7 @@ def test_stats_count_reads_and_wasted_probes(tmp_path: Path) -> None:
         s = stub.Stats(storage_pb2.NodeStatsRequest()).stats
         assert (s.reads, s.reads_missed, s.writes, s.key_count) == (4, 2, 1, 1)
         assert s.geometry.bits > 0 and 0 < s.fill < 1
-        # predicted FPR is fill^k (ARCHITECTURE.md "Words"; Bloom 1970)
+        # predicted FPR is fill^k (docs/architecture.md#words; Bloom 1970)
         assert s.predicted_fpr == pytest.approx(s.fill ** s.geometry.hashes, rel=1e-9)
     finally:
         node.stop()
@@ -269,7 +269,7 @@ def test_metrics_endpoint_matches_stats(tmp_path: Path) -> None:
         assert values["shardsieve_node_keys"] == stats.key_count == 37
         assert values["shardsieve_node_wasted_probes_total"] == stats.reads_missed == 1
         assert values["shardsieve_node_fill"] == pytest.approx(stats.fill)
-        # The rest of issue 4 point 8's list, on the node: lookups, FPR, delta bytes, rebuilds.
+        # The rest of the node's metrics (docs/node.md, "Operations"): reads, FPR, bytes pushed, rebuilds.
         assert values["shardsieve_node_reads_total"] == stats.reads == 1
         assert values["shardsieve_node_predicted_fpr"] == pytest.approx(stats.predicted_fpr)
         assert stats.predicted_fpr == pytest.approx(stats.fill ** stats.geometry.hashes)   # fill^k (Bloom 1970)
@@ -308,7 +308,7 @@ def test_a_stalled_coordinator_does_not_hold_back_another(tmp_path: Path) -> Non
 
 
 def test_heartbeats_carry_the_node_stats(tmp_path: Path) -> None:
-    """Issue 3 point 4: heartbeats reach the coordinator with key count, capacity, geometry,
+    """Heartbeats reach the coordinator (docs/node.md, "Sync") with key count, capacity, geometry,
     fill, predicted FPR, reads, wasted probes, writes, deletes and bytes pushed; the figures
     are those of the node's own Stats and of the filter rebuilt from its keys."""
     with TestCoordinator() as coord:
@@ -338,7 +338,7 @@ def test_heartbeats_carry_the_node_stats(tmp_path: Path) -> None:
             assert hb.key_count == own.key_count == 35
             assert hb.capacity == 3000
             assert hb.geometry == own.geometry and hb.geometry.bits == ref.geometry.bits
-            # fill = set bits / m, predicted FPR = fill^k (ARCHITECTURE.md "Words"; Bloom 1970)
+            # fill = set bits / m, predicted FPR = fill^k (docs/architecture.md#words; Bloom 1970)
             assert hb.fill == pytest.approx(ref.set_count() / ref.geometry.bits)
             assert hb.predicted_fpr == pytest.approx(hb.fill ** hb.geometry.hashes, rel=1e-9)
             assert own.bytes_pushed >= hb.bytes_pushed > 0
