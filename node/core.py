@@ -1,19 +1,21 @@
-"""The node's critical section: store write + filter update + change stream, under one lock.
+"""The node's critical section and the adapter around NodeSync: store + write lock + group commit.
 
 Why one lock: a key must never be in the store without its bits in the filter a coordinator
-routes with (no false negatives), and a delta must never carry half a write. So every write
-commits to the store, updates the counting filter(s) and is stamped with the (epoch,
-sequence) of the delta that will carry it while holding `NodeCore.lock`; the sync protocol
-object (`NodeSync`, no I/O, not thread-safe) is only ever called under the same lock.
+routes with, and a delta must never carry half a write
+(docs/architecture.md#1-no-false-negatives-once-synced). So every write commits to the store
+and is recorded in `NodeSync` (which counts it in the filters it owns and stamps it with the
+(epoch, sequence) of the delta that will carry it) while holding `NodeCore.lock`. NodeSync
+(no I/O, not thread-safe) is only ever called under the same lock.
 
-Rebuild (issue point 5): a second counting filter at the new geometry is filled by a scan of
-the store in key order, one batch per lock hold. A write during the scan touches the new
-filter only when its key is at or below the scan cursor; keys above the cursor are picked up
-by the scan itself (touching them twice would double-count a counter, or underflow one on a
-delete). When the scan is complete `NodeSync.begin_epoch` makes the new filter current and
-streams it as a snapshot under a new epoch; both filters receive every write until every
-coordinator verified the new one (OldFilterRetired), so the filter a coordinator routes with
-never lacks a key the node holds.
+Everything NodeSync produces comes out of one call, `NodeSync.ready()`. `sync_step` hands
+NodeSync out for one step under the lock and then carries the Ready out, in order: durable
+writes to the store's meta table, messages to each coordinator stream's outbox, actions
+(start a rebuild scan, log lines), then `ack` (docs/architecture.md#how-events-flow).
+
+Rebuild: NodeSync asks for a store scan (StartScan). A scan thread reads the store in key
+order, one batch per lock hold (so writes wait at most one batch), hands each batch to
+`NodeSync.scan_batch` and reports the end of the store with `scan_done`. Which filters a
+write reaches meanwhile is NodeSync's rule, not this module's.
 """
 
 from __future__ import annotations
@@ -21,15 +23,23 @@ from __future__ import annotations
 import logging
 import threading
 import time
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field
-from typing import Callable, Sequence
+from typing import Callable, Protocol
 
-from shardsieve.node.store import Store, StoreError
 from shardsieve import hashing
 from shardsieve.bloom import CountingBloomFilter
 from shardsieve.geometry import Geometry, geometry_for
-from shardsieve.sync import node_side
-from shardsieve.sync.node_side import NodeSync, NodeSyncConfig
+from shardsieve.node.store import Store, StoreError, iter_all_keys
+from shardsieve.sync.node_side import (
+    Durable,
+    NodeSync,
+    NodeSyncConfig,
+    StartScan,
+    StoreCounters,
+    WriteStamp,
+)
 from shardsieve.v1 import sync_pb2
 
 log = logging.getLogger("shardsieve.node.core")
@@ -37,6 +47,8 @@ log = logging.getLogger("shardsieve.node.core")
 META_EPOCH = "epoch"        # highest epoch this node id ever used; every start uses a larger one
 META_CAPACITY = "capacity"  # size of the last filter that every coordinator switched to
 META_FPR = "target_fpr"
+
+_LOG_LEVELS = {"info": logging.INFO, "warning": logging.WARNING}
 
 
 class InvalidInput(ValueError):
@@ -67,8 +79,18 @@ class WriteResult:
     old_position: tuple[int, int] | None = None
 
 
+class Outbox(Protocol):
+    """Where the messages for one coordinator stream go (the sync driver's send queue)."""
+
+    def room(self) -> int:
+        """Bytes of deltas and snapshot chunks the stream can take now (0: its queue is full)."""
+
+    def send(self, messages: Sequence[sync_pb2.NodeMessage]) -> None:
+        """Queue the messages in order; must not block."""
+
+
 @dataclass
-class Counters:
+class _Counters:
     reads: int = 0
     reads_missed: int = 0
     writes: int = 0
@@ -82,33 +104,11 @@ class _PendingWrite:
     done: bool = False
     result: list[bool] = field(default_factory=list)
     error: BaseException | None = None
-    epoch: int = 0
-    sequence: int = 0
-    old: tuple[int, int] | None = None
-
-
-@dataclass
-class RebuildScan:
-    """A filter being filled by a store scan. cursor: highest key already scanned in."""
-
-    capacity: int
-    target_fpr: float
-    filter: CountingBloomFilter
-    requested_by: str
-    reason: str
-    total_at_start: int
-    cursor: bytes | None = None
-    scan_done: bool = False
-    scanned: int = 0
-    started: float = field(default_factory=time.monotonic)
-
-    def covers(self, key: bytes) -> bool:
-        """True when the scan already passed key, so a write of key must update this filter too."""
-        return self.scan_done or (self.cursor is not None and key <= self.cursor)
+    stamp: WriteStamp | None = None
 
 
 class NodeCore:
-    """Store + counting filter(s) + NodeSync of one node, consistent under `lock`."""
+    """Store + NodeSync of one node, consistent under `lock`."""
 
     def __init__(self, node_id: str, store: Store, *, capacity: int, target_fpr: float, seed: int = 0,
                  limits: Limits = Limits(), scan_batch: int = 2000, push_interval: float = 0.05,
@@ -127,7 +127,7 @@ class NodeCore:
         self._queue_lock = threading.Lock()
         self._queue: list[_PendingWrite] = []
         self._counter_lock = threading.Lock()
-        self.counters = Counters()
+        self._counters = _Counters()
         self.ready = False
         # A rebuild that every coordinator switched to persisted its size; it wins over the configured one.
         stored_capacity = store.get_meta(META_CAPACITY)
@@ -140,40 +140,29 @@ class NodeCore:
             capacity, target_fpr = int(stored_capacity), float(stored_fpr)
         self.seed = seed
         self._initial = (capacity, target_fpr)
-        self.key_count = 0
         self.sync: NodeSync | None = None
-        self.rebuild: RebuildScan | None = None
-        self.rebuilds_completed = 0      # old filter retired after every coordinator verified the new one
-        self.rebuilds_abandoned = 0
-        self._rebuild_thread: threading.Thread | None = None
-        self._pending_flips = 0
+        self._outboxes: dict[str, Outbox] = {}
+        self._scan_keys: Iterator[list[bytes]] | None = None   # the store read of a rebuild scan
         self._push_now = threading.Event()
         self._stop = threading.Event()
         self._pusher: threading.Thread | None = None
-        self.listeners: list[Callable[[], None]] = []   # woken after a cut produced deltas
-        self.cut_hooks: list[Callable[[list, float], None]] = []  # (deltas, monotonic time) after each cut
+        self._scan_threads: list[threading.Thread] = []
 
-    # ------------------------------------------------------------------ views
+    # ------------------------------------------------------------------ views (logs and tests)
     @property
-    def filter(self) -> CountingBloomFilter:
-        """The current filter (the one Hellos and new deltas describe)."""
-        return self._sync().filter
+    def epoch(self) -> int:
+        with self.lock:
+            return self._sync().epoch
 
     @property
     def geometry(self) -> Geometry:
-        return self._sync().geometry
+        with self.lock:
+            return self._sync().geometry
 
     @property
-    def epoch(self) -> int:
-        return self._sync().epoch
-
-    @property
-    def capacity(self) -> int:
-        return self._sync().capacity
-
-    @property
-    def target_fpr(self) -> float:
-        return self._sync().target_fpr
+    def key_count(self) -> int:
+        with self.lock:
+            return self._sync().key_count
 
     def _sync(self) -> NodeSync:
         if self.sync is None:
@@ -189,19 +178,14 @@ class NodeCore:
         capacity, target_fpr = self._initial
         geometry = geometry_for(capacity, target_fpr, self.seed)
         total = 0
-        after: bytes | None = None
         last_report = started
         with self.lock:
             fresh = CountingBloomFilter(geometry)
-            while True:
+            for keys in iter_all_keys(self.store, 20_000):
                 if cancel is not None and cancel.is_set():
                     raise LoadCancelled(f"stopped while loading the filter ({total} keys scanned)")
-                keys = self.store.scan(after, 20_000)
-                if not keys:
-                    break
                 fresh.add_positions(hashing.positions(keys, geometry))
                 total += len(keys)
-                after = keys[-1]
                 now = time.monotonic()
                 if progress is not None and now - last_report >= 1.0:
                     progress(total, now - started)
@@ -210,9 +194,8 @@ class NodeCore:
                 progress(total, time.monotonic() - started)
             epoch = int(self.store.get_meta(META_EPOCH) or 0) + 1
             self.store.set_meta({META_EPOCH: str(epoch)})   # durable before any coordinator sees it
-            self.key_count = total
             config = NodeSyncConfig(push_interval_ms=max(1, int(round(self.push_interval * 1000))),
-                                    max_history_deltas=self.history_limit)
+                                    cut_after_bits=self.push_threshold, max_history_deltas=self.history_limit)
             self.sync = NodeSync(self.node_id, self.storage_address, fresh, epoch=epoch, capacity=capacity,
                                  target_fpr=target_fpr, key_count=total, config=config)
             self.ready = True
@@ -242,13 +225,19 @@ class NodeCore:
         values = self.store.get_many(keys) if len(keys) != 1 else [self.store.get(keys[0])]
         missed = sum(1 for v in values if v is None)
         with self._counter_lock:
-            self.counters.reads += len(keys)
-            self.counters.reads_missed += missed
+            self._counters.reads += len(keys)
+            self._counters.reads_missed += missed
         return values
 
     def scan_keys(self, after: bytes | None, limit: int) -> list[bytes]:
         self._require_ready()
         return self.store.scan(after, limit)
+
+    def counters(self) -> StoreCounters:
+        """The store traffic counted so far (reads, wasted probes, writes, deletes)."""
+        with self._counter_lock:
+            c = self._counters
+            return StoreCounters(reads=c.reads, reads_missed=c.reads_missed, writes=c.writes, deletes=c.deletes)
 
     # ------------------------------------------------------------------ writes
     def put_many(self, items: Sequence[tuple[bytes, bytes]]) -> list[WriteResult]:
@@ -262,8 +251,8 @@ class NodeCore:
                                    f"({self.limits.max_value_bytes})")
         if not items:
             return []
-        created, epoch, sequence, old = self._write("put", items)
-        return [WriteResult(c, epoch, sequence, old) for c in created]
+        created, stamp = self._write("put", items)
+        return [WriteResult(c, stamp.epoch, stamp.sequence, stamp.old_position) for c in created]
 
     def delete_many(self, keys: Sequence[bytes]) -> list[WriteResult]:
         """Validate, delete in one transaction, uncount only keys that existed."""
@@ -272,14 +261,15 @@ class NodeCore:
         self._check_keys(keys)
         if not keys:
             return []
-        existed, epoch, sequence, old = self._write("delete", keys)
-        return [WriteResult(e, epoch, sequence, old) for e in existed]
+        existed, stamp = self._write("delete", keys)
+        return [WriteResult(e, stamp.epoch, stamp.sequence, stamp.old_position) for e in existed]
 
-    def _write(self, kind: str, payload: list) -> tuple[list[bool], int, int, tuple[int, int] | None]:
+    def _write(self, kind: str, payload: list) -> tuple[list[bool], WriteStamp]:
         """Group commit: queue the op; whoever holds the write lock next commits every queued op
-        in one transaction (one fsync), updates the filters in queue order and stamps them all.
-        Concurrent writers thus share a sync instead of paying one each; a lone writer commits
-        alone at once. A failed commit fails every op of its group (none was applied)."""
+        in one transaction (one fsync), records them in NodeSync in queue order and gives them
+        all the stamp taken after the last one. Concurrent writers thus share a sync instead of
+        paying one each; a lone writer commits alone at once. A failed commit fails every op of
+        its group (none was applied)."""
         op = _PendingWrite(kind, payload)
         with self._queue_lock:
             self._queue.append(op)
@@ -289,24 +279,25 @@ class NodeCore:
                     ops, self._queue = self._queue, []
                 try:
                     results = self.store.write_batch([(o.kind, o.payload) for o in ops])
+                    sync = self._sync()
+                    stamp: WriteStamp | None = None
                     writes = deletes = 0
                     for o, flags in zip(ops, results):      # the commit returned: durable
                         if o.kind == "put":
-                            changed = [k for (k, _), c in zip(o.payload, flags) if c]
+                            stamp = sync.record(added=[k for (k, _), c in zip(o.payload, flags) if c])
                             writes += len(o.payload)
                         else:
-                            changed = [k for k, e in zip(o.payload, flags) if e]
+                            stamp = sync.record(removed=[k for k, e in zip(o.payload, flags) if e])
                             deletes += len(o.payload)
-                        if changed:
-                            self._apply(changed, add=o.kind == "put")
                         o.result = flags
-                    epoch, sequence = self._stamp()
-                    old = self._old_stamp()
+                    assert stamp is not None    # the group holds at least this op
                     for o in ops:
-                        o.epoch, o.sequence, o.old, o.done = epoch, sequence, old, True
+                        o.stamp, o.done = stamp, True
+                    if stamp.cut_due:
+                        self._push_now.set()
                     with self._counter_lock:
-                        self.counters.writes += writes
-                        self.counters.deletes += deletes
+                        self._counters.writes += writes
+                        self._counters.deletes += deletes
                 except BaseException as exc:
                     if not isinstance(exc, StoreError):
                         log.exception("write failed after the store call", extra={"ops": len(ops)})
@@ -315,74 +306,52 @@ class NodeCore:
                             o.error, o.done = exc, True
         if op.error is not None:
             raise op.error
-        return op.result, op.epoch, op.sequence, op.old
+        assert op.stamp is not None
+        return op.result, op.stamp
 
-    def _stamp(self) -> tuple[int, int]:
-        """(epoch, sequence) a coordinator must have applied to hold the current filter state:
-        the next delta's when changes are pending since the last cut, else the last cut's (an
-        overwrite, a delete of a missing key, or a key whose bits were all set already, needs no
-        new delta; naming one that may never be cut would hold a read-your-writes hint forever).
-        "Nothing pending" is judged by the checksum, so a 2^-64 coincidence could only make a
-        coordinator drop its hint one push interval early."""
-        sync = self._sync()
-        if sync.filter.checksum == sync.checksum:
-            return sync.epoch, sync.sequence
-        return sync.pending_sequence
-
-    def _old_stamp(self) -> tuple[int, int] | None:
-        """During a rebuild hand-over the write is in the old filter too: the old epoch's
-        position that holds it (same rule as _stamp). A coordinator still on the old epoch holds
-        the write once its replica reaches it, even if the rebuild is then abandoned."""
-        cut = self._sync().old_cut
-        old_filter = self._sync().old_filter
-        if cut is None or old_filter is None:
-            return None
-        epoch, sequence, checksum = cut
-        return (epoch, sequence) if old_filter.checksum == checksum else (epoch, sequence + 1)
-
-    def _apply(self, keys: list[bytes], add: bool) -> None:
-        """Filter side of a committed write (caller holds the lock): every live filter, and a
-        filter being scanned only for keys the scan already passed."""
-        sync = self._sync()
-        targets: list[tuple[CountingBloomFilter, list[bytes]]] = [(sync.filter, keys)]
-        if sync.old_filter is not None:
-            targets.append((sync.old_filter, keys))
-        rb = self.rebuild
-        if rb is not None and not rb.scan_done:
-            covered = [k for k in keys if rb.covers(k)]
-            if covered:
-                targets.append((rb.filter, covered))
-        cache: dict[tuple[Geometry, int], object] = {}
-        for filt, subset in targets:
-            key_id = (filt.geometry, len(subset))
-            pos = cache.get(key_id)
-            if pos is None:
-                pos = hashing.positions(subset, filt.geometry)
-                cache[key_id] = pos
-            if add:
-                filt.add_positions(pos)  # type: ignore[arg-type]
-            else:
-                filt.remove_positions(pos)  # type: ignore[arg-type]
-        self.key_count += len(keys) if add else -len(keys)
-        self._pending_flips += len(keys) * sync.geometry.hashes
-        if self._pending_flips >= self.push_threshold:
-            self._push_now.set()
-
-    # ------------------------------------------------------------------ change stream
-    def cut(self, now: float | None = None) -> list:
-        """Cut pending changes into deltas (normally the pusher thread does this every push interval)."""
-        now = time.monotonic() if now is None else now
+    # ------------------------------------------------------------------ one NodeSync step
+    @contextmanager
+    def sync_step(self, now: float | None = None) -> Iterator[NodeSync]:
+        """Hold the node lock, hand out NodeSync for one step (inputs), then carry out what is
+        ready. Every caller of NodeSync outside the write path goes through here."""
         with self.lock:
             sync = self._sync()
-            deltas = sync.cut(now, key_count=self.key_count)
-            self._pending_flips = 0
-            self._handle_events()
-        if deltas:
-            for hook in self.cut_hooks:
-                hook(deltas, now)
-            for listener in self.listeners:
-                listener()
-        return deltas
+            try:
+                yield sync
+            finally:
+                self._carry_out(sync, time.monotonic() if now is None else now)
+
+    def _carry_out(self, sync: NodeSync, now: float) -> None:
+        """Durable writes, then messages per stream, then actions; then acknowledge."""
+        ready = sync.ready(now, {peer: outbox.room() for peer, outbox in self._outboxes.items()})
+        if ready.durable is not None:
+            self._persist(ready.durable)
+        for peer, messages in ready.messages.items():
+            outbox = self._outboxes.get(peer)
+            if outbox is not None:
+                outbox.send(messages)
+        for action in ready.actions:
+            if isinstance(action, StartScan):
+                self._start_scan(action)
+            else:
+                log.log(_LOG_LEVELS[action.level], action.message, extra=dict(action.fields))
+        sync.ack(ready)
+
+    def _persist(self, durable: Durable) -> None:
+        values: dict[str, str] = {}
+        if durable.highest_epoch is not None:
+            values[META_EPOCH] = str(durable.highest_epoch)
+        if durable.rebuilt_size is not None:
+            capacity, target_fpr = durable.rebuilt_size
+            values[META_CAPACITY], values[META_FPR] = str(capacity), repr(target_fpr)
+        self.store.set_meta(values)
+
+    # ------------------------------------------------------------------ change stream
+    def cut(self, now: float | None = None) -> list[tuple[int, int]]:
+        """Cut pending changes into deltas and hand them to every stream (normally the pusher
+        thread does this every push interval). Returns the (epoch, sequence) of each delta."""
+        with self.sync_step(now) as sync:
+            return sync.cut()
 
     def start_pusher(self, interval: float | None = None) -> None:
         if interval is not None:
@@ -395,8 +364,8 @@ class NodeCore:
         self._push_now.set()
         if self._pusher is not None:
             self._pusher.join(5.0)
-        if self._rebuild_thread is not None:
-            self._rebuild_thread.join(5.0)
+        for thread in self._scan_threads:
+            thread.join(5.0)
 
     def _push_loop(self) -> None:
         """Cut on a fixed cadence of push_interval, plus extra cuts when the size threshold fires."""
@@ -416,32 +385,19 @@ class NodeCore:
                 if next_cut <= now:          # fell behind (a long lock hold): restart the cadence
                     next_cut = now + self.push_interval
 
-    # ------------------------------------------------------------------ per-coordinator (driver calls)
-    def peer_open(self, peer: str, now: float) -> list[sync_pb2.NodeMessage]:
-        with self.lock:
-            out = self._sync().connect(peer, now)
-            self._handle_events()
-            return out
+    # ------------------------------------------------------------------ coordinator streams (driver calls)
+    def open_stream(self, peer: str, outbox: Outbox, now: float) -> None:
+        """A stream to a coordinator opened: its messages go to `outbox` from now on."""
+        with self.sync_step(now) as sync:
+            self._outboxes[peer] = outbox
+            sync.connect(peer, now)
 
-    def peer_receive(self, peer: str, msg: sync_pb2.CoordinatorMessage, now: float) -> list[sync_pb2.NodeMessage]:
+    def close_stream(self, peer: str) -> None:
         with self.lock:
-            try:
-                return self._sync().receive(peer, msg, now)
-            finally:
-                self._handle_events()
-
-    def peer_poll(self, peer: str, now: float) -> list[sync_pb2.NodeMessage]:
-        with self.lock:
-            try:
-                return self._sync().outgoing(peer, now)
-            finally:
-                self._handle_events()
-
-    def peer_close(self, peer: str) -> None:
-        with self.lock:
+            self._outboxes.pop(peer, None)
             if self.sync is not None:
-                self.sync.disconnect(peer)
-                self._handle_events()
+                with self.sync_step() as sync:
+                    sync.disconnect(peer)
 
     def peer_lag(self, peer: str) -> int:
         """Sequences of the current epoch cut but not acknowledged by peer (-1: not connected)."""
@@ -449,131 +405,80 @@ class NodeCore:
             sync = self.sync
             if sync is None or peer not in sync.peers:
                 return -1
-            status = sync.peer_status(peer)
-            if status.stream_epoch != sync.epoch:
-                return sync.sequence + 1
-            return max(0, sync.sequence - status.acked)
-
-    def heartbeat(self) -> sync_pb2.NodeMessage:
-        with self.lock:
-            return self._sync().heartbeat(self.stats_proto())
+            return sync.peer_status(peer).lag
 
     # ------------------------------------------------------------------ rebuild
-    def _handle_events(self) -> None:
-        """React to NodeSync events (caller holds the lock)."""
-        sync = self._sync()
-        for event in sync.take_events():
-            if isinstance(event, node_side.RebuildRequested):
-                self._start_rebuild(event.peer, int(event.request.capacity), float(event.request.target_fpr),
-                                    event.request.reason)
-            elif isinstance(event, node_side.PeerSwitched):
-                log.info("coordinator switched to the rebuilt filter", extra={"peer": event.peer,
-                                                                             "epoch": event.epoch})
-            elif isinstance(event, node_side.OldFilterRetired):
-                self.store.set_meta({META_CAPACITY: str(sync.capacity), META_FPR: repr(sync.target_fpr)})
-                self.rebuild = None
-                self.rebuilds_completed += 1
-                log.info("rebuild complete, old filter retired", extra={
-                    "old_epoch": event.old_epoch, "epoch": event.new_epoch, "capacity": sync.capacity,
-                    "geometry": str(sync.geometry)})
-            elif isinstance(event, node_side.RebuildAbandoned):
-                self.rebuild = None
-                self.rebuilds_abandoned += 1
-                self._persist_epoch(event.epoch)
-                log.warning("rebuild abandoned", extra={"epoch": event.epoch, "reason": event.reason})
-            elif isinstance(event, node_side.SnapshotStarted):
-                log.info("snapshot cut", extra={"peer": event.peer, "epoch": event.epoch, "sequence": event.sequence,
-                                                "purpose": "rebuild" if event.purpose == node_side.PURPOSE_REBUILD
-                                                else "resync", "reason": event.reason,
-                                                "encoded_bytes": event.encoded_bytes})
-
-    def _persist_epoch(self, epoch: int) -> None:
-        current = int(self.store.get_meta(META_EPOCH) or 0)
-        if epoch > current:
-            self.store.set_meta({META_EPOCH: str(epoch)})
-
-    def _start_rebuild(self, peer: str, capacity: int, target_fpr: float, reason: str) -> None:
-        sync = self._sync()
-        if self.rebuild is not None or sync.dual_write:
-            return
-        geometry = geometry_for(capacity, target_fpr, self.seed)
-        sync.start_rebuild(capacity, target_fpr, time.monotonic())
-        self.rebuild = RebuildScan(capacity=capacity, target_fpr=target_fpr, filter=CountingBloomFilter(geometry),
-                                   requested_by=peer, reason=reason, total_at_start=self.key_count)
-        log.info("rebuild started", extra={"peer": peer, "capacity": capacity, "target_fpr": target_fpr,
-                                           "geometry": str(geometry), "keys": self.key_count, "reason": reason})
-        if self.background_rebuild:
-            self._rebuild_thread = threading.Thread(target=self._rebuild_scan, name="rebuild-scan", daemon=True)
-            self._rebuild_thread.start()
-
     def request_rebuild(self, capacity: int, target_fpr: float, reason: str = "local") -> None:
         """Start a rebuild without a coordinator (tools and tests); same path as a coordinator request."""
-        with self.lock:
-            self._start_rebuild("local", capacity, target_fpr, reason)
+        now = time.monotonic()
+        with self.sync_step(now) as sync:
+            sync.request_rebuild(capacity, target_fpr, reason=reason, requested_by="local", now=now)
+
+    def _start_scan(self, action: StartScan) -> None:
+        """Carry out StartScan (lock held): a key-ordered read of the store, one batch per step."""
+        self._scan_keys = iter_all_keys(self.store, self.scan_batch)
+        if self.background_rebuild:
+            thread = threading.Thread(target=self._rebuild_scan, args=(action.keys,), name="rebuild-scan",
+                                      daemon=True)
+            self._scan_threads = [t for t in self._scan_threads if t.is_alive()] + [thread]
+            thread.start()
 
     def rebuild_step(self) -> bool:
-        """Scan one batch into the rebuild filter under the lock; at the end hand it to NodeSync.
-        Returns True when no scan is left to do."""
-        with self.lock:
-            rb = self.rebuild
-            if rb is None or rb.scan_done:
-                return True
-            keys = self.store.scan(rb.cursor, self.scan_batch)
-            if keys:
-                rb.filter.add_positions(hashing.positions(keys, rb.filter.geometry))
-                rb.cursor = keys[-1]
-                rb.scanned += len(keys)
-                self._sync().report_scan_progress(rb.scanned / max(1, rb.total_at_start, rb.scanned))
-                return False
-            rb.scan_done = True
-            epoch = self._sync().begin_epoch(rb.filter, rb.capacity, rb.target_fpr, time.monotonic())
-            self._persist_epoch(epoch)
-            log.info("rebuild scan complete, streaming the new filter", extra={
-                "epoch": epoch, "keys": rb.scanned, "seconds": round(time.monotonic() - rb.started, 3)})
-            self._handle_events()
-            return True
+        """One batch of a rebuild scan under the lock. Returns True when no scan is left to do."""
+        return self._scan_step() is None
 
-    def _rebuild_scan(self) -> None:
+    def _scan_step(self) -> int | None:
+        """Read the next batch of keys and hand it to NodeSync (or report the end of the store),
+        in one lock hold so no write slips between the read and the hand-over. Returns the
+        number of keys handed, None when there is no scan (any more)."""
+        now = time.monotonic()
+        with self.sync_step(now) as sync:
+            if self._scan_keys is None:
+                return None
+            keys = next(self._scan_keys, None)
+            if keys:
+                sync.scan_batch(keys)
+                return len(keys)
+            self._scan_keys = None
+            sync.scan_done(now)
+            return None
+
+    def _rebuild_scan(self, total: int) -> None:
         """Background scan: one locked batch at a time, so writes wait at most one batch."""
         last_log = time.monotonic()
+        scanned = 0
         try:
             while not self._stop.is_set():
-                if self.rebuild_step():
+                handed = self._scan_step()
+                if handed is None:
                     break
+                scanned += handed
                 now = time.monotonic()
-                rb = self.rebuild
-                if rb is not None and now - last_log >= 1.0:
-                    log.info("rebuild scanning", extra={"keys_scanned": rb.scanned, "of": rb.total_at_start})
+                if now - last_log >= 1.0:
+                    log.info("rebuild scanning", extra={"keys_scanned": scanned, "of": total})
                     last_log = now
-        except Exception as exc:  # noqa: BLE001 - a failed scan must not leave dual writes running
+        except Exception as exc:  # noqa: BLE001 - a failed scan must not leave the rebuild running
             log.exception("rebuild scan failed")
-            with self.lock:
-                if self.sync is not None and self.sync.dual_write and self.sync.old_filter is None:
-                    self.sync.abandon_rebuild(f"scan failed: {exc}")
-                    self._handle_events()
+            try:
+                with self.sync_step() as sync:
+                    self._scan_keys = None
+                    sync.scan_failed(f"scan failed: {exc}")
+            except Exception:  # noqa: BLE001 - logged; the node keeps serving with the old filter
+                log.exception("could not abandon the failed rebuild")
         self._push_now.set()
 
     # ------------------------------------------------------------------ stats
     def stats(self) -> dict[str, object]:
+        """Every figure of the node (the wire stats plus local-only rebuild counts), for metrics."""
         with self.lock:
-            sync = self._sync()
-            with self._counter_lock:
-                c = Counters(**vars(self.counters))
-            filt = sync.filter
-            return {
-                "key_count": self.key_count, "capacity": sync.capacity, "geometry": sync.geometry,
-                "fill": float(filt.fill()), "predicted_fpr": float(filt.predicted_fpr()),
-                "reads": c.reads, "reads_missed": c.reads_missed, "writes": c.writes, "deletes": c.deletes,
-                "bytes_pushed": int(sync.bytes_pushed), "epoch": sync.epoch, "sequence": sync.sequence,
-                "target_fpr": sync.target_fpr, "rebuild_epoch": sync.rebuild_epoch,
-                "rebuild_progress": float(sync.rebuild_progress), "rebuild_phase": sync.rebuild_phase,
-                "saturated_counters": int(filt.saturated_counters()),
-                "rebuilds_completed": self.rebuilds_completed, "rebuilds_abandoned": self.rebuilds_abandoned,
-            }
+            report = self._sync().report(self.counters())
+        s = report.stats
+        out: dict[str, object] = {f.name: getattr(s, f.name) for f in s.DESCRIPTOR.fields}
+        out["geometry"] = Geometry.from_proto(s.geometry)
+        out["rebuilds_completed"] = report.rebuilds_completed
+        out["rebuilds_abandoned"] = report.rebuilds_abandoned
+        return out
 
     def stats_proto(self) -> sync_pb2.NodeStats:
-        s = self.stats()
-        geometry = s.pop("geometry")
-        for local_only in ("rebuilds_completed", "rebuilds_abandoned"):   # metrics only, not on the wire
-            s.pop(local_only)
-        return sync_pb2.NodeStats(geometry=geometry.to_proto(), **s)  # type: ignore[arg-type, union-attr]
+        with self.lock:
+            return self._sync().report(self.counters()).stats

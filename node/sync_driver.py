@@ -1,11 +1,13 @@
 """One long-lived FilterSync.Stream per coordinator: the thin I/O driver around the node's NodeSync.
 
 Each coordinator gets its own thread, channel, outbound queue and backoff, so a slow or dead
-coordinator never holds back another, and writes never wait on any of them (writes only
-touch NodeCore; the driver pulls outgoing messages from it). The outbound queue is bounded
-in effect: the driver asks the protocol object for more only while fewer than
-`MAX_QUEUED` messages wait to be sent; the protocol object bounds the history it keeps for a
-lagging coordinator and switches it to a snapshot beyond that.
+coordinator never holds back another, and writes never wait on any of them. The driver feeds
+NodeSync its inputs (stream opened, each coordinator message, heartbeat and retransmit
+ticks, stream closed) through `NodeCore.sync_step`, which holds the node lock and then
+carries out NodeSync's Ready; this stream's messages land in its outbound queue (its
+`Outbox`). The queue is bounded in effect: NodeSync is given a send budget for this stream
+only while fewer than `MAX_QUEUED` messages wait to be sent; it bounds the history it keeps
+for a lagging coordinator and switches it to a snapshot beyond that.
 
 Reconnects use jittered exponential backoff (after the n-th failure in a row sleep
 uniform(min/2, min(max, min*2^n)): "full jitter" of AWS Architecture Blog, "Exponential
@@ -20,18 +22,33 @@ import queue
 import random
 import threading
 import time
-from typing import Any, Callable, Iterator
+from typing import Any, Callable, Iterator, Sequence
 
 import grpc
 
 from shardsieve.security import make_channel
 from shardsieve.sync.errors import SyncError
+from shardsieve.sync.node_side import SEND_BUDGET_BYTES
 from shardsieve.v1 import sync_pb2, sync_pb2_grpc
 
 log = logging.getLogger("shardsieve.node.sync")
 
 MAX_QUEUED = 64
 _CLOSE = object()
+
+
+class _QueueOutbox:
+    """NodeCore's Outbox for one stream: the queue the gRPC request iterator reads."""
+
+    def __init__(self, q: queue.Queue[Any]) -> None:
+        self.queue = q
+
+    def room(self) -> int:
+        return SEND_BUDGET_BYTES if self.queue.qsize() < MAX_QUEUED else 0
+
+    def send(self, messages: Sequence[sync_pb2.NodeMessage]) -> None:
+        for msg in messages:
+            self.queue.put(msg)
 
 
 class SyncDriver:
@@ -60,7 +77,6 @@ class SyncDriver:
         self.connects = 0
         self.acks = 0
         self.last_error = ""
-        core.listeners.append(self._wake.set)
 
     # ------------------------------------------------------------------ lifecycle
     def start(self) -> None:
@@ -69,10 +85,6 @@ class SyncDriver:
     def stop(self) -> None:
         self._stop.set()
         self._wake.set()
-        try:
-            self.core.listeners.remove(self._wake.set)
-        except ValueError:
-            pass
 
     def join(self, timeout: float | None = None) -> None:
         self._thread.join(timeout)
@@ -110,13 +122,14 @@ class SyncDriver:
             ("grpc.max_send_message_length", 64 << 20), ("grpc.max_receive_message_length", 64 << 20),
             ("grpc.keepalive_time_ms", 10_000), ("grpc.keepalive_timeout_ms", 5_000)])
         call = None
+        opened = False
         try:
-            for msg in self.core.peer_open(self.peer, time.monotonic()):
-                outq.put(msg)
+            self.core.open_stream(self.peer, _QueueOutbox(outq), time.monotonic())   # queues the Hello
+            opened = True
             stub = sync_pb2_grpc.FilterSyncStub(channel)
             call = stub.Stream(self._requests(outq), metadata=self.metadata)
             self.connects += 1
-            reader = threading.Thread(target=self._read, args=(call, outq, got_ack, reader_done),
+            reader = threading.Thread(target=self._read, args=(call, got_ack, reader_done),
                                       name=f"sync-read-{self.address}", daemon=True)
             reader.start()
             last_heartbeat = 0.0
@@ -124,12 +137,11 @@ class SyncDriver:
                 self._wake.wait(self.push_interval)
                 self._wake.clear()
                 now = time.monotonic()
-                if outq.qsize() < MAX_QUEUED:
-                    for msg in self.core.peer_poll(self.peer, now):
-                        outq.put(msg)
-                if now - last_heartbeat >= self.heartbeat_interval:
-                    outq.put(self.core.heartbeat())
-                    last_heartbeat = now
+                # a tick: retransmit timers run, and the queue may have room again
+                with self.core.sync_step(now) as sync:
+                    if now - last_heartbeat >= self.heartbeat_interval:
+                        sync.heartbeat(self.peer, self.core.counters())
+                        last_heartbeat = now
             return got_ack.is_set()
         except SyncError as exc:
             self.last_error = f"{type(exc).__name__}: {exc}"
@@ -141,7 +153,8 @@ class SyncDriver:
             outq.put(_CLOSE)
             if call is not None:
                 call.cancel()
-            self.core.peer_close(self.peer)
+            if opened:
+                self.core.close_stream(self.peer)
             channel.close()
 
     def _requests(self, outq: queue.Queue[Any]) -> Iterator[sync_pb2.NodeMessage]:
@@ -153,23 +166,22 @@ class SyncDriver:
                 self.on_sent(msg, time.monotonic())
             yield msg
 
-    def _read(self, call: Any, outq: queue.Queue[Any], got_ack: threading.Event, done: threading.Event) -> None:
+    def _read(self, call: Any, got_ack: threading.Event, done: threading.Event) -> None:
         try:
             for reply in call:
                 self.connected = True
                 if reply.WhichOneof("body") == "ack":
                     self.acks += 1
                     got_ack.set()
+                now = time.monotonic()
                 try:
-                    out = self.core.peer_receive(self.peer, reply, time.monotonic())
+                    with self.core.sync_step(now) as sync:
+                        sync.receive(self.peer, reply, now)
                 except SyncError as exc:
                     self.last_error = f"{type(exc).__name__}: {exc}"
                     log.warning("coordinator message refused, resetting stream",
                                 extra={"coordinator": self.address, "error": self.last_error})
                     return
-                for msg in out:
-                    outq.put(msg)
-                self._wake.set()
         except grpc.RpcError as exc:
             code = exc.code() if hasattr(exc, "code") else None
             if code != grpc.StatusCode.CANCELLED:

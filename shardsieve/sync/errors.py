@@ -76,6 +76,6 @@ class UnknownPeer(SyncError):
 
 
 class RebuildStateError(SyncError):
-    """begin_epoch / abandon_rebuild called when the rebuild state does not allow it."""
+    """A rebuild step the phase table does not allow (e.g. scan_done with no scan running)."""
 
     grpc_status_name = "INTERNAL"

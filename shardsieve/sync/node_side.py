@@ -1,20 +1,28 @@
 """Node end of the sync protocol: a plain object, no sockets, threads, clocks or files.
 
-The node daemon owns one `NodeSync`, calls it under its own lock (the object is not
-thread-safe) and moves its messages over one gRPC stream per coordinator ("peer"):
+`NodeSync` owns every counting filter of the node: the current one, the previous one while
+a rebuild hands over, and the one a rebuild scan fills. It also owns the rule of which of
+them a committed store change goes to, the change stream of each live epoch, one cursor
+per coordinator ("peer") and the rebuild phase (docs/architecture.md#who-owns-which-state).
+The daemon calls it under its own lock (the object is not thread-safe):
 
-    sync = NodeSync(node_id, storage_address, counting_filter, epoch=persisted_epoch,
+    sync = NodeSync(node_id, storage_address, loaded_filter, epoch=persisted_epoch + 1,
                     capacity=..., target_fpr=..., key_count=store_count)
-    # on every write/delete (same critical section as the store write):
-    filter.add(key); ack = sync.pending_sequence        # WriteAck(epoch, sequence)
-    # every push interval (or when the size threshold is reached):
-    sync.cut(now, key_count=store_count)
-    for peer in connected: send(sync.outgoing(peer, now))
-    # stream opened / message in / stream ended:
-    send(sync.connect(peer, now)); send(sync.receive(peer, msg, now)); sync.disconnect(peer)
-    # after every call: for event in sync.take_events(): ...  (rebuild requests, retirements)
+    # inputs
+    stamp = sync.record(added_keys, removed_keys)  # right after the store commit -> WriteAck
+    sync.cut()                                     # every push interval, or when stamp.cut_due
+    sync.connect(peer, now); sync.receive(peer, msg, now); sync.disconnect(peer)
+    sync.heartbeat(peer, counters)
+    sync.scan_batch(keys); sync.scan_done(now)     # a rebuild scan: the daemon reads the store
+    # outputs of every input so far, in one batch, carried out in this order:
+    ready = sync.ready(now, budgets)
+    persist(ready.durable)      # 1. durable writes (before any message may name a new epoch)
+    send(ready.messages)        # 2. per peer, in order
+    run(ready.actions)          # 3. start a store scan, log lines
+    sync.ack(ready)
 
-`now` is a float in seconds from any monotonic clock; the object only compares it.
+`now` is a float in seconds from any monotonic clock; the object only compares and
+subtracts it (docs/architecture.md#logic-without-io).
 
 Why the state looks like this (docs/sync-protocol.md has the full argument):
 - One change stream per epoch: `cut()` turns the filter's change set into the next
@@ -23,22 +31,32 @@ Why the state looks like this (docs/sync-protocol.md has the full argument):
   coordinator never holds back a fast one; a peer that falls below the history floor
   gets a snapshot instead of the trimmed deltas.
 - A snapshot is the state at exactly one sequence: it is cut first, then the filter copied.
-- Rebuild hand-over: during it two epochs are live (the old filter and the new one, both
-  dual-written by the daemon). Per peer, old-epoch deltas flow until that peer's rebuild
+- Rebuild: a scan fills a new filter in key order while writes go on. A write reaches the
+  scan's filter only for keys the scan already passed (keys above the cursor are read by
+  the scan itself; counting them twice would pin a counter, uncounting them first would
+  underflow one). When the scan is done the new filter starts the next epoch and both
+  epochs are live (both written). Per peer, old-epoch deltas flow until that peer's rebuild
   snapshot is cut, then only the snapshot and the new epoch's deltas after it. Old deltas
   cut *after* the snapshot are never sent to that peer: a coordinator that applied them
-  and then installed the (older) snapshot would lose keys added in between.
+  and then installed the (older) snapshot would lose keys added in between
+  (docs/architecture.md#1-no-false-negatives-once-synced).
 """
 
 from __future__ import annotations
 
 import itertools
 from collections import deque
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from enum import Enum, StrEnum
+from types import MappingProxyType
+from typing import Literal
 
-from shardsieve import codec
+import numpy as np
+
+from shardsieve import codec, hashing
 from shardsieve.bloom import CountingBloomFilter
-from shardsieve.geometry import Geometry, GeometryError
+from shardsieve.geometry import Geometry, GeometryError, geometry_for
 from shardsieve.snapshot import MAX_CHUNK_BYTES, EncodedSnapshot, encode_snapshot
 from shardsieve.sync.errors import (
     GeometryMismatch,
@@ -46,6 +64,7 @@ from shardsieve.sync.errors import (
     ProtocolViolation,
     RebuildStateError,
     SequenceAhead,
+    SyncError,
     UnknownEpoch,
     UnknownPeer,
     WrongNodeId,
@@ -57,14 +76,19 @@ PROTOCOL_VERSION = 1
 PURPOSE_RESYNC = filter_pb2.SNAPSHOT_PURPOSE_RESYNC
 PURPOSE_REBUILD = filter_pb2.SNAPSHOT_PURPOSE_REBUILD
 
-PHASE_IDLE = ""
-PHASE_SCANNING = "scanning"
-PHASE_STREAMING = "streaming"
-PHASE_AWAITING_VERIFY = "awaiting-verify"
+#: Bytes of deltas and snapshot chunks a driver lets one peer take per ready() while its
+#: outbound queue has room (at least one message always fits).
+SEND_BUDGET_BYTES = 4 << 20
 
 
 class SnapshotRefused(ProtocolViolation):
     """A coordinator rejected our snapshots more often than allowed; reset its stream."""
+
+
+class StaleReady(SyncError):
+    """ack() was given a Ready other than the last one ready() returned (a driver bug)."""
+
+    grpc_status_name = "INTERNAL"
 
 
 # --------------------------------------------------------------------------- settings
@@ -75,6 +99,7 @@ class NodeSyncConfig:
     """Limits of the node end. Defaults suit a 2^20..2^24-bit filter on a LAN."""
 
     push_interval_ms: int = 50              # advertised in the Hello; the daemon's timer uses it
+    cut_after_bits: int = 4096               # WriteStamp.cut_due once about this many bits changed
     max_history_bytes: int = 8 << 20         # encoded delta bytes kept per epoch for lagging peers
     max_history_deltas: int = 4096           # deltas kept per epoch
     max_in_flight_bytes: int = 4 << 20       # per peer: bytes sent but not acknowledged
@@ -84,8 +109,8 @@ class NodeSyncConfig:
     max_resync_rejections: int = 5           # rejected resync snapshots per stream before a reset
 
     def __post_init__(self) -> None:
-        for name in ("push_interval_ms", "max_history_bytes", "max_history_deltas", "max_in_flight_bytes",
-                     "max_chunk_bytes", "max_rebuild_attempts", "max_resync_rejections"):
+        for name in ("push_interval_ms", "cut_after_bits", "max_history_bytes", "max_history_deltas",
+                     "max_in_flight_bytes", "max_chunk_bytes", "max_rebuild_attempts", "max_resync_rejections"):
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, int) or value < 1:
                 raise ValueError(f"NodeSyncConfig.{name} must be a positive integer, got {value!r}")
@@ -95,57 +120,133 @@ class NodeSyncConfig:
             raise ValueError(f"NodeSyncConfig.max_chunk_bytes must be at most {MAX_CHUNK_BYTES}")
 
 
-# --------------------------------------------------------------------------- events for the daemon
+# --------------------------------------------------------------------------- rebuild phases
+
+
+class RebuildPhase(StrEnum):
+    """Where a rebuild stands; the value is what heartbeats and Stats carry."""
+
+    IDLE = ""
+    SCANNING = "scanning"                 # the daemon scans its store into the new filter
+    STREAMING = "streaming"               # new epoch begun; rebuild snapshots still to send
+    AWAITING_VERIFY = "awaiting-verify"   # every snapshot sent, not every peer switched
+
+
+class RebuildEvent(Enum):
+    REQUESTED = "a rebuild request was accepted"
+    SCAN_DONE = "the store scan reached the end of the store"
+    SNAPSHOTS_SENT = "every peer still to switch has its rebuild snapshot sent"
+    SNAPSHOT_OWED = "a peer still to switch needs a rebuild snapshot again"
+    ALL_SWITCHED = "every connected peer verified the new epoch"
+    ABANDONED = "the rebuild ended without a switch"
+
+
+#: The only allowed rebuild transitions; anything else raises RebuildStateError
+#: (docs/sync-protocol.md, "States").
+REBUILD_TRANSITIONS: Mapping[tuple[RebuildPhase, RebuildEvent], RebuildPhase] = MappingProxyType({
+    (RebuildPhase.IDLE, RebuildEvent.REQUESTED): RebuildPhase.SCANNING,
+    (RebuildPhase.SCANNING, RebuildEvent.SCAN_DONE): RebuildPhase.STREAMING,
+    (RebuildPhase.SCANNING, RebuildEvent.ABANDONED): RebuildPhase.IDLE,
+    (RebuildPhase.STREAMING, RebuildEvent.SNAPSHOTS_SENT): RebuildPhase.AWAITING_VERIFY,
+    (RebuildPhase.STREAMING, RebuildEvent.ALL_SWITCHED): RebuildPhase.IDLE,
+    (RebuildPhase.STREAMING, RebuildEvent.ABANDONED): RebuildPhase.IDLE,
+    (RebuildPhase.AWAITING_VERIFY, RebuildEvent.SNAPSHOT_OWED): RebuildPhase.STREAMING,
+    (RebuildPhase.AWAITING_VERIFY, RebuildEvent.ALL_SWITCHED): RebuildPhase.IDLE,
+    (RebuildPhase.AWAITING_VERIFY, RebuildEvent.ABANDONED): RebuildPhase.IDLE,
+})
+
+
+# --------------------------------------------------------------------------- inputs and outputs
 
 
 @dataclass(frozen=True)
-class RebuildRequested:
-    """A coordinator asked for a rebuild; the daemon should scan its store into a new
-    CountingBloomFilter at geometry_for(capacity, target_fpr) (dual-writing meanwhile),
-    calling start_rebuild / report_scan_progress / begin_epoch (or abandon_rebuild)."""
+class WriteStamp:
+    """What a WriteAck reports for a recorded store change.
 
-    peer: str
-    request: sync_pb2.RebuildRequest
+    (epoch, sequence): a coordinator whose replica reached this position (compared as a
+    tuple) holds the change: the next delta's position when changes are pending since the
+    last cut, else the last cut's (an overwrite, a delete of a missing key, or a key whose
+    bits were all set already needs no new delta; naming one that may never be cut would
+    hold a read-your-writes hint forever). "Nothing pending" is judged by the checksum, so
+    a 2^-64 coincidence could only make a coordinator drop its hint one push interval
+    early. old_position: during a hand-over the change is in the old epoch too; the old
+    epoch's position that holds it (same rule), so a coordinator still on the old epoch
+    can drop its hint even if the rebuild is then abandoned
+    (docs/architecture.md#2-read-your-writes-through-a-coordinator).
+    cut_due: about `cut_after_bits` bits changed since the last cut; cut now rather than
+    at the next push tick (docs/architecture.md#3-bounded-staleness).
+    """
 
-
-@dataclass(frozen=True)
-class PeerSwitched:
-    """A coordinator verified the new epoch's snapshot and routes with it."""
-
-    peer: str
-    epoch: int
-
-
-@dataclass(frozen=True)
-class OldFilterRetired:
-    """Every connected coordinator switched: stop dual-writing, drop the old filter."""
-
-    old_epoch: int
-    new_epoch: int
-
-
-@dataclass(frozen=True)
-class RebuildAbandoned:
-    """The rebuild ended without a switch; the old filter stays current. Drop the new one
-    and stop dual-writing."""
-
-    epoch: int
-    reason: str
-
-
-@dataclass(frozen=True)
-class SnapshotStarted:
-    """A snapshot was cut for a peer (for logs and stats)."""
-
-    peer: str
     epoch: int
     sequence: int
-    purpose: int
-    reason: str
-    encoded_bytes: int
+    old_position: tuple[int, int] | None = None
+    cut_due: bool = False
 
 
-NodeEvent = RebuildRequested | PeerSwitched | OldFilterRetired | RebuildAbandoned | SnapshotStarted
+@dataclass(frozen=True)
+class StoreCounters:
+    """The daemon's counters of store traffic, passed into heartbeats and reports."""
+
+    reads: int = 0
+    reads_missed: int = 0
+    writes: int = 0
+    deletes: int = 0
+
+
+@dataclass(frozen=True)
+class NodeReport:
+    """The node's figures: the wire stats (as heartbeats carry them) plus local-only counts."""
+
+    stats: sync_pb2.NodeStats
+    rebuilds_completed: int    # old filter retired after every coordinator verified the new one
+    rebuilds_abandoned: int
+
+
+@dataclass(frozen=True)
+class Durable:
+    """What must be on disk before any message of the same Ready goes out."""
+
+    highest_epoch: int | None = None                # the largest epoch used: a start uses it + 1
+    rebuilt_size: tuple[int, float] | None = None   # (capacity, target FPR) every coordinator switched to
+
+
+@dataclass(frozen=True)
+class StartScan:
+    """Read the store in key order and hand each batch to scan_batch, then call scan_done
+    (or scan_failed). `keys`: the key count when the scan began, for progress logs."""
+
+    capacity: int
+    target_fpr: float
+    keys: int
+
+
+@dataclass(frozen=True)
+class LogLine:
+    """One line for the daemon's log (the sync object has no logger)."""
+
+    level: Literal["info", "warning"]
+    message: str
+    fields: Mapping[str, object]
+
+
+Action = StartScan | LogLine
+
+
+@dataclass(frozen=True)
+class Ready:
+    """Everything the inputs since the last ack produced, in the order to carry it out:
+    durable writes, then messages per peer (each in send order), then actions. Messages
+    count as sent once returned (a lost one is repaired by the protocol's timers); the
+    durable writes and actions stay pending until ack(ready)."""
+
+    serial: int
+    durable: Durable | None
+    messages: Mapping[str, tuple[sync_pb2.NodeMessage, ...]]
+    actions: tuple[Action, ...]
+
+    @property
+    def empty(self) -> bool:
+        return self.durable is None and not self.messages and not self.actions
 
 
 @dataclass(frozen=True)
@@ -161,6 +262,7 @@ class PeerStatus:
     snapshot_in_progress: bool
     switched: bool
     bytes_sent: int
+    lag: int    # sequences of the current epoch cut but not acknowledged by the peer
 
 
 # --------------------------------------------------------------------------- internal state
@@ -220,6 +322,13 @@ class _EpochStream:
     def floor(self) -> int:
         return self.history.floor(self.sequence)
 
+    def position_holding_now(self) -> tuple[int, int]:
+        """The first position of this epoch whose state holds the filter as it is now (the
+        rule of WriteStamp)."""
+        if self.filter.checksum == self.checksum:
+            return self.epoch, self.sequence
+        return self.epoch, self.sequence + 1
+
     def cut(self, key_count: int) -> filter_pb2.Delta | None:
         changes = self.filter.take_changes()
         if changes.is_empty:
@@ -232,6 +341,27 @@ class _EpochStream:
         message = sync_pb2.NodeMessage(delta=delta)
         self.history.append(_Entry(self.sequence, message, message.ByteSize()))
         return delta
+
+
+@dataclass
+class _Scan:
+    """A rebuild filter being filled by the daemon's store scan, in key order."""
+
+    filter: CountingBloomFilter
+    capacity: int
+    target_fpr: float
+    keys_at_start: int
+    started_at: float
+    cursor: bytes | None = None      # highest key scanned in; writes of keys <= cursor count here too
+    scanned: int = 0
+
+    def covered(self, keys: Sequence[bytes]) -> np.ndarray | None:
+        """Row indices of the keys the scan already passed; None when that is every key."""
+        cursor = self.cursor
+        if cursor is None:
+            return np.zeros(0, dtype=np.intp)
+        mask = np.fromiter((key <= cursor for key in keys), dtype=np.bool_, count=len(keys))
+        return None if mask.all() else np.flatnonzero(mask)
 
 
 @dataclass
@@ -260,7 +390,6 @@ class _OutgoingSnapshot:
 @dataclass
 class _Peer:
     name: str
-    connected_at: float
     answered: bool = False                  # the coordinator replied to our Hello
     stream_epoch: int | None = None         # epoch whose deltas this peer follows
     acked: int = -1                         # highest sequence of stream_epoch it acknowledged
@@ -274,6 +403,7 @@ class _Peer:
     rebuild_rejections: int = 0
     resync_rejections: int = 0
     bytes_sent: int = 0
+    queued: list[sync_pb2.NodeMessage] = field(default_factory=list)   # Hello, heartbeats: due at once
 
 
 # --------------------------------------------------------------------------- the protocol object
@@ -285,10 +415,11 @@ class NodeSync:
     def __init__(self, node_id: str, storage_address: str, filter_: CountingBloomFilter, *,
                  epoch: int, capacity: int, target_fpr: float, key_count: int = 0,
                  config: NodeSyncConfig | None = None) -> None:
-        """`filter_` holds the node's keys now (built from the store); its pending changes
-        become this epoch's baseline (sequence 0). `epoch` must be larger than any epoch this
-        node id used before (persist it and add one on every start): a coordinator holding a
-        replica of an earlier incarnation then resyncs instead of applying deltas to it."""
+        """`filter_` holds the node's keys now (built from the store) and from here on belongs
+        to this object (change it only through record); its pending changes become this
+        epoch's baseline (sequence 0). `epoch` must be larger than any epoch this node id used
+        before (persist it and add one on every start): a coordinator holding a replica of an
+        earlier incarnation then resyncs instead of applying deltas to it."""
         if not node_id:
             raise ValueError("node_id must be a non-empty string")
         if isinstance(epoch, bool) or not isinstance(epoch, int) or epoch < 0:
@@ -296,21 +427,26 @@ class NodeSync:
         self.node_id = node_id
         self.storage_address = storage_address
         self.config = config or NodeSyncConfig()
-        self.key_count = int(key_count)
+        self._key_count = int(key_count)
         self._stream = _EpochStream(epoch, filter_, capacity, target_fpr, self.config)
         self._old: _EpochStream | None = None       # live only during a rebuild hand-over
+        self._scan: _Scan | None = None              # live only while the phase is SCANNING
+        self._phase = RebuildPhase.IDLE
         self._highest_epoch = epoch
         self._peers: dict[str, _Peer] = {}
-        self._events: list[NodeEvent] = []
         self._snapshot_ids = itertools.count(1)
         self._snapshot_cache: tuple[int, int, EncodedSnapshot, int] | None = None
-        self._rebuild_phase = PHASE_IDLE
-        self._scan_fraction = 0.0
-        self._rebuild_request: tuple[int, float] | None = None   # (capacity, target_fpr) being built
-        self._pending_rebuild: sync_pb2.RebuildRequest | None = None
-        self.bytes_pushed = 0
+        self._pending_bits = 0                       # estimated bits changed since the last cut
+        self._bytes_pushed = 0
+        self._rebuilds_completed = 0
+        self._rebuilds_abandoned = 0
+        # outputs waiting for ack(): durable writes and actions
+        self._durable_epoch: int | None = None
+        self._durable_size: tuple[int, float] | None = None
+        self._actions: list[Action] = []
+        self._ready_serial = 0
 
-    # ------------------------------------------------------------------ read-only state
+    # ------------------------------------------------------------------ read-only views
     @property
     def epoch(self) -> int:
         """The current epoch: the one new writes are sequenced in and Hellos advertise."""
@@ -318,9 +454,8 @@ class NodeSync:
 
     @property
     def highest_epoch(self) -> int:
-        """The largest epoch number used so far (abandoned rebuilds burn one). Persist it:
-        after a restart the daemon passes highest_epoch + 1 as the new epoch."""
-        return max(self._highest_epoch, self._stream.epoch)
+        """The largest epoch number used so far (abandoned rebuilds burn one)."""
+        return self._highest_epoch
 
     @property
     def sequence(self) -> int:
@@ -345,40 +480,14 @@ class NodeSync:
         return self._stream.target_fpr
 
     @property
+    def key_count(self) -> int:
+        """Keys in the store, as recorded (the count deltas, snapshots and stats carry)."""
+        return self._key_count
+
+    @property
     def filter(self) -> CountingBloomFilter:
-        """The current filter (the new one once begin_epoch ran)."""
+        """The current filter, for reports and tests: read it, never write it (use record)."""
         return self._stream.filter
-
-    @property
-    def old_filter(self) -> CountingBloomFilter | None:
-        """The previous filter while a hand-over runs (still dual-written), else None."""
-        return self._old.filter if self._old else None
-
-    @property
-    def dual_write(self) -> bool:
-        """True from start_rebuild until OldFilterRetired / RebuildAbandoned: writes go to both filters."""
-        return self._rebuild_phase != PHASE_IDLE
-
-    @property
-    def pending_sequence(self) -> tuple[int, int]:
-        """(epoch, sequence) that the next cut will produce: what a WriteAck reports. A
-        coordinator that applied this point (compared as a tuple) holds the write. During a
-        hand-over this names the new epoch, which is conservative: a coordinator still on the
-        old epoch keeps its read-your-writes hint until it switched and caught up."""
-        return self._stream.epoch, self._stream.sequence + 1
-
-    @property
-    def live_positions(self) -> list[tuple[int, int]]:
-        """(epoch, last sequence cut) of every live epoch: one, or two (old first) during a
-        hand-over. A write made now is in every state at or after (epoch, sequence + 1) of each."""
-        return [(s.epoch, s.sequence) for s in (self._old, self._stream) if s is not None]
-
-    @property
-    def old_cut(self) -> tuple[int, int, int] | None:
-        """(epoch, last sequence cut, checksum at that cut) of the previous epoch while a
-        hand-over runs, else None: lets the daemon tell whether a write is already in the old
-        epoch's last cut state or waits for its next one (WriteAck.old_position)."""
-        return (self._old.epoch, self._old.sequence, self._old.checksum) if self._old is not None else None
 
     @property
     def history_floor(self) -> int:
@@ -386,9 +495,8 @@ class NodeSync:
         return self._stream.floor
 
     @property
-    def rebuild_phase(self) -> str:
-        """"" (idle), "scanning", "streaming" or "awaiting-verify"."""
-        return self._rebuild_phase
+    def rebuild_phase(self) -> RebuildPhase:
+        return self._phase
 
     @property
     def rebuild_epoch(self) -> int:
@@ -398,14 +506,14 @@ class NodeSync:
     @property
     def rebuild_progress(self) -> float:
         """0..1: the scan is the first half, peers switched the second half."""
-        if self._rebuild_phase == PHASE_IDLE:
+        if self._phase is RebuildPhase.IDLE:
             return 0.0
-        if self._rebuild_phase == PHASE_SCANNING:
-            return 0.5 * self._scan_fraction
-        peers = [p for p in self._peers.values()]
-        if not peers:
+        if self._scan is not None:
+            scan = self._scan
+            return 0.5 * scan.scanned / max(1, scan.keys_at_start, scan.scanned)
+        if not self._peers:
             return 1.0
-        return 0.5 + 0.5 * sum(p.switched for p in peers) / len(peers)
+        return 0.5 + 0.5 * sum(p.switched for p in self._peers.values()) / len(self._peers)
 
     @property
     def peers(self) -> list[str]:
@@ -413,55 +521,90 @@ class NodeSync:
 
     def peer_status(self, peer: str) -> PeerStatus:
         p = self._peer(peer)
+        s = self._stream
+        lag = max(0, s.sequence - p.acked) if p.stream_epoch == s.epoch else s.sequence + 1
         return PeerStatus(peer=p.name, answered=p.answered, stream_epoch=p.stream_epoch, acked=p.acked,
                           sent=p.sent, in_flight_bytes=p.in_flight_bytes,
                           snapshot_in_progress=p.snapshot is not None, switched=p.switched,
-                          bytes_sent=p.bytes_sent)
+                          bytes_sent=p.bytes_sent, lag=lag)
 
-    def take_events(self) -> list[NodeEvent]:
-        """Events since the last call, oldest first (rebuild requests, switches, retirements)."""
-        events, self._events = self._events, []
-        return events
+    def report(self, counters: StoreCounters) -> NodeReport:
+        """The node's figures from this object's state plus the daemon's counters."""
+        return NodeReport(stats=self._stats(counters), rebuilds_completed=self._rebuilds_completed,
+                          rebuilds_abandoned=self._rebuilds_abandoned)
+
+    # ------------------------------------------------------------------ writes
+    def record(self, added: Sequence[bytes] = (), removed: Sequence[bytes] = ()) -> WriteStamp:
+        """A committed store change: `added` keys are new in the store, `removed` keys were in
+        it and are gone (no key in both; removed ones are uncounted first). Call it in the same
+        critical section as the store commit, so no delta carries half a write and no key is
+        in the store without its bits. Every live filter counts the change; a filter being
+        scanned only for keys the scan already passed. Returns the WriteAck's stamp."""
+        if removed:
+            self._count(removed, add=False)
+        if added:
+            self._count(added, add=True)
+        changed = len(added) + len(removed)
+        self._key_count += len(added) - len(removed)
+        self._pending_bits += changed * self._stream.geometry.hashes
+        old = self._old.position_holding_now() if self._old is not None else None
+        return WriteStamp(*self._stream.position_holding_now(), old_position=old,
+                          cut_due=self._pending_bits >= self.config.cut_after_bits)
+
+    def _count(self, keys: Sequence[bytes], *, add: bool) -> None:
+        """Count keys in (or out of) every filter they belong to; each key is hashed once per
+        geometry (docs/architecture.md#hash-once-per-key)."""
+        targets: list[tuple[CountingBloomFilter, np.ndarray | None]] = [(self._stream.filter, None)]
+        if self._old is not None:
+            targets.append((self._old.filter, None))
+        if self._scan is not None:
+            rows = self._scan.covered(keys)
+            if rows is None or rows.size:
+                targets.append((self._scan.filter, rows))
+        hashed: dict[Geometry, np.ndarray] = {}
+        for filt, rows in targets:
+            pos = hashed.get(filt.geometry)
+            if pos is None:
+                pos = hashed[filt.geometry] = hashing.positions(keys, filt.geometry)
+            if rows is not None:
+                pos = pos[rows]
+            if add:
+                filt.add_positions(pos)
+            else:
+                filt.remove_positions(pos)
 
     # ------------------------------------------------------------------ the change stream
-    def cut(self, now: float, key_count: int | None = None) -> list[filter_pb2.Delta]:
-        """Turn the pending filter changes into the next delta of each live epoch.
-
-        Returns the deltas cut (none when nothing changed; two during a hand-over, old epoch
-        first). They are kept in the history; `outgoing` sends them to each peer.
-        """
-        if key_count is not None:
-            self.key_count = int(key_count)
-        out: list[filter_pb2.Delta] = []
+    def cut(self) -> list[tuple[int, int]]:
+        """Turn the pending filter changes into the next delta of each live epoch (kept in the
+        history; every peer gets them through ready()). Returns the (epoch, sequence) of each
+        delta cut: none when nothing changed, two during a hand-over (old epoch first)."""
+        self._pending_bits = 0
+        out: list[tuple[int, int]] = []
         for stream in (self._old, self._stream):
-            if stream is not None:
-                delta = stream.cut(self.key_count)
-                if delta is not None:
-                    out.append(delta)
+            if stream is not None and stream.cut(self._key_count) is not None:
+                out.append((stream.epoch, stream.sequence))
         return out
 
     # ------------------------------------------------------------------ per-peer stream
-    def connect(self, peer: str, now: float) -> list[sync_pb2.NodeMessage]:
-        """A stream to `peer` opened (or re-opened): forget its old cursor, return the Hello."""
-        self._peers[peer] = _Peer(name=peer, connected_at=now, last_progress_at=now)
+    def connect(self, peer: str, now: float) -> None:
+        """A stream to `peer` opened (or re-opened): forget its old cursor, queue the Hello."""
         s = self._stream
         hello = sync_pb2.Hello(
             node_id=self.node_id, storage_address=self.storage_address, geometry=s.geometry_proto,
-            epoch=s.epoch, sequence=s.sequence, checksum=s.checksum, key_count=self.key_count,
+            epoch=s.epoch, sequence=s.sequence, checksum=s.checksum, key_count=self._key_count,
             capacity=s.capacity, target_fpr=s.target_fpr, push_interval_ms=self.config.push_interval_ms,
             protocol_version=PROTOCOL_VERSION, history_floor=s.floor)
-        return [sync_pb2.NodeMessage(hello=hello)]
+        self._peers[peer] = _Peer(name=peer, last_progress_at=now, queued=[sync_pb2.NodeMessage(hello=hello)])
 
     def disconnect(self, peer: str) -> None:
         """The stream to `peer` ended; its cursor is dropped (the next connect starts over)."""
         if self._peers.pop(peer, None) is not None:
             self._maybe_retire()
 
-    def receive(self, peer: str, msg: sync_pb2.CoordinatorMessage, now: float) -> list[sync_pb2.NodeMessage]:
+    def receive(self, peer: str, msg: sync_pb2.CoordinatorMessage, now: float) -> None:
         """Handle one coordinator message. Raises a ProtocolViolation (state unchanged) for a
         message naming another node id, a future epoch, another geometry or an unproduced
-        sequence; the driver then resets the stream. Returns messages to send at once
-        (currently none: everything goes out through `outgoing`)."""
+        sequence, or a malformed rebuild request; the driver then resets the stream."""
         p = self._peer(peer)
         if msg.node_id and msg.node_id != self.node_id:
             raise WrongNodeId(f"coordinator message for node id {msg.node_id!r}, this node is {self.node_id!r}")
@@ -471,11 +614,10 @@ class NodeSync:
             p.answered = True
             self._on_ack(p, msg.ack.epoch, msg.ack.sequence, now)
         elif kind == "need_snapshot":
-            ns = msg.need_snapshot
             p.answered = True
-            self._on_need_snapshot(p, ns, now)
+            self._on_need_snapshot(p, msg.need_snapshot)
         elif kind == "rebuild":
-            self._on_rebuild_request(p, msg.rebuild)
+            self._on_rebuild_request(p, msg.rebuild, now)
         elif kind == "snapshot_verified":
             sv = msg.snapshot_verified
             self._check_point(sv.epoch, sv.sequence, None)
@@ -486,87 +628,99 @@ class NodeSync:
         else:
             raise MalformedMessage("coordinator message has no body")
         self._maybe_retire()
-        return []
 
-    def outgoing(self, peer: str, now: float, max_bytes: int = 4 << 20) -> list[sync_pb2.NodeMessage]:
-        """Messages for `peer` now: pending snapshot chunks, then deltas after its cursor,
-        up to about max_bytes (at least one message if any is due) and within its in-flight
-        window. Resends from the last ack when nothing was acknowledged for
-        retransmit_after_s. Empty until the coordinator answered the Hello."""
-        p = self._peer(peer)
-        if not p.answered:
-            return []
-        self._check_timeouts(p, now)
-        out: list[sync_pb2.NodeMessage] = []
-        used = 0
-        while used < max_bytes:
-            item = self._next_message(p, now, max_bytes - used, first=not out)
-            if item is None:
-                break
-            message, size = item
-            out.append(message)
-            used += size
-        p.bytes_sent += used
-        self.bytes_pushed += used
-        return out
+    def heartbeat(self, peer: str, counters: StoreCounters) -> None:
+        """Queue a Heartbeat for `peer`: this object's figures plus the daemon's counters."""
+        self._peer(peer).queued.append(
+            sync_pb2.NodeMessage(heartbeat=sync_pb2.Heartbeat(stats=self._stats(counters))))
 
-    def heartbeat(self, stats: sync_pb2.NodeStats | None = None) -> sync_pb2.NodeMessage:
-        """A Heartbeat carrying `stats` (the daemon's counters) with the sync-owned fields
-        (epoch, sequence, geometry, capacity, target FPR, fill, predicted FPR, rebuild
-        progress, bytes pushed) filled in here."""
-        out = sync_pb2.NodeStats()
-        if stats is not None:
-            out.CopyFrom(stats)
-        s = self._stream
-        out.key_count = self.key_count if not out.key_count else out.key_count
-        out.capacity = s.capacity
-        out.geometry.CopyFrom(s.geometry_proto)
-        out.epoch = s.epoch
-        out.sequence = s.sequence
-        out.target_fpr = s.target_fpr
-        out.fill = s.filter.fill()
-        out.predicted_fpr = s.filter.predicted_fpr()
-        out.bytes_pushed = self.bytes_pushed
-        out.rebuild_epoch = self.rebuild_epoch
-        out.rebuild_progress = self.rebuild_progress
-        out.rebuild_phase = self.rebuild_phase
-        return sync_pb2.NodeMessage(heartbeat=sync_pb2.Heartbeat(stats=out))
+    # ------------------------------------------------------------------ outputs
+    def ready(self, now: float, budgets: Mapping[str, int]) -> Ready:
+        """Everything due now, as one batch: the durable writes and actions not yet
+        acknowledged, and per connected peer its queued Hello/heartbeats, then snapshot
+        chunks and deltas after its cursor up to budgets[peer] bytes (at least one message
+        if any is due; none when the budget is 0 or the peer is left out) and within its
+        in-flight window. Until a peer answered the Hello it gets only the Hello and
+        heartbeats. Resends from a peer's last ack when nothing was acknowledged for
+        retransmit_after_s."""
+        messages: dict[str, tuple[sync_pb2.NodeMessage, ...]] = {}
+        for name, p in self._peers.items():
+            out, p.queued = p.queued, []
+            budget = budgets.get(name, 0)
+            if budget > 0:
+                out += self._outgoing(p, now, budget)
+            if out:
+                messages[name] = tuple(out)
+        durable = None
+        if self._durable_epoch is not None or self._durable_size is not None:
+            durable = Durable(highest_epoch=self._durable_epoch, rebuilt_size=self._durable_size)
+        self._ready_serial += 1
+        return Ready(serial=self._ready_serial, durable=durable, messages=MappingProxyType(messages),
+                     actions=tuple(self._actions))
 
-    # ------------------------------------------------------------------ rebuild (daemon-driven)
-    def take_rebuild_request(self) -> sync_pb2.RebuildRequest | None:
-        """The most recent RebuildRequest not yet taken (also reported as a RebuildRequested
-        event; use whichever suits the daemon). start_rebuild clears it too."""
-        request, self._pending_rebuild = self._pending_rebuild, None
-        return request
+    def ack(self, ready: Ready) -> None:
+        """The driver carried out `ready` (durable writes done, messages handed to their
+        streams, actions run): drop what it held from the pending outputs."""
+        if ready.serial != self._ready_serial:
+            raise StaleReady(f"ack of Ready {ready.serial}, but the last one returned is {self._ready_serial}")
+        if ready.durable is not None:
+            if self._durable_epoch == ready.durable.highest_epoch:
+                self._durable_epoch = None
+            if self._durable_size == ready.durable.rebuilt_size:
+                self._durable_size = None
+        del self._actions[:len(ready.actions)]
 
-    def start_rebuild(self, capacity: int, target_fpr: float, now: float) -> None:
-        """The daemon started scanning into a new filter (dual writes from here on)."""
-        if self._rebuild_phase != PHASE_IDLE:
-            raise RebuildStateError(f"a rebuild is already running (phase {self._rebuild_phase!r})")
-        self._rebuild_phase = PHASE_SCANNING
-        self._scan_fraction = 0.0
-        self._pending_rebuild = None
-        self._rebuild_request = (int(capacity), float(target_fpr))
+    # ------------------------------------------------------------------ rebuild
+    def request_rebuild(self, capacity: int, target_fpr: float, *, reason: str, requested_by: str,
+                        now: float) -> None:
+        """Rebuild into a filter sized for capacity keys at target_fpr (same seed). Ignored
+        while a rebuild runs (one at a time; coordinators see the phase in heartbeats).
+        Otherwise the phase becomes SCANNING and the next Ready asks the daemon to scan its
+        store (StartScan). ValueError (nothing changed) for a size that has no geometry."""
+        if isinstance(capacity, bool) or not isinstance(capacity, int) or capacity < 1:
+            raise ValueError(f"rebuild capacity must be a positive integer, got {capacity!r}")
+        if not 0.0 < target_fpr < 1.0:
+            raise ValueError(f"rebuild target FPR must be strictly between 0 and 1, got {target_fpr!r}")
+        if self._phase is not RebuildPhase.IDLE:
+            return
+        geometry = geometry_for(capacity, target_fpr, self._stream.geometry.seed)
+        self._rebuild_event(RebuildEvent.REQUESTED)
+        self._scan = _Scan(CountingBloomFilter(geometry), capacity, float(target_fpr),
+                           keys_at_start=self._key_count, started_at=now)
+        self._actions.append(StartScan(capacity=capacity, target_fpr=float(target_fpr), keys=self._key_count))
+        self._log("info", "rebuild started", peer=requested_by, capacity=capacity, target_fpr=target_fpr,
+                  geometry=str(geometry), keys=self._key_count, reason=reason)
 
-    def report_scan_progress(self, fraction: float) -> None:
-        """Scan progress 0..1, for stats."""
-        self._scan_fraction = min(1.0, max(0.0, float(fraction)))
+    def scan_batch(self, keys: Sequence[bytes]) -> None:
+        """The next keys of the store in key order (strictly ascending, above every key handed
+        before), read in the same critical section as this call. RebuildStateError when no
+        scan runs, ValueError for keys out of order; nothing changes then."""
+        scan = self._running_scan()
+        if not keys:
+            return
+        previous = scan.cursor
+        for key in keys:
+            if previous is not None and not key > previous:
+                raise ValueError(f"scan keys must be strictly ascending and above the cursor: {key!r} "
+                                 f"follows {previous!r}")
+            previous = key
+        scan.filter.add_positions(hashing.positions(keys, scan.filter.geometry))
+        scan.cursor = keys[-1]
+        scan.scanned += len(keys)
 
-    def begin_epoch(self, new_filter: CountingBloomFilter, capacity: int, target_fpr: float,
-                    now: float) -> int:
-        """The scan finished: `new_filter` holds every key (dual writes keep it so). Start
-        epoch = highest so far + 1 with it as the current filter and hand it over: every
-        peer gets a REBUILD snapshot; the old filter keeps streaming to peers until their
-        snapshot is cut and is retired (OldFilterRetired) once all connected peers switched.
-        Returns the new epoch."""
-        if self._rebuild_phase not in (PHASE_IDLE, PHASE_SCANNING) or self._old is not None:
-            raise RebuildStateError(f"begin_epoch during phase {self._rebuild_phase!r}")
-        self.cut(now)   # the old epoch's last changes before the split point
+    def scan_done(self, now: float) -> None:
+        """The scan reached the end of the store: the scanned filter holds every key (writes
+        kept it so). It starts epoch = highest so far + 1 as the current filter and is handed
+        over: every peer gets a REBUILD snapshot; the old filter keeps streaming to peers
+        until their snapshot is cut and is retired once all connected peers switched."""
+        scan = self._running_scan()
+        self._rebuild_event(RebuildEvent.SCAN_DONE)
+        self._scan = None
+        self.cut()   # the old epoch's last changes before the split point
         self._highest_epoch += 1
+        self._durable_epoch = self._highest_epoch
         self._old = self._stream
-        self._stream = _EpochStream(self._highest_epoch, new_filter, capacity, target_fpr, self.config)
-        self._rebuild_phase = PHASE_STREAMING
-        self._scan_fraction = 1.0
+        self._stream = _EpochStream(self._highest_epoch, scan.filter, scan.capacity, scan.target_fpr, self.config)
         for p in self._peers.values():
             p.switched = False
             p.rebuild_rejections = 0
@@ -574,44 +728,73 @@ class NodeSync:
                 p.wanted = (PURPOSE_REBUILD, "rebuild")
                 if p.snapshot is not None and not p.snapshot.all_sent:
                     p.snapshot = None    # an unfinished old-epoch snapshot: superseded
+        self._log("info", "rebuild scan complete, streaming the new filter", epoch=self._stream.epoch,
+                  keys=scan.scanned, seconds=round(now - scan.started_at, 3))
         self._maybe_retire()
-        return self._stream.epoch
 
-    def abandon_rebuild(self, reason: str) -> None:
-        """Give up the running rebuild (scan failed, or called internally after too many
-        rejections). Only possible while no peer switched to the new epoch; the old filter
-        stays current and the new epoch's number is never reused (RebuildAbandoned)."""
-        if self._rebuild_phase == PHASE_IDLE:
-            raise RebuildStateError("no rebuild is running")
-        self._highest_epoch = max(self._highest_epoch, self._stream.epoch)
-        if self._old is None:
-            self._highest_epoch += 1   # burn the number the rebuild would have used
-            self._rebuild_phase = PHASE_IDLE
-            self._rebuild_request = None
-            self._events.append(RebuildAbandoned(epoch=self._highest_epoch, reason=reason))
-            return
-        if any(p.switched for p in self._peers.values()):
-            raise RebuildStateError("a coordinator already routes with the new epoch; it cannot be abandoned")
-        new_epoch = self._stream.epoch
-        self._stream, self._old = self._old, None
-        for p in self._peers.values():
-            snap = p.snapshot
-            if snap is not None and snap.restore_epoch is not None:
-                p.stream_epoch = snap.restore_epoch
-                p.acked = p.sent = snap.restore_acked
-                p.in_flight.clear()
-                p.in_flight_bytes = 0
-            p.snapshot = None
-            if p.wanted is not None and p.wanted[0] == PURPOSE_REBUILD:
-                p.wanted = None
-            if p.stream_epoch == new_epoch:
-                p.stream_epoch = None    # resync with the old (again current) filter
-                p.wanted = (PURPOSE_RESYNC, "rebuild abandoned")
-        self._rebuild_phase = PHASE_IDLE
-        self._rebuild_request = None
-        self._events.append(RebuildAbandoned(epoch=new_epoch, reason=reason))
+    def scan_failed(self, reason: str) -> None:
+        """The daemon could not finish the scan: the rebuild is abandoned (the old filter
+        stays current; the epoch number it would have used is burned)."""
+        self._running_scan()
+        self._abandon(reason)
 
     # ------------------------------------------------------------------ internals
+    def _rebuild_event(self, event: RebuildEvent) -> None:
+        """Apply one rebuild event by the transition table, or raise (nothing changed)."""
+        try:
+            self._phase = REBUILD_TRANSITIONS[(self._phase, event)]
+        except KeyError:
+            raise RebuildStateError(
+                f"rebuild event {event.name} ({event.value}) is not allowed in phase {self._phase.name}") from None
+
+    def _running_scan(self) -> _Scan:
+        if self._scan is None:
+            raise RebuildStateError(f"no rebuild scan is running (phase {self._phase.name})")
+        return self._scan
+
+    def _log(self, level: Literal["info", "warning"], message: str, **fields: object) -> None:
+        self._actions.append(LogLine(level=level, message=message, fields=MappingProxyType(fields)))
+
+    def _stats(self, counters: StoreCounters) -> sync_pb2.NodeStats:
+        s = self._stream
+        return sync_pb2.NodeStats(
+            key_count=self._key_count, capacity=s.capacity, geometry=s.geometry_proto, fill=s.filter.fill(),
+            predicted_fpr=s.filter.predicted_fpr(), reads=counters.reads, reads_missed=counters.reads_missed,
+            writes=counters.writes, deletes=counters.deletes, bytes_pushed=self._bytes_pushed, epoch=s.epoch,
+            sequence=s.sequence, target_fpr=s.target_fpr, rebuild_epoch=self.rebuild_epoch,
+            rebuild_progress=self.rebuild_progress, rebuild_phase=self._phase.value,
+            saturated_counters=s.filter.saturated_counters())
+
+    def _abandon(self, reason: str) -> None:
+        """End the rebuild without a switch. Only while no peer switched to the new epoch; the
+        old filter stays current and the new epoch's number is never reused."""
+        if self._old is not None and any(p.switched for p in self._peers.values()):
+            raise RebuildStateError("a coordinator already routes with the new epoch; it cannot be abandoned")
+        self._rebuild_event(RebuildEvent.ABANDONED)
+        if self._old is None:
+            self._scan = None
+            self._highest_epoch += 1   # burn the number the rebuild would have used
+            epoch = self._highest_epoch
+        else:
+            epoch = self._stream.epoch
+            self._stream, self._old = self._old, None
+            for p in self._peers.values():
+                snap = p.snapshot
+                if snap is not None and snap.restore_epoch is not None:
+                    p.stream_epoch = snap.restore_epoch
+                    p.acked = p.sent = snap.restore_acked
+                    p.in_flight.clear()
+                    p.in_flight_bytes = 0
+                p.snapshot = None
+                if p.wanted is not None and p.wanted[0] == PURPOSE_REBUILD:
+                    p.wanted = None
+                if p.stream_epoch == epoch:
+                    p.stream_epoch = None    # resync with the old (again current) filter
+                    p.wanted = (PURPOSE_RESYNC, "rebuild abandoned")
+        self._durable_epoch = self._highest_epoch
+        self._rebuilds_abandoned += 1
+        self._log("warning", "rebuild abandoned", epoch=epoch, reason=reason)
+
     def _peer(self, peer: str) -> _Peer:
         try:
             return self._peers[peer]
@@ -644,6 +827,19 @@ class NodeSync:
                 raise GeometryMismatch(f"coordinator sent an invalid geometry for epoch {epoch}: {exc}") from exc
             if g != stream.geometry:
                 raise GeometryMismatch(f"coordinator names geometry ({g}) for epoch {epoch}; it is ({stream.geometry})")
+
+    def _on_rebuild_request(self, p: _Peer, request: sync_pb2.RebuildRequest, now: float) -> None:
+        if request.capacity < 1 or not 0.0 < request.target_fpr < 1.0:
+            raise MalformedMessage(
+                f"rebuild request needs capacity >= 1 and 0 < target_fpr < 1, got {request.capacity}, "
+                f"{request.target_fpr}")
+        try:
+            geometry_for(int(request.capacity), float(request.target_fpr), self._stream.geometry.seed)
+        except GeometryError as exc:
+            raise MalformedMessage(f"rebuild request for capacity {request.capacity} at target FPR "
+                                   f"{request.target_fpr} has no supported geometry: {exc}") from exc
+        self.request_rebuild(int(request.capacity), float(request.target_fpr), reason=request.reason,
+                             requested_by=p.name, now=now)
 
     def _on_ack(self, p: _Peer, epoch: int, sequence: int, now: float, verified_id: int | None = None) -> None:
         """Ack and SnapshotVerified: the coordinator's replica is at (epoch, sequence)."""
@@ -687,7 +883,7 @@ class NodeSync:
             p.rebuild_rejections = 0
             if p.wanted is not None and p.wanted[0] == PURPOSE_REBUILD:
                 p.wanted = None
-            self._events.append(PeerSwitched(peer=p.name, epoch=epoch))
+            self._log("info", "coordinator switched to the rebuilt filter", peer=p.name, epoch=epoch)
 
     def _drop_in_flight(self, p: _Peer, sequence: int) -> None:
         while p.in_flight and p.in_flight[0][0] <= sequence:
@@ -696,7 +892,7 @@ class NodeSync:
     def _purpose_for(self, p: _Peer) -> int:
         return PURPOSE_REBUILD if self._old is not None and not p.switched else PURPOSE_RESYNC
 
-    def _on_need_snapshot(self, p: _Peer, ns: sync_pb2.NeedSnapshot, now: float) -> None:
+    def _on_need_snapshot(self, p: _Peer, ns: sync_pb2.NeedSnapshot) -> None:
         snap = p.snapshot
         if snap is not None:
             if not snap.all_sent:
@@ -707,16 +903,6 @@ class NodeSync:
             p.snapshot = None  # it arrived, and a later problem needs a fresh one
         if p.wanted is None:
             p.wanted = (self._purpose_for(p), _reason_text(ns.reason))
-
-    def _on_rebuild_request(self, p: _Peer, request: sync_pb2.RebuildRequest) -> None:
-        if request.capacity < 1 or not 0.0 < request.target_fpr < 1.0:
-            raise MalformedMessage(
-                f"rebuild request needs capacity >= 1 and 0 < target_fpr < 1, got {request.capacity}, "
-                f"{request.target_fpr}")
-        if self._rebuild_phase != PHASE_IDLE:
-            return  # one rebuild at a time; the coordinator sees the phase in heartbeats
-        self._pending_rebuild = request
-        self._events.append(RebuildRequested(peer=p.name, request=request))
 
     def _on_rejected(self, p: _Peer, rejected: sync_pb2.SnapshotRejected, now: float) -> None:
         snap = p.snapshot
@@ -737,7 +923,7 @@ class NodeSync:
                 detail = (f"coordinator {p.name} rejected the rebuild snapshot {p.rebuild_rejections} times "
                           f"(last: {rejected.detail})")
                 if not any(q.switched for q in self._peers.values()):
-                    self.abandon_rebuild(detail)
+                    self._abandon(detail)
                     return
                 raise SnapshotRefused(detail)
             p.wanted = (PURPOSE_REBUILD, f"retry after rejection: {rejected.detail}")
@@ -747,6 +933,24 @@ class NodeSync:
             raise SnapshotRefused(f"coordinator {p.name} rejected {p.resync_rejections} snapshots "
                                   f"(last: {rejected.detail})")
         p.wanted = (self._purpose_for(p), f"retry after rejection: {rejected.detail}")
+
+    def _outgoing(self, p: _Peer, now: float, max_bytes: int) -> list[sync_pb2.NodeMessage]:
+        """Snapshot chunks, then deltas after p's cursor, up to about max_bytes."""
+        if not p.answered:
+            return []
+        self._check_timeouts(p, now)
+        out: list[sync_pb2.NodeMessage] = []
+        used = 0
+        while used < max_bytes:
+            item = self._next_message(p, now, max_bytes - used, first=not out)
+            if item is None:
+                break
+            message, size = item
+            out.append(message)
+            used += size
+        p.bytes_sent += used
+        self._bytes_pushed += used
+        return out
 
     def _check_timeouts(self, p: _Peer, now: float) -> None:
         rto = self.config.retransmit_after_s
@@ -769,7 +973,7 @@ class NodeSync:
                 p.wanted = (PURPOSE_REBUILD, "rebuild")
             snap = p.snapshot
             if snap is None and p.wanted is not None:
-                snap = self._start_snapshot(p, now)
+                snap = self._start_snapshot(p)
             if snap is not None and not snap.all_sent:
                 return self._next_chunk(p, snap, now, room, first)
             stream = self._live(p.stream_epoch)
@@ -828,13 +1032,13 @@ class NodeSync:
         p.in_flight_bytes += entry.nbytes
         return entry.message, entry.nbytes
 
-    def _start_snapshot(self, p: _Peer, now: float) -> _OutgoingSnapshot:
+    def _start_snapshot(self, p: _Peer) -> _OutgoingSnapshot:
         assert p.wanted is not None
         purpose, reason = p.wanted
         p.wanted = None
         if purpose == PURPOSE_REBUILD and (self._old is None or p.switched):
             purpose = PURPOSE_RESYNC
-        self.cut(now)   # the snapshot describes exactly the state at the sequence just cut
+        self.cut()   # the snapshot describes exactly the state at the sequence just cut
         s = self._stream
         cache = self._snapshot_cache
         if cache is not None and cache[0] == s.epoch and cache[1] == s.sequence:
@@ -851,7 +1055,7 @@ class NodeSync:
             chunk = filter_pb2.SnapshotChunk(
                 snapshot_id=snapshot_id, epoch=s.epoch, sequence=s.sequence, geometry=s.geometry_proto,
                 encoding=encoded.encoding, purpose=purpose, chunk_index=index, chunk_count=len(encoded.chunks),
-                total_bytes=encoded.total_bytes, data=data, checksum=checksum, key_count=self.key_count,
+                total_bytes=encoded.total_bytes, data=data, checksum=checksum, key_count=self._key_count,
                 capacity=s.capacity)
             message = sync_pb2.NodeMessage(snapshot_chunk=chunk)
             messages.append(message)
@@ -866,30 +1070,38 @@ class NodeSync:
             snap.restore_acked = p.acked
         p.snapshot = snap
         self._update_phase()
-        self._events.append(SnapshotStarted(peer=p.name, epoch=s.epoch, sequence=s.sequence, purpose=purpose,
-                                            reason=reason, encoded_bytes=encoded.total_bytes))
+        self._log("info", "snapshot cut", peer=p.name, epoch=s.epoch, sequence=s.sequence,
+                  purpose="rebuild" if purpose == PURPOSE_REBUILD else "resync", reason=reason,
+                  encoded_bytes=encoded.total_bytes)
         return snap
 
     def _update_phase(self) -> None:
+        """During a hand-over: AWAITING_VERIFY once every peer still to switch has its rebuild
+        snapshot sent, back to STREAMING when one needs a snapshot again."""
         if self._old is None:
             return
         waiting = [p for p in self._peers.values() if not p.switched]
-        if all(p.snapshot is not None and p.snapshot.all_sent for p in waiting):
-            self._rebuild_phase = PHASE_AWAITING_VERIFY
-        else:
-            self._rebuild_phase = PHASE_STREAMING
+        all_sent = all(p.snapshot is not None and p.snapshot.all_sent for p in waiting)
+        if all_sent and self._phase is RebuildPhase.STREAMING:
+            self._rebuild_event(RebuildEvent.SNAPSHOTS_SENT)
+        elif not all_sent and self._phase is RebuildPhase.AWAITING_VERIFY:
+            self._rebuild_event(RebuildEvent.SNAPSHOT_OWED)
 
     def _maybe_retire(self) -> None:
+        """Every connected peer switched: stop writing the old filter, drop it, and persist
+        the new size (a restart keeps it)."""
         if self._old is None:
             return
-        if all(p.switched for p in self._peers.values()):
-            old = self._old
-            self._old = None
-            self._rebuild_phase = PHASE_IDLE
-            self._rebuild_request = None
-            self._events.append(OldFilterRetired(old_epoch=old.epoch, new_epoch=self._stream.epoch))
+        if not all(p.switched for p in self._peers.values()):
+            self._update_phase()
             return
-        self._update_phase()
+        old, self._old = self._old, None
+        self._rebuild_event(RebuildEvent.ALL_SWITCHED)
+        s = self._stream
+        self._durable_size = (s.capacity, s.target_fpr)
+        self._rebuilds_completed += 1
+        self._log("info", "rebuild complete, old filter retired", old_epoch=old.epoch, epoch=s.epoch,
+                  capacity=s.capacity, geometry=str(s.geometry))
 
 
 def _reason_text(reason: int) -> str:

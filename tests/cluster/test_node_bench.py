@@ -1,4 +1,4 @@
-"""`shardsieve bench node` runs end to end and reports the fields docs/node.md ("Benchmark") names.
+"""`shardsieve bench node` runs end to end and reports the fields docs/node.md, "Benchmark" names.
 
 Speed is not asserted (benchmarks print ratios; tests do not time things): the test checks
 the benchmark measures what it says, on a small run against a real node process.

@@ -269,7 +269,7 @@ def test_metrics_endpoint_matches_stats(tmp_path: Path) -> None:
         assert values["shardsieve_node_keys"] == stats.key_count == 37
         assert values["shardsieve_node_wasted_probes_total"] == stats.reads_missed == 1
         assert values["shardsieve_node_fill"] == pytest.approx(stats.fill)
-        # The rest of the node's metrics (docs/node.md, "Operations"): lookups, FPR, delta bytes, rebuilds.
+        # The rest of the node's metrics (docs/node.md, "Operations"): reads, FPR, bytes pushed, rebuilds.
         assert values["shardsieve_node_reads_total"] == stats.reads == 1
         assert values["shardsieve_node_predicted_fpr"] == pytest.approx(stats.predicted_fpr)
         assert stats.predicted_fpr == pytest.approx(stats.fill ** stats.geometry.hashes)   # fill^k (Bloom 1970)
@@ -308,7 +308,7 @@ def test_a_stalled_coordinator_does_not_hold_back_another(tmp_path: Path) -> Non
 
 
 def test_heartbeats_carry_the_node_stats(tmp_path: Path) -> None:
-    """Heartbeats (docs/sync-protocol.md#message-flow) reach the coordinator with key count, capacity, geometry,
+    """Heartbeats reach the coordinator (docs/node.md, "Sync") with key count, capacity, geometry,
     fill, predicted FPR, reads, wasted probes, writes, deletes and bytes pushed; the figures
     are those of the node's own Stats and of the filter rebuilt from its keys."""
     with TestCoordinator() as coord:

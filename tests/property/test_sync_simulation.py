@@ -31,16 +31,17 @@ import numpy as np
 import pytest
 
 from shardsieve.bloom import BloomFilter, CountingBloomFilter
-from shardsieve.geometry import Geometry, geometry_for
+from shardsieve.geometry import Geometry
 from shardsieve.hashing import key_positions
 from shardsieve.sync.coordinator_side import CoordinatorSync, CoordinatorSyncConfig, DictReplicaSink
 from shardsieve.sync.errors import ProtocolViolation
 from shardsieve.sync.node_side import (
+    SEND_BUDGET_BYTES,
     NodeSync,
     NodeSyncConfig,
-    OldFilterRetired,
-    RebuildAbandoned,
-    RebuildRequested,
+    RebuildPhase,
+    StartScan,
+    StoreCounters,
 )
 from shardsieve.v1 import sync_pb2
 
@@ -87,11 +88,12 @@ class Simulation:
         self.config = NodeSyncConfig(max_history_deltas=rng.randint(1, 8), max_history_bytes=rng.choice((64, 400, 4000)),
                                      max_in_flight_bytes=rng.choice((60, 300, 1 << 20)), retransmit_after_s=RTO,
                                      max_chunk_bytes=rng.choice((16, 32, 64, 1 << 20)), max_rebuild_attempts=3)
-        self.node = NodeSync(NODE, "127.0.0.1:7001", self.filter, epoch=rng.randint(1, 3), capacity=100,
+        self.persisted_epoch = rng.randint(1, 3)   # the daemon persists an epoch before it starts
+        self.node = NodeSync(NODE, "127.0.0.1:7001", self.filter, epoch=self.persisted_epoch, capacity=100,
                              target_fpr=0.01, key_count=len(self.live), config=self.config)
-        self.new_filter: CountingBloomFilter | None = None  # during a rebuild: dual-written
-        self.rebuild_ready_at: float | None = None
-        self.rebuild_target: tuple[int, float] | None = None
+        # a rebuild scan in progress: the store read position (the node's own cursor is its own)
+        self.scan_after: bytes | None = None
+        self.scan_from: float | None = None
         self._new_coordinator()
         self.link: Link | None = None
         self.streams = 0
@@ -115,7 +117,8 @@ class Simulation:
         self.disconnect()
         self.streams += 1
         link = Link(stream_id=self.streams)
-        hello = self.node.connect(PEER, self.now)[0]
+        self.node.connect(PEER, self.now)
+        (hello,) = self.take_ready(0)
         if self.rng.random() < self.loss:
             self.node.disconnect(PEER)   # the stream failed to open
             return
@@ -140,11 +143,12 @@ class Simulation:
         filter_ = CountingBloomFilter(geometry)
         if self.live:
             filter_.add_positions(self.rows(sorted(self.live), geometry))
-        self.node = NodeSync(NODE, "127.0.0.1:7001", filter_, epoch=self.node.highest_epoch + 1,
+        self.persisted_epoch += 1
+        self.node = NodeSync(NODE, "127.0.0.1:7001", filter_, epoch=self.persisted_epoch,
                              capacity=self.node.capacity, target_fpr=self.node.target_fpr,
                              key_count=len(self.live), config=self.config)
-        self.new_filter = None
-        self.rebuild_ready_at = None
+        self.scan_after = None
+        self.scan_from = None
 
     def request_rebuild(self) -> None:
         if self.link is None:
@@ -178,11 +182,24 @@ class Simulation:
             copy.snapshot_chunk.data = bytes(data)
         return copy
 
+    def take_ready(self, budget: int) -> list[sync_pb2.NodeMessage]:
+        """Carry out what the node has ready, as the daemon does: durable writes (the highest
+        epoch), then the peer's messages (returned), then actions (start a scan); then ack."""
+        ready = self.node.ready(self.now, {PEER: budget})
+        if ready.durable is not None and ready.durable.highest_epoch is not None:
+            self.persisted_epoch = max(self.persisted_epoch, ready.durable.highest_epoch)
+        for action in ready.actions:
+            if isinstance(action, StartScan):
+                self.scan_after = None
+                self.scan_from = self.now + self.rng.choice((0.0, 0.05, 0.4))
+        self.node.ack(ready)
+        return list(ready.messages.get(PEER, ()))
+
     def pull(self, reliable: bool) -> None:
         if self.link is None:
             return
-        budget = self.rng.choice((40, 100, 1000, 1 << 20)) if not reliable else 1 << 20
-        for msg in self.node.outgoing(PEER, self.now, budget):
+        budget = self.rng.choice((40, 100, 1000, 1 << 20)) if not reliable else SEND_BUDGET_BYTES
+        for msg in self.take_ready(budget):
             self.send(self.link.to_coord, msg, reliable)
 
     def _take(self, queue: list, reliable: bool):
@@ -208,41 +225,25 @@ class Simulation:
             return
         msg = self._take(link.to_node, reliable)
         self.node.receive(PEER, msg, self.now)
-        self.handle_events()
+        self.take_ready(0)
 
-    def handle_events(self) -> None:
-        for event in self.node.take_events():
-            if isinstance(event, RebuildRequested) and not self.node.dual_write:
-                capacity, fpr = int(event.request.capacity), float(event.request.target_fpr)
-                self.node.start_rebuild(capacity, fpr, self.now)
-                # the scan: the live keys now; dual writes keep the new filter current from here
-                self.new_filter = CountingBloomFilter(geometry_for(capacity, fpr, seed=self.rng.randint(0, 9)))
-                if self.live:
-                    self.new_filter.add_positions(self.rows(sorted(self.live), self.new_filter.geometry))
-                self.rebuild_target = (capacity, fpr)
-                self.rebuild_ready_at = self.now + self.rng.choice((0.0, 0.05, 0.4))
-            elif isinstance(event, RebuildAbandoned):
-                self.new_filter = None
-                self.rebuild_ready_at = None
-            elif isinstance(event, OldFilterRetired):
-                assert self.node.old_filter is None
-
-    def maybe_begin_epoch(self) -> None:
-        if self.new_filter is not None and self.rebuild_ready_at is not None and self.now >= self.rebuild_ready_at:
-            assert self.rebuild_target is not None
-            new_filter, self.new_filter, self.rebuild_ready_at = self.new_filter, None, None
-            self.node.begin_epoch(new_filter, *self.rebuild_target, now=self.now)
-            self.handle_events()
-
-    def filters_to_write(self) -> list[CountingBloomFilter]:
-        """Dual writes: the node's current filter, the old one during a hand-over, and the
-        filter being scanned into."""
-        out = [self.node.filter]
-        if self.node.old_filter is not None:
-            out.append(self.node.old_filter)
-        if self.new_filter is not None:
-            out.append(self.new_filter)
-        return out
+    def advance_scan(self, finish: bool = False) -> None:
+        """A rebuild scan reads the store (the live keys) in key order, a few batches per step
+        with writes in between, and reports the end of the store (all of it when finish)."""
+        if self.scan_from is None or self.now < self.scan_from:
+            return
+        for _ in range(1 << 30 if finish else self.rng.randint(1, 3)):
+            after = self.scan_after
+            batch = [k for k in sorted(key.encode() for key in self.live) if after is None or k > after]
+            batch = batch[:self.rng.choice((1, 3, 16))]
+            if batch:
+                self.node.scan_batch(batch)
+                self.scan_after = batch[-1]
+                continue
+            self.scan_from = None
+            self.node.scan_done(self.now)
+            self.take_ready(0)
+            return
 
     def check_promise_1(self) -> None:
         pos = self.coord.position(NODE)
@@ -273,13 +274,13 @@ class Simulation:
         if action == "write":
             self.write_all()
             if rng.random() < 0.5:
-                self.node.cut(self.now, key_count=len(self.live))
+                self.node.cut()
         elif action == "exchange":
             # one round trip's worth of traffic, each message exposed to loss/dup/reorder
             self.pull(reliable=False)
             if rng.random() < 0.3:   # writes racing with a transfer in progress
                 self.write_all()
-                self.node.cut(self.now, key_count=len(self.live))
+                self.node.cut()
                 self.pull(reliable=False)
             for _ in range(rng.randint(1, 4)):
                 self.deliver_to_coord(reliable=False)
@@ -287,7 +288,9 @@ class Simulation:
                 self.deliver_to_node(reliable=False)
         elif action == "heartbeat":
             if self.link is not None:
-                self.send(self.link.to_coord, self.node.heartbeat(), reliable=False)
+                self.node.heartbeat(PEER, StoreCounters())
+                for msg in self.take_ready(0):
+                    self.send(self.link.to_coord, msg, reliable=False)
         elif action == "reconnect":
             self.connect()
         elif action == "disconnect":
@@ -302,7 +305,7 @@ class Simulation:
             self.now += RTO   # long enough for retransmit timers
         if self.link is None and rng.random() < 0.5:
             self.connect()
-        self.maybe_begin_epoch()
+        self.advance_scan()
 
     def write_all(self) -> None:
         """A small batch of writes: each key flips between present and absent (one filter
@@ -310,19 +313,16 @@ class Simulation:
         keys = set(self.rng.sample(self.universe, self.rng.choice((1, 1, 2, 4))))
         removed = sorted(keys & self.live)
         added = sorted(keys - self.live)
-        for f in self.filters_to_write():
-            if removed:
-                f.remove_positions(self.rows(removed, f.geometry))
-            if added:
-                f.add_positions(self.rows(added, f.geometry))
+        stamp = self.node.record([k.encode() for k in added], [k.encode() for k in removed])
         self.live.difference_update(removed)
         for key in removed:
             self.added_at.pop(key, None)
             self.seen.discard(key)
         self.live.update(added)
-        # every state cut from now on, in every live epoch, holds the added keys; so does
-        # every epoch begun later
-        points = ([(e, q + 1) for e, q in self.node.live_positions], self.node.highest_epoch)
+        # the state at the stamp, in every live epoch, holds the added keys; so does every
+        # epoch begun later
+        live = [(stamp.epoch, stamp.sequence)] + ([stamp.old_position] if stamp.old_position else [])
+        points = (live, self.node.highest_epoch)
         for key in added:
             self.added_at[key] = points
             self.seen.discard(key)
@@ -337,19 +337,21 @@ class Simulation:
             self.connect_reliably()
         for _round in range(200):
             self.now += 0.1
-            if self.rebuild_ready_at is not None:
-                self.now = max(self.now, self.rebuild_ready_at)
-            self.maybe_begin_epoch()
-            self.node.cut(self.now, key_count=len(self.live))
+            if self.scan_from is not None:
+                self.now = max(self.now, self.scan_from)
+            self.advance_scan(finish=True)
+            self.node.cut()
             self.pull(reliable=True)
-            self.send(self.link.to_coord, self.node.heartbeat(), reliable=True)
+            self.node.heartbeat(PEER, StoreCounters())
+            for msg in self.take_ready(0):
+                self.send(self.link.to_coord, msg, reliable=True)
             while self.link.to_coord or self.link.to_node:
                 while self.link.to_coord:
                     self.deliver_to_coord(reliable=True)
                 while self.link.to_node:
                     self.deliver_to_node(reliable=True)
                 self.pull(reliable=True)
-            if self.converged() and not self.node.dual_write:
+            if self.converged() and self.node.rebuild_phase is RebuildPhase.IDLE:
                 return
             if _round % 20 == 19:
                 self.now += RTO   # let retransmit timers fire
@@ -358,7 +360,8 @@ class Simulation:
     def connect_reliably(self) -> None:
         self.streams += 1
         self.link = Link(stream_id=self.streams)
-        hello = self.node.connect(PEER, self.now)[0]
+        self.node.connect(PEER, self.now)
+        (hello,) = self.take_ready(0)
         self.link.to_node.extend(self.coord.open(self.link.stream_id, hello.hello, self.now))
 
     def converged(self) -> bool:

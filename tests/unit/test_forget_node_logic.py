@@ -23,7 +23,7 @@ from shardsieve.coordinator.policy import Policy
 from shardsieve.coordinator.sync_service import SyncService, _Failure
 from shardsieve.bloom import CountingBloomFilter
 from shardsieve.geometry import Geometry
-from shardsieve.sync.node_side import NodeSync
+from shardsieve.sync.node_side import SEND_BUDGET_BYTES, NodeSync
 from shardsieve.v1 import admin_pb2, sync_pb2
 
 G = Geometry(bits=4096, hashes=5, seed=2)
@@ -44,6 +44,13 @@ class FakeContext:
         raise Aborted(code, details)
 
 
+def ready_for_coordinator(node: NodeSync) -> list[sync_pb2.NodeMessage]:
+    """What the node has ready for its stream "c" (as its driver takes it)."""
+    ready = node.ready(NOW, {"c": SEND_BUDGET_BYTES})
+    node.ack(ready)
+    return list(ready.messages.get("c", ()))
+
+
 def sync_node(svc: SyncService, node_id: str, stream: int, keys: list[str]) -> NodeSync:
     """Open node_id's stream on the protocol object and sync a replica of `keys` (as the servicer would)."""
     f = CountingBloomFilter(G)
@@ -51,11 +58,14 @@ def sync_node(svc: SyncService, node_id: str, stream: int, keys: list[str]) -> N
         f.add(k)
     node = NodeSync(node_id, f"127.0.0.1:{7100 + stream}", f, epoch=1, capacity=400, target_fpr=0.01,
                     key_count=len(keys))
-    (hello,) = node.connect("c", NOW)
+    node.connect("c", NOW)
+    (hello,) = ready_for_coordinator(node)
     with svc.lock:
         to_node = svc.sync.open(stream, hello.hello, NOW)
     for _ in range(20):
-        out = [m for msg in to_node for m in node.receive("c", msg, NOW)] + node.outgoing("c", NOW)
+        for msg in to_node:
+            node.receive("c", msg, NOW)
+        out = ready_for_coordinator(node)
         if not out:
             break
         to_node = []

@@ -134,6 +134,23 @@ class CoreProber:
         return ProbeResult(node_id, reply=_ack(self.core.put_many([(request.key, request.value)])[0]))
 
 
+class ListOutbox:
+    """The node's outbox for the hand-moved stream: keeps what the node sends until taken."""
+
+    def __init__(self) -> None:
+        self.messages: list[sync_pb2.NodeMessage] = []
+
+    def room(self) -> int:
+        return 4 << 20
+
+    def send(self, messages: Any) -> None:
+        self.messages.extend(messages)
+
+    def take(self) -> list[sync_pb2.NodeMessage]:
+        out, self.messages = self.messages, []
+        return out
+
+
 class Link:
     """One node and one coordinator, messages moved by hand; rebuild snapshots may be refused."""
 
@@ -153,7 +170,9 @@ class Link:
         self.seen: set[int] = set()
         self.to_node: deque[sync_pb2.CoordinatorMessage] = deque()
         self.violations: list[str] = []
-        hello, *rest = self.core.peer_open(PEER, self.t)
+        self.outbox = ListOutbox()
+        self.core.open_stream(PEER, self.outbox, self.t)
+        hello, *rest = self.outbox.take()
         self._observe(self.sync.open(1, hello.hello, self.t))
         assert not rest
         self.pump()
@@ -182,11 +201,11 @@ class Link:
 
     def pump(self, rounds: int = 200) -> None:
         for _ in range(rounds):
-            out: list[sync_pb2.NodeMessage] = []
             while self.to_node:
-                out += self.core.peer_receive(PEER, self.to_node.popleft(), self.t)
+                with self.core.sync_step(self.t) as node:
+                    node.receive(PEER, self.to_node.popleft(), self.t)
             self.core.cut(self.t)
-            out += self.core.peer_poll(PEER, self.t)
+            out = self.outbox.take()
             if not out:
                 return
             for msg in out:

@@ -40,7 +40,7 @@ def test_help_documents_every_setting_and_default() -> None:
         flag = "--" + f.name.replace("_", "-")
         assert flag in text, flag
         assert f"SHARDSIEVE_NODE_{f.name.upper()}" in text
-        # every setting's own entry states its default (docs/node.md, "Settings")
+        # docs/node.md, "Settings": every setting's own entry states its default
         entry = text[text.index(flag + " "):].split(f"SHARDSIEVE_NODE_{f.name.upper()}")[0]
         assert "[default:" in entry, (flag, entry)
     assert text.count("[default:") == len(dataclasses.fields(NodeSettings))
@@ -101,7 +101,8 @@ def test_unknown_file_key_is_refused(tmp_path: Path, captured: list[NodeSettings
 
 
 def test_the_daemon_refuses_the_in_memory_store() -> None:
-    # Acknowledged writes must survive a restart (docs/architecture.md#4-nothing-acknowledged-is-lost): memory is unit-test only.
+    # Acknowledged writes must survive a restart (docs/architecture.md#4-nothing-acknowledged-is-lost):
+    # memory is unit-test only.
     from shardsieve.node.settings import NodeSettings
     from shardsieve.config import ConfigError, load_settings
 

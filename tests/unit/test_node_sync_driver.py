@@ -1,4 +1,6 @@
-"""SyncDriver reconnects with jittered exponential backoff (issue 3, point 3).
+"""SyncDriver reconnects with jittered exponential backoff and bounds its send queue
+(docs/node.md, "Sync"; docs/architecture.md#3-bounded-staleness: a coordinator that went
+away is reached again soon, and a stalled one never piles up memory).
 
 The backoff rule checked here is the "jitter" family of AWS Architecture Blog, "Exponential
 Backoff And Jitter" (Brooker, 2015): the ceiling doubles per failed attempt up to a cap and
@@ -11,16 +13,13 @@ from __future__ import annotations
 
 import random
 import threading
-from typing import Any
 
 from shardsieve.node.sync_driver import SyncDriver
 
 
 class _Core:
-    """Just what SyncDriver's constructor and loop touch."""
-
-    def __init__(self) -> None:
-        self.listeners: list[Any] = []
+    """SyncDriver's constructor and reconnect loop touch nothing of the core (each stream
+    attempt is scripted below)."""
 
 
 class _RecordingStop(threading.Event):
@@ -78,3 +77,24 @@ def test_a_stream_that_worked_resets_the_doubling() -> None:
     # failure at twice the minimum
     assert waits[8] <= lo
     assert waits[9] <= 2 * lo
+
+
+def test_a_full_send_queue_gets_no_send_budget() -> None:
+    # the driver's bound on its queue (module docstring): NodeSync is given room for this
+    # stream only while fewer than MAX_QUEUED messages wait, so a stalled coordinator costs
+    # at most that many queued messages, never an unbounded pile
+    import queue
+
+    from shardsieve.node.sync_driver import MAX_QUEUED, _QueueOutbox
+    from shardsieve.sync.node_side import SEND_BUDGET_BYTES
+    from shardsieve.v1 import sync_pb2
+
+    q: queue.Queue = queue.Queue()
+    outbox = _QueueOutbox(q)
+    assert outbox.room() == SEND_BUDGET_BYTES
+    outbox.send([sync_pb2.NodeMessage()] * (MAX_QUEUED - 1))
+    assert outbox.room() == SEND_BUDGET_BYTES and q.qsize() == MAX_QUEUED - 1
+    outbox.send([sync_pb2.NodeMessage()])
+    assert outbox.room() == 0
+    q.get()
+    assert outbox.room() == SEND_BUDGET_BYTES
