@@ -31,10 +31,11 @@ hold when the slot is whole. Beside the m/8 bytes an install allocates at most
 INSTALL_SCRATCH_BYTES (512 KiB) of chunk scratch. The join that leaves 8 nodes without a slot
 widens the slice: the map grows in place (mremap on Linux) by m bytes per byte of row width,
 and rows move to their new place CHUNK_MOVE_BYTES (1 MiB) at a time, lookups reading each row
-where it sits (through a byte-granular window: slower, only while rows move). Resident memory
-then peaks at 9 x m/8 above the settled size (the 8 packed copies and the new byte of every
-row) until the copies are freed. Narrowing moves rows the other way and returns the freed
-pages CHUNK_RELEASE_BYTES (8 MiB) at a time.
+where it sits (through a byte-granular window: slower, only while rows move). Memory then
+peaks m bytes (8 x m/8) above the size the group settles at, until the 8 packed copies have
+moved into the new slots and are freed; after the move the rows' pages are gathered into
+transparent huge pages where the system offers it. Narrowing moves rows the other way and
+returns the freed pages CHUNK_RELEASE_BYTES (8 MiB) at a time.
 
 Layout work runs in settle(), one chunk per hold of the lock; before each chunk it lets every
 caller already waiting for the lock go first. install() and remove() settle before returning

@@ -403,7 +403,7 @@ def measure_install(rng: np.random.Generator, log: Callable[[str], None], rounds
     out["locate_p99_ratio_during_vs_without_install"] = (out["locate_p99_during_install_ms"]
                                                          / out["locate_p99_without_install_ms"])
     log(f"  install of a 2^26-bit filter into a {INSTALL_GROUP}-node group: peak allocation "
-        f"{peak_ratio:.3f} x m/8 (join completing a byte of slots: +{widen_ratio:.2f} x m/8 resident), "
+        f"{peak_ratio:.3f} x m/8 (a join completing a byte of slots: peak {widen_ratio:.2f} x m/8 above the group before it), "
         f"{out['install_ms']:.0f} ms each")
     log(f"  index lock held by the installing thread: longest {out['install_longest_lock_hold_ms']:.2f} ms, "
         f"p99 {out['install_lock_hold_p99_ms']:.2f} ms over {len(holds_ms)} holds")
