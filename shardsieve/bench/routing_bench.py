@@ -10,7 +10,12 @@ Every figure is measured in this run, side by side with its baseline:
   grpc_fraction_of_in_process divides its rate by the same 1,000-key batches sent through the
   same Router in process (the transport's cost), measured interleaved;
 - write-to-routable latency for writes made directly on a node (a real node + coordinator);
-- index memory per node filter against m/8 bytes (one bit per filter position).
+- index memory per node filter against m/8 bytes (one bit per filter position): the worst case
+  over group sizes 1, 2, 7, 8, 9, 63, 64, 65 and 256, reached by joins and again by leaves;
+- installing a 2^26-bit filter into a 16-node group: peak allocation against m/8 bytes (traced
+  by tracemalloc, plus any growth of the index's slice maps, which tracemalloc does not see),
+  the longest hold of the index lock by the installing thread, and a concurrent single-key
+  Locate's p99 latency during installs against the same loop without them.
 """
 
 from __future__ import annotations
@@ -19,7 +24,9 @@ import json
 import math
 import sys
 import tempfile
+import threading
 import time
+import tracemalloc
 from concurrent import futures
 from pathlib import Path
 from typing import Any, Callable
@@ -27,7 +34,7 @@ from typing import Any, Callable
 import click
 import numpy as np
 
-from shardsieve.geometry import geometry_for
+from shardsieve.geometry import Geometry, geometry_for
 from shardsieve.hashing import positions
 
 CAPACITY = 100_000          # keys a node filter is sized for (the geometry every node shares)
@@ -122,7 +129,6 @@ def measure_in_process(n_keys: int, rng: np.random.Generator, log: Callable[[str
     keep = {64: indexes[64]}
     out["per_key_cost_ratio_256_vs_8"] = out["keys_per_s_8"] / out["keys_per_s_256"]
     out["per_key_cost_ratio_256_vs_8_one_thread"] = out["keys_per_s_8_one_thread"] / out["keys_per_s_256_one_thread"]
-    out["memory_ratio_vs_m_over_8"] = out["memory_ratio_vs_m_over_8_at_256"]
 
     # Baseline: the plain per-node membership loop at 64 nodes, over the same filters.
     index64, cols64 = keep[64]
@@ -261,6 +267,152 @@ def measure_write_to_routable(writes: int, push_interval_ms: int, log: Callable[
     return out
 
 
+GROUP_SIZES = (1, 2, 7, 8, 9, 63, 64, 65, 256)
+
+
+def measure_memory_by_group_size(rng: np.random.Generator, log: Callable[[str], None]) -> dict[str, Any]:
+    """Index memory per node filter against m/8 at every size of GROUP_SIZES, reached by joins
+    (one node at a time) and then by leaves (random nodes) on the way back down."""
+    from shardsieve.coordinator.routing_index import RoutingIndex
+
+    geometry = geometry_for(CAPACITY, TARGET_FPR)
+    m8 = geometry.byte_size
+    index = RoutingIndex(workers=1)
+    members: list[str] = []
+    ratios: dict[str, float] = {}
+    for phase, sizes in (("join", GROUP_SIZES), ("leave", GROUP_SIZES[-2::-1])):
+        for size in sizes:
+            while len(members) < size:
+                members.append(f"node-{len(members):03d}")
+                index.install(members[-1], geometry, rng.integers(0, 256, size=m8, dtype=np.uint8).tobytes())
+            while len(members) > size:
+                index.remove(members.pop(int(rng.integers(0, len(members)))))
+            ratios[f"{phase}_{size}"] = index.memory_bytes() / (size * m8)
+    worst = max(ratios, key=ratios.__getitem__)
+    log(f"  index memory vs m/8 per node, group sizes {', '.join(map(str, GROUP_SIZES))} by joins and leaves: "
+        f"worst {ratios[worst]:.4f} ({worst.replace('_', ' at ')} nodes)")
+    return {"memory_ratio_vs_m_over_8": ratios[worst], "memory_ratio_by_group_size": ratios,
+            "memory_ratio_worst_case": worst}
+
+
+class _TimedLock:
+    """The index lock, recording how long one thread (`watched`) holds it each time (bench
+    instrumentation; the index takes a lock object for this)."""
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._since = 0.0
+        self.watched: int | None = None
+        self.holds: list[float] = []
+
+    def __enter__(self) -> None:
+        self._lock.acquire()
+        self._since = time.perf_counter()
+
+    def __exit__(self, *exc: object) -> None:
+        if threading.get_ident() == self.watched:
+            self.holds.append(time.perf_counter() - self._since)
+        self._lock.release()
+
+
+INSTALL_BITS = 1 << 26
+INSTALL_GROUP = 16
+
+
+def measure_install(rng: np.random.Generator, log: Callable[[str], None], rounds: int = 6) -> dict[str, Any]:
+    """A 2^26-bit filter installed into a group of INSTALL_GROUP such filters, as a replica resync
+    does: its allocation, the index lock's longest hold by the installing thread, and how a
+    concurrent single-key Locate fares during installs against the same loop without them."""
+    from shardsieve.coordinator.routing_index import RoutingIndex
+
+    geometry = Geometry(bits=INSTALL_BITS, hashes=7)
+    m8 = geometry.byte_size
+    lock = _TimedLock()
+    index = RoutingIndex(workers=1, lock=lock)
+    for i in range(INSTALL_GROUP):
+        index.install(f"node-{i:02d}", geometry, rng.integers(0, 256, size=m8, dtype=np.uint8).tobytes())
+    snapshots = [rng.integers(0, 256, size=m8, dtype=np.uint8).tobytes() for _ in range(2)]
+    keys = [f"probe-{i}".encode() for i in range(256)]
+
+    # Allocation of one install that replaces a filter held in a slot.
+    mapped = index.memory_bytes()
+    tracemalloc.start()
+    try:
+        base = tracemalloc.get_traced_memory()[0]
+        tracemalloc.reset_peak()
+        index.install("node-03", geometry, snapshots[0])
+        traced_peak = tracemalloc.get_traced_memory()[1] - base
+    finally:
+        tracemalloc.stop()
+    peak_ratio = (traced_peak + max(0, index.memory_bytes() - mapped)) / m8
+
+    # The resident peak of the join that completes a byte of slots (the slice widens by m bytes).
+    for i in range(INSTALL_GROUP, INSTALL_GROUP + 7):
+        index.install(f"node-{i:02d}", geometry, snapshots[i % 2])
+    steady = index.memory_bytes()
+    index.install(f"node-{INSTALL_GROUP + 7:02d}", geometry, snapshots[0], settle=False)
+    widen_peak = index.memory_bytes()
+    while not index.settle(max_chunks=1):
+        widen_peak = max(widen_peak, index.memory_bytes())
+    widen_ratio = (widen_peak - steady) / m8
+
+    def locate_loop(stop: threading.Event, out: list[float]) -> None:
+        i = 0
+        while not stop.is_set():
+            t0 = time.perf_counter()
+            index.locate([keys[i % len(keys)]], positions)
+            out.append((time.perf_counter() - t0) * 1000.0)
+            i += 1
+
+    def timed_loop(work: Callable[[], None]) -> tuple[list[float], float]:
+        stop, lat = threading.Event(), []   # type: ignore[var-annotated]
+        t = threading.Thread(target=locate_loop, args=(stop, lat))
+        t.start()
+        t0 = time.perf_counter()
+        try:
+            work()
+        finally:
+            stop.set()
+            t.join()
+        return lat, time.perf_counter() - t0
+
+    def installs() -> None:
+        for r in range(rounds):
+            index.install("node-05", geometry, snapshots[r % 2])
+
+    lock.watched, lock.holds = threading.get_ident(), []
+    during, elapsed = timed_loop(installs)
+    lock.watched = None
+    holds_ms = [h * 1000.0 for h in lock.holds]
+    idle = threading.Event()
+    without, _ = timed_loop(lambda: idle.wait(elapsed))   # the same loop, as long, no install
+    out = {
+        "install_filter_bits": INSTALL_BITS, "install_group_nodes": INSTALL_GROUP,
+        "install_peak_allocation_vs_m_over_8": peak_ratio,
+        "install_widening_peak_vs_m_over_8": widen_ratio,
+        "install_longest_lock_hold_ms": max(holds_ms),
+        "install_lock_hold_p99_ms": _percentile(holds_ms, 99),
+        "install_lock_holds": len(holds_ms),
+        "install_ms": elapsed / rounds * 1000.0,
+        "locate_p99_during_install_ms": _percentile(during, 99),
+        "locate_p99_without_install_ms": _percentile(without, 99),
+        "locate_max_during_install_ms": max(during),
+        "locate_max_without_install_ms": max(without),
+        "locate_lookups_during_install": len(during),
+    }
+    out["locate_p99_ratio_during_vs_without_install"] = (out["locate_p99_during_install_ms"]
+                                                         / out["locate_p99_without_install_ms"])
+    log(f"  install of a 2^26-bit filter into a {INSTALL_GROUP}-node group: peak allocation "
+        f"{peak_ratio:.3f} x m/8 (a join completing a byte of slots: peak {widen_ratio:.2f} x m/8 above the group before it), "
+        f"{out['install_ms']:.0f} ms each")
+    log(f"  index lock held by the installing thread: longest {out['install_longest_lock_hold_ms']:.2f} ms, "
+        f"p99 {out['install_lock_hold_p99_ms']:.2f} ms over {len(holds_ms)} holds")
+    log(f"  concurrent single-key Locate, p99 / max: {out['locate_p99_during_install_ms']:.3f} / "
+        f"{out['locate_max_during_install_ms']:.1f} ms during {rounds} installs ({len(during)} lookups), "
+        f"{out['locate_p99_without_install_ms']:.3f} / {out['locate_max_without_install_ms']:.1f} ms without")
+    return out
+
+
 TARGETS = {
     "per_key_cost_ratio_256_vs_8": ("<=", 1.5),
     "speedup_vs_per_node_loop_64": (">=", 10.0),
@@ -288,6 +440,8 @@ def bench_routing(as_json: bool, n_keys: int, writes: int, push_interval_ms: int
     index64, keys = inproc.pop("_index64"), inproc.pop("_keys")
     grpc_out = measure_grpc(index64, keys, log)
     result = {**inproc, **grpc_out}
+    result.update(measure_memory_by_group_size(rng, log))
+    result.update(measure_install(rng, log))
     # The cost of the transport: the same 1,000-key LocateBatch calls, through the same router,
     # over loopback gRPC vs called in process, measured interleaved in one run.
     result["grpc_fraction_of_in_process"] = (result["grpc_batch_keys_per_s"]
@@ -311,6 +465,9 @@ def bench_routing(as_json: bool, n_keys: int, writes: int, push_interval_ms: int
         log(f"  {name:32s} {result[name]:>12.3f}  target {op} {bound:g}  {'met' if verdicts[name] else 'NOT MET'}")
     log(f"  {'per-key cost 256 vs 8, one thread':32s} {result['per_key_cost_ratio_256_vs_8_one_thread']:>12.3f}  "
         f"(for context; the target uses the coordinator's default of {result['locate_threads']} threads)")
-    log(f"  {'memory ratio at 8 / 64 nodes':32s} {result['memory_ratio_vs_m_over_8_at_8']:.3f} / "
-        f"{result['memory_ratio_vs_m_over_8_at_64']:.3f}")
+    log(f"  {'memory ratio at 8 / 64 / 256 nodes':32s} {result['memory_ratio_vs_m_over_8_at_8']:.3f} / "
+        f"{result['memory_ratio_vs_m_over_8_at_64']:.3f} / {result['memory_ratio_vs_m_over_8_at_256']:.3f}")
+    log(f"  {'install peak allocation vs m/8':32s} {result['install_peak_allocation_vs_m_over_8']:>12.3f}  "
+        f"(2^26-bit filter; longest lock hold {result['install_longest_lock_hold_ms']:.2f} ms; "
+        f"Locate p99 during / without installs {result['locate_p99_ratio_during_vs_without_install']:.2f})")
     sys.stdout.flush()
