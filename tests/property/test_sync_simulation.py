@@ -120,7 +120,7 @@ class Simulation:
             self.node.disconnect(PEER)   # the stream failed to open
             return
         self.link = link
-        link.to_node.extend(self.coord.open(link.stream_id, hello.hello, self.now))
+        link.to_node.extend(self.coord.open(link.stream_id, hello.hello, self.now).replies)
 
     def disconnect(self) -> None:
         if self.link is not None:
@@ -150,8 +150,8 @@ class Simulation:
         if self.link is None:
             return
         capacity = self.rng.choice((60, 120, 250))
-        msg = self.coord.request_rebuild(NODE, capacity, 0.01, "simulated saturation", self.now)
-        self.link.to_node.append(msg)
+        result = self.coord.request_rebuild(NODE, capacity, 0.01, "simulated saturation", self.now)
+        self.link.to_node.extend(result.replies)
 
     def send(self, queue: list, msg: object, reliable: bool) -> None:
         if not reliable and self.rng.random() < self.loss:
@@ -195,7 +195,7 @@ class Simulation:
             return
         msg = self._take(link.to_coord, reliable)
         try:
-            replies = self.coord.receive(NODE, link.stream_id, msg, self.now)
+            replies = self.coord.receive(NODE, link.stream_id, msg, self.now).replies
         except ProtocolViolation as exc:  # pragma: no cover - would be a protocol bug
             raise AssertionError(f"coordinator refused a node message: {exc!r}") from exc
         for reply in replies:
@@ -359,7 +359,7 @@ class Simulation:
         self.streams += 1
         self.link = Link(stream_id=self.streams)
         hello = self.node.connect(PEER, self.now)[0]
-        self.link.to_node.extend(self.coord.open(self.link.stream_id, hello.hello, self.now))
+        self.link.to_node.extend(self.coord.open(self.link.stream_id, hello.hello, self.now).replies)
 
     def converged(self) -> bool:
         replica = self.sink.replicas.get(NODE)
