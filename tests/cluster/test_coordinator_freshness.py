@@ -2,7 +2,8 @@
 
 Oracle: the history of acknowledged writes recorded by the test (shardsieve.testing.history);
 the rule checked is the store's promise that no acknowledged, undeleted key is reported absent
-by a safe-mode read (ARCHITECTURE.md promises 1-3).
+by a safe-mode read (docs/architecture.md#1-no-false-negatives-once-synced,
+#2-read-your-writes-through-a-coordinator, #3-bounded-staleness).
 """
 
 from __future__ import annotations
@@ -107,7 +108,7 @@ def test_frozen_node_turns_stale_listed_in_safe_mode_only(tmp_path) -> None:
             for key in absent:
                 c = listed(key)
                 assert c and c[0].stale
-            # First hit wins (issue 4 point 4): crate-1's read also probes the frozen node (listed stale),
+            # First hit wins (docs/coordinator.md, "Freshness contract"): crate-1's read also probes the frozen node (listed stale),
             # whose probe would only end at the 60 s read deadline; the answer comes from node-1 well
             # within the 10 s call deadline, so the read did not wait for every probe.
             reply = router.Read(routing_pb2.ReadRequest(key=b"crate-1", deadline_ms=60_000), timeout=10)

@@ -127,7 +127,7 @@ def test_reads_writes_deletes_and_wasted_probes(tmp_path) -> None:
         fleet = cluster.fleet_status()
         assert fleet.wasted_probes > 0, "the loose filter should have produced false positives"
         assert fleet.wasted_probes == sum(cluster.node_stats(n).reads_missed for n in node_ids)
-        # Avoided fan-out by definition: 1 - probes / (lookups x nodes) (ARCHITECTURE.md).
+        # Avoided fan-out by definition: 1 - probes / (lookups x nodes) (docs/architecture.md#words).
         assert fleet.avoided_fanout == pytest.approx(1 - fleet.probes / (fleet.lookups * 4))
         assert fleet.avoided_fanout > 0.5
 
