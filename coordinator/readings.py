@@ -131,8 +131,11 @@ class Readings:
         in_flight = node_id in self._monitor.in_flight
         address = self._membership.address(node_id) or ""
         if state is None:   # known (expected, remembered) but not heard from in this process's life
-            return NodeReading(node_id, address, False, False, True, state_name(None, policy, now, in_flight),
-                               None, 0, 0, 0, 0, 0, 0, None, 0, 0, None, counters.get(node_id))
+            return NodeReading(
+                node_id=node_id, address=address, connected=False, has_replica=False, stale=True,
+                state=state_name(None, policy, now, in_flight), geometry=None, epoch=0, sequence=0, checksum=0,
+                key_count=0, capacity=0, set_bits=0, lag_s=None, delta_bytes=0, snapshots=0, stats=None,
+                counters=counters.get(node_id))
         heard = state.last_heard_at
         sync_counters = state.counters
         return NodeReading(

@@ -34,7 +34,9 @@ def framed(body: bytes) -> bytes:
 
 class ReplyEncoder:
     """Encodes candidate lists; the field of each distinct (node, address, stale, hinted) is
-    built once and cached (bounded: a fleet has few nodes, addresses change rarely)."""
+    built once and cached (bounded: a fleet has few nodes, addresses change rarely). The cache
+    only holds what its key determines, so concurrent calls may share it without a lock: at
+    worst an entry is built twice."""
 
     def __init__(self, max_cached: int = 4096) -> None:
         self._fields: dict[tuple[str, str, bool, bool], bytes] = {}
