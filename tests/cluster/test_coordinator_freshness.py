@@ -46,6 +46,12 @@ def _load(cluster: LocalCluster, history: History, stop: threading.Event, errors
         except grpc.RpcError as exc:
             # The coordinator is down for a moment: an error is an honest answer, not a miss.
             errors.append(exc.code().name)
+        except ValueError as exc:
+            # The restart closed the channel this stub was made on (grpc raises ValueError
+            # "Cannot invoke RPC on closed channel!"): take a new one on the next round.
+            if "closed channel" not in str(exc):
+                raise
+            errors.append("CLOSED_CHANNEL")
 
 
 def test_coordinator_restart_mid_load_keeps_every_acknowledged_key(tmp_path) -> None:
