@@ -6,15 +6,19 @@ was probed, and whether the probe found the key. From that it derives:
 - observed FPR: filter false positives over the lookups checked against that node's filter
   for keys it did not hold, with a Wilson score 95% interval (shardsieve/intervals.py).
 Predicted FPR (fill^k) lives in shardsieve/sizing.py, avoided fan-out in shardsieve/fanout.py.
+
+It subscribes to the sync events: a replica installed in a new epoch restarts that node's
+observed FPR (the old counts describe the old filter), a forgotten node loses its counters.
+Not thread-safe: the coordinator calls it under its one lock (docs/architecture.md#how-events-flow).
 """
 
 from __future__ import annotations
 
-import threading
 from dataclasses import dataclass, field
 from typing import Iterable
 
 from shardsieve.intervals import wilson_interval
+from shardsieve.sync.coordinator_side import NodeForgotten, ReplicaInstalled, SyncEvent
 
 
 @dataclass
@@ -65,17 +69,13 @@ class FleetTotals:
 
 @dataclass
 class Accounting:
-    """Thread-safe counters fed by the read path; read by metrics, admin and the monitor."""
+    """Counters fed by the read path; read by metrics, admin and the monitor."""
 
     nodes: dict[str, NodeCounters] = field(default_factory=dict)
     totals: FleetTotals = field(default_factory=FleetTotals)
-    _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
 
     def node(self, node_id: str) -> NodeCounters:
-        with self._lock:
-            return self._node(node_id)
-
-    def _node(self, node_id: str) -> NodeCounters:
+        """node_id's counters (created at zero for a node not seen yet)."""
         c = self.nodes.get(node_id)
         if c is None:
             c = self.nodes[node_id] = NodeCounters()
@@ -83,44 +83,45 @@ class Accounting:
 
     def record_read(self, outcomes: Iterable[ProbeOutcome]) -> None:
         """Account one read from the per-node outcomes (every node the index knows, plus probed ones)."""
-        with self._lock:
-            self.totals.lookups += 1
-            for o in outcomes:
-                c = self._node(o.node_id)
-                if o.probed:
-                    c.probes += 1
-                    self.totals.probes += 1
-                    if not o.reached:
-                        c.unreachable += 1
-                    elif o.found:
-                        c.hits += 1
-                    else:
-                        c.wasted_probes += 1
-                        self.totals.wasted_probes += 1
-                # The key was not on this node when its probe missed, or when its filter did not
-                # list it (filters have no false negatives). Unprobed "maybe"s prove nothing.
-                if o.consulted and not o.found and o.reached and (o.probed or not o.listed_by_filter):
-                    c.lookups_checked += 1
-                    self.totals.lookups_checked += 1
-                    if o.listed_by_filter:
-                        c.false_positives += 1
-                        self.totals.false_positives += 1
+        self.totals.lookups += 1
+        for o in outcomes:
+            c = self.node(o.node_id)
+            if o.probed:
+                c.probes += 1
+                self.totals.probes += 1
+                if not o.reached:
+                    c.unreachable += 1
+                elif o.found:
+                    c.hits += 1
+                else:
+                    c.wasted_probes += 1
+                    self.totals.wasted_probes += 1
+            # The key was not on this node when its probe missed, or when its filter did not
+            # list it (filters have no false negatives). Unprobed "maybe"s prove nothing.
+            if o.consulted and not o.found and o.reached and (o.probed or not o.listed_by_filter):
+                c.lookups_checked += 1
+                self.totals.lookups_checked += 1
+                if o.listed_by_filter:
+                    c.false_positives += 1
+                    self.totals.false_positives += 1
 
     def new_epoch(self, node_id: str, epoch: int) -> None:
         """A node's filter was replaced: its observed FPR starts over (old counts describe the old filter)."""
-        with self._lock:
-            c = self._node(node_id)
-            if c.epoch is not None and c.epoch != epoch:
-                c.lookups_checked = 0
-                c.false_positives = 0
-            c.epoch = epoch
+        c = self.node(node_id)
+        if c.epoch is not None and c.epoch != epoch:
+            c.lookups_checked = 0
+            c.false_positives = 0
+        c.epoch = epoch
 
     def forget(self, node_id: str) -> None:
-        with self._lock:
-            self.nodes.pop(node_id, None)
+        self.nodes.pop(node_id, None)
 
     def snapshot(self) -> tuple[dict[str, NodeCounters], FleetTotals]:
         """Copies of the counters (consistent with each other)."""
-        with self._lock:
-            return ({k: NodeCounters(**vars(v)) for k, v in self.nodes.items()}, FleetTotals(**vars(self.totals)))
+        return ({k: NodeCounters(**vars(v)) for k, v in self.nodes.items()}, FleetTotals(**vars(self.totals)))
 
+    def on_event(self, event: SyncEvent) -> None:
+        if isinstance(event, ReplicaInstalled):
+            self.new_epoch(event.node_id, event.epoch)
+        elif isinstance(event, NodeForgotten):
+            self.forget(event.node_id)

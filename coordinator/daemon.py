@@ -1,8 +1,12 @@
-"""Wiring of a coordinator process: fleet state, gRPC services + health, monitor timer, metrics, logs.
+"""Wiring of a coordinator process: state owners and their subscribers, gRPC services + health,
+monitor timer, metrics, logs.
 
-A coordinator holds only soft state: replicas come from the nodes (each answers the restart's
-NeedSnapshot with a snapshot). The optional state dir remembers which nodes exist so, after a
-restart, they are listed as stale (safe mode) until they resync instead of being unknown.
+CoordinatorSync owns every node's state; the shell runs it under one lock and hands its events
+to membership, hints, accounting, the saturation monitor, metrics and the stream transport
+(docs/architecture.md#how-events-flow). A coordinator holds only soft state: replicas come from
+the nodes (each answers the restart's NeedSnapshot with a snapshot). The optional state dir
+remembers which nodes exist so, after a restart, they are listed as stale (safe mode) until
+they resync instead of being unknown.
 SIGTERM / SIGINT: health NOT_SERVING, sync streams end, the server drains, the process exits.
 """
 
@@ -10,7 +14,6 @@ from __future__ import annotations
 
 import logging
 import threading
-import time
 from concurrent import futures
 from typing import Any
 
@@ -18,16 +21,18 @@ import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
 
 from shardsieve.coordinator.admin_service import AdminService
-from shardsieve.coordinator.fleet import Fleet
 from shardsieve.coordinator.metrics import Metrics
+from shardsieve.coordinator.operations import Operations
 from shardsieve.coordinator.probes import Prober
 from shardsieve.coordinator.router_service import Router, RouterService, add_router_service
-from shardsieve.coordinator.saturation import Decision, RebuildPlan, SaturationMonitor
+from shardsieve.coordinator.saturation import SaturationMonitor
 from shardsieve.coordinator.settings import CoordinatorSettings
 from shardsieve.coordinator.sync_service import SyncService
+from shardsieve.coordinator.wiring import wire_state
 from shardsieve import logs, security
 from shardsieve.config import ConfigError
 from shardsieve.daemon_runner import run_until_signalled
+from shardsieve.sync.coordinator_side import CoordinatorSyncConfig
 from shardsieve.v1 import admin_pb2_grpc, sync_pb2_grpc
 
 log = logging.getLogger("shardsieve.coordinator")
@@ -42,28 +47,36 @@ class CoordinatorDaemon:
 
     def __init__(self, settings: CoordinatorSettings) -> None:
         self.settings = settings
-        self.fleet = Fleet(settings.policy(), state_dir=settings.state_dir, expected=settings.expected_nodes(),
-                           monitor=SaturationMonitor(rebuild_timeout_s=settings.rebuild_timeout_s,
-                                                      shrink_grace_s=settings.shrink_grace_s),
-                           max_hints=settings.max_hints, hint_max_age_s=settings.hint_max_age_s,
-                           locate_threads=settings.locate_threads)
-        self.metrics = Metrics(self.fleet)
+        limits = settings.sync_limits()
+        # the owners of state and their readers (coordinator/wiring.py)
+        self.state = state = wire_state(
+            settings.policy(), expected=settings.expected_nodes(), state_dir=settings.state_dir,
+            max_hints=settings.max_hints, locate_threads=settings.locate_threads,
+            monitor=SaturationMonitor(rebuild_timeout_s=settings.rebuild_timeout_s,
+                                      shrink_grace_s=settings.shrink_grace_s),
+            sync_config=CoordinatorSyncConfig(max_snapshot_bytes=limits.max_snapshot_bytes))
+        shell = state.shell
+        self.metrics = Metrics(state.readings)
         tls = settings.tls_files()
         self._secrets = secrets = settings.secrets()
-        self.prober = Prober(settings.probe_threads, credentials=tls.channel_credentials(),
-                             metadata=security.auth_metadata(secrets["node-storage-token"]))
-        self.router = Router(self.fleet, self.prober, read_deadline_s=settings.read_deadline_ms / 1000.0,
-                             write_deadline_s=settings.write_deadline_ms / 1000.0, metrics=self.metrics,
-                             max_key_bytes=settings.max_key_bytes, max_value_bytes=settings.max_value_bytes,
-                             max_batch_keys=settings.max_batch_keys)
         node_tokens = secrets["node-token"]
         self.node_auth = "certificate" if settings.tls_client_auth else "token" if node_tokens else "open"
         self.node_authorizer = security.NodeAuthorizer(self.node_auth, node_tokens)
-        self.sync = SyncService(self.fleet, metrics=self.metrics, authorizer=self.node_authorizer,
-                                limiter=security.StreamLimiter(settings.max_streams_per_peer),
-                                limits=settings.sync_limits())
-        self.admin = AdminService(self.fleet, settings.id, secrets["token"], self.start_rebuild,
-                                  forget_node=self.sync.forget)
+        self.sync = SyncService(shell, delta_bytes=self.metrics.delta_bytes.inc, authorizer=self.node_authorizer,
+                                limiter=security.StreamLimiter(settings.max_streams_per_peer), limits=limits)
+        shell.subscribe(self.metrics.on_event)
+        shell.subscribe(self.sync.on_event)
+        self.operations = Operations(shell, state.readings, state.monitor, state.policy, state.hints,
+                                     state.membership, self.sync.send, hint_max_age_s=settings.hint_max_age_s)
+        self.prober = Prober(settings.probe_threads, credentials=tls.channel_credentials(),
+                             metadata=security.auth_metadata(secrets["node-storage-token"]))
+        self.router = Router(state.candidates, shell, state.membership, state.hints, state.accounting,
+                             state.policy, self.prober, expire_hints=self.operations.expire_hints,
+                             read_deadline_s=settings.read_deadline_ms / 1000.0,
+                             write_deadline_s=settings.write_deadline_ms / 1000.0, metrics=self.metrics,
+                             max_key_bytes=settings.max_key_bytes, max_value_bytes=settings.max_value_bytes,
+                             max_batch_keys=settings.max_batch_keys)
+        self.admin = AdminService(settings.id, state.readings, self.operations, state.policy)
         # Installed even with no token configured, so a reload (SIGHUP) can start requiring one.
         self.guard = security.TokenGuard(self._token_rules(secrets))
         self.server = grpc.server(futures.ThreadPoolExecutor(max_workers=settings.grpc_workers,
@@ -120,35 +133,16 @@ class CoordinatorDaemon:
             log.warning("node tokens are configured now but take effect only after a restart",
                         extra={"node_auth": self.node_auth})
         self.guard.update(self._token_rules(new))
-        self.admin.set_token(new["token"])
         self.prober.set_metadata(security.auth_metadata(new["node-storage-token"]))
         self._secrets = new
         return changed
 
-    # -- rebuilds ------------------------------------------------------------------------------------
-    def start_rebuild(self, plan: RebuildPlan, now: float) -> None:
-        """Ask the node to rebuild over its sync stream and mark the slot taken (admin + monitor)."""
-        rec = next((r for r in self.fleet.records() if r.node_id == plan.node_id), None)
-        try:
-            self.sync.send_rebuild(plan.node_id, plan.capacity, plan.target_fpr, plan.reason)
-        except (KeyError, ValueError) as exc:
-            self.fleet.monitor.forget(plan.node_id)
-            self.fleet.record_decisions([Decision(time.time(), plan.node_id, "skip", f"rebuild not sent: {exc}")])
-            return
-        if plan.node_id not in self.fleet.monitor.in_flight:
-            self.fleet.monitor.started(plan, rec.epoch if rec else 0, now)
-
+    # -- the monitor timer --------------------------------------------------------------------------
     def _monitor_loop(self) -> None:
         interval = self.settings.monitor_interval_s
         while not self._stop.wait(interval):
             try:
-                self.sync.refresh()
-                self.fleet.expire_hints(time.monotonic())
-                views = self.fleet.views(time.monotonic())
-                result = self.fleet.monitor.tick(time.time(), views, self.fleet.policy)
-                self.fleet.record_decisions(result.decisions)
-                for plan in result.rebuilds:
-                    self.start_rebuild(plan, time.time())
+                self.operations.tick()
             except Exception:  # noqa: BLE001 - the monitor must keep running
                 log.exception("saturation monitor tick failed")
 
@@ -161,8 +155,9 @@ class CoordinatorDaemon:
             log.info("metrics endpoint", extra={"address": f"{host}:{self.settings.metrics_port}"})
         self._monitor_thread.start()
         self._set_health(health_pb2.HealthCheckResponse.SERVING)
-        log.info("serving", extra={"address": self.address, "mode": self.fleet.policy.mode,
-                                   "known_nodes": len(self.fleet.nodes), "locate_threads": self.fleet.index.workers,
+        log.info("serving", extra={"address": self.address, "mode": self.state.policy.current.mode,
+                                   "known_nodes": len(self.state.readings.node_ids()),
+                                   "locate_threads": self.state.replicas.workers,
                                    "admin_token": "configured" if self._secrets["token"] else "none",
                                    "read_token": "configured" if self._secrets["read-token"] else "none",
                                    "write_token": "configured" if self._secrets["write-token"] else "none",

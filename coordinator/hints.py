@@ -3,28 +3,34 @@
 A write through the coordinator is acknowledged by the node with the (epoch, sequence) of the
 delta that will carry its filter change. Until the coordinator's replica of that node holds
 the write, the key's lookups list the node from this table. A hint is dropped only when it is
-certain the key is routable without it:
+certain the key is routable without it: when the replica holds the write by the rule
+`holds_write` (shardsieve/sync/coordinator_side.py, the one statement of it; CoordinatorSync.covers
+uses it too), which also covers a write made during a rebuild hand-over through the old epoch's
+position it reports (`old`) and so clears the hints of an abandoned rebuild; or, as a last
+resort, when the hint is older than a bound (`expire`), returned to the caller to log with its
+numbers (safe mode still lists a stale node).
 
-- the replica is at or past (epoch, sequence) (compared as a tuple: a later epoch reached
-  through a verified snapshot also holds the write);
-- or the write landed during a rebuild hand-over (the node acknowledges with the NEW epoch and
-  also reports the OLD epoch's position, `old`, since both filters are written) and the replica
-  is in exactly that old epoch at or past that position. This is what clears hints of an
-  abandoned rebuild, whose new epoch the replica never reaches;
-- or, as a last resort, the hint is older than a bound (`expire`), returned to the caller to
-  log with its numbers; safe mode still lists a stale node.
+The table subscribes to the sync events: a replica that advanced or was installed drops the
+hints it covers, a forgotten node drops all of its hints.
 
-Pure: no clocks (the caller passes `now`), no I/O; thread-safe.
+Pure: no clocks (the caller passes `now`), no I/O. Not thread-safe: the coordinator calls it
+under its one lock (docs/architecture.md#how-events-flow).
 """
 
 from __future__ import annotations
 
 import heapq
-import threading
 from dataclasses import dataclass
-from typing import Iterable, Sequence
+from typing import Callable, Iterable, Sequence
 
-Position = tuple[int, int]
+from shardsieve.sync.coordinator_side import (
+    NodeForgotten,
+    Position,
+    ReplicaAdvanced,
+    ReplicaInstalled,
+    SyncEvent,
+    holds_write,
+)
 
 
 @dataclass(frozen=True)
@@ -39,14 +45,13 @@ class Hint:
 
     def covered_by(self, replica: Position) -> bool:
         """True when a replica at `replica` certainly holds the write."""
-        if replica >= self.position:
-            return True
-        return self.old is not None and replica[0] == self.old[0] and replica[1] >= self.old[1]
+        return holds_write(replica, self.position, self.old)
 
 
 class HintTable:
+    """Outstanding hints, indexed by key, by node position, by old-epoch position and by age."""
+
     def __init__(self, max_hints: int = 1_000_000) -> None:
-        self._lock = threading.Lock()
         self._by_key: dict[bytes, dict[str, Hint]] = {}
         # per node, lazy min-heaps (entries whose hint was replaced or dropped are skipped when popped)
         self._by_node: dict[str, list[tuple[int, int, bytes]]] = {}          # (epoch, sequence, key)
@@ -55,6 +60,7 @@ class HintTable:
         self._per_node: dict[str, int] = {}     # hints held per node (empty node: its heaps go)
         self._count = 0
         self.max_hints = max_hints
+        self.expired_unapplied = 0   # hints dropped by age while the replica still lacked their write
 
     def __len__(self) -> int:
         return self._count
@@ -69,29 +75,28 @@ class HintTable:
         hint = Hint(key, node_id, (epoch, sequence), old, now)
         if applied is not None and hint.covered_by(applied):
             return False
-        with self._lock:
-            per_key = self._by_key.get(key)
-            previous = per_key.get(node_id) if per_key is not None else None
-            if previous is None and self._count >= self.max_hints:
-                raise OverflowError(f"{self._count} read-your-writes hints outstanding (limit {self.max_hints}); "
-                                    "node filter changes are not arriving")
-            if per_key is None:
-                per_key = self._by_key[key] = {}
-            if previous is None:
-                self._count += 1
-                self._per_node[node_id] = self._per_node.get(node_id, 0) + 1
-            elif previous.position > hint.position:
-                return True     # an older write acknowledged late: the held (later) hint covers it
-            per_key[node_id] = hint
-            heapq.heappush(self._by_node.setdefault(node_id, []), (epoch, sequence, key))
-            if old is not None:
-                heapq.heappush(self._by_old.setdefault(node_id, {}).setdefault(old[0], []), (old[1], key))
-            if now is not None:
-                heapq.heappush(self._by_age, (now, node_id, key))
-            return True
+        per_key = self._by_key.get(key)
+        previous = per_key.get(node_id) if per_key is not None else None
+        if previous is None and self._count >= self.max_hints:
+            raise OverflowError(f"{self._count} read-your-writes hints outstanding (limit {self.max_hints}); "
+                                "node filter changes are not arriving")
+        if per_key is None:
+            per_key = self._by_key[key] = {}
+        if previous is None:
+            self._count += 1
+            self._per_node[node_id] = self._per_node.get(node_id, 0) + 1
+        elif previous.position > hint.position:
+            return True     # an older write acknowledged late: the held (later) hint covers it
+        per_key[node_id] = hint
+        heapq.heappush(self._by_node.setdefault(node_id, []), (epoch, sequence, key))
+        if old is not None:
+            heapq.heappush(self._by_old.setdefault(node_id, {}).setdefault(old[0], []), (old[1], key))
+        if now is not None:
+            heapq.heappush(self._by_age, (now, node_id, key))
+        return True
 
     def _drop(self, key: bytes, node_id: str) -> Hint | None:
-        """Remove the held hint of (key, node); caller holds the lock."""
+        """Remove the held hint of (key, node)."""
         per_key = self._by_key.get(key)
         if per_key is None:
             return None
@@ -117,77 +122,88 @@ class HintTable:
         """The replica of node_id now holds (epoch, sequence): drop the hints it covers; returns how many."""
         replica = (epoch, sequence)
         dropped = 0
-        with self._lock:
-            heap = self._by_node.get(node_id, [])
-            while heap and (heap[0][0], heap[0][1]) <= replica:
-                _, _, key = heapq.heappop(heap)
+        heap = self._by_node.get(node_id, [])
+        while heap and (heap[0][0], heap[0][1]) <= replica:
+            _, _, key = heapq.heappop(heap)
+            hint = self._held(key, node_id)
+            if hint is not None and hint.covered_by(replica):
+                self._drop(key, node_id)
+                dropped += 1
+        olds = self._by_old.get(node_id, {})
+        for old_epoch in [e for e in olds if e <= epoch]:
+            old_heap = olds[old_epoch]
+            # an old epoch the replica has left can never cover through `old` again: discard
+            # its entries (those hints stay, held by their main position or their age)
+            while old_heap and (old_epoch < epoch or old_heap[0][0] <= sequence):
+                _, key = heapq.heappop(old_heap)
                 hint = self._held(key, node_id)
                 if hint is not None and hint.covered_by(replica):
                     self._drop(key, node_id)
                     dropped += 1
-            olds = self._by_old.get(node_id, {})
-            for old_epoch in [e for e in olds if e <= epoch]:
-                old_heap = olds[old_epoch]
-                # an old epoch the replica has left can never cover through `old` again: discard
-                # its entries (those hints stay, held by their main position or their age)
-                while old_heap and (old_epoch < epoch or old_heap[0][0] <= sequence):
-                    _, key = heapq.heappop(old_heap)
-                    hint = self._held(key, node_id)
-                    if hint is not None and hint.covered_by(replica):
-                        self._drop(key, node_id)
-                        dropped += 1
-                if not old_heap:
-                    olds.pop(old_epoch, None)
-            if node_id in self._by_node and not self._by_node[node_id]:
-                del self._by_node[node_id]
-            if node_id in self._by_old and not self._by_old[node_id]:
-                del self._by_old[node_id]
+            if not old_heap:
+                olds.pop(old_epoch, None)
+        if node_id in self._by_node and not self._by_node[node_id]:
+            del self._by_node[node_id]
+        if node_id in self._by_old and not self._by_old[node_id]:
+            del self._by_old[node_id]
         return dropped
 
-    def expire(self, now: float, max_age_s: float) -> list[Hint]:
-        """Drop and return the hints taken more than max_age_s before now (last resort)."""
-        out: list[Hint] = []
-        with self._lock:
-            heap = self._by_age
-            while heap and heap[0][0] <= now - max_age_s:
-                added_at, node_id, key = heapq.heappop(heap)
-                hint = self._held(key, node_id)
-                if hint is not None and hint.added_at == added_at:   # not replaced by a later write
-                    self._drop(key, node_id)
-                    out.append(hint)
-        return out
+    def expire(self, now: float, max_age_s: float,
+               position_of: Callable[[str], Position | None] = lambda node_id: None) -> list[Hint]:
+        """Drop the hints taken more than max_age_s before now (last resort) and return those
+        whose write the replica (at position_of(node)) still lacks, counting them in
+        `expired_unapplied`; the others were applied and only had not been dropped yet."""
+        lacking: list[Hint] = []
+        heap = self._by_age
+        while heap and heap[0][0] <= now - max_age_s:
+            added_at, node_id, key = heapq.heappop(heap)
+            hint = self._held(key, node_id)
+            if hint is not None and hint.added_at == added_at:   # not replaced by a later write
+                self._drop(key, node_id)
+                replica = position_of(node_id)
+                if replica is None or not hint.covered_by(replica):
+                    lacking.append(hint)
+        self.expired_unapplied += len(lacking)
+        return lacking
 
     def drop_node(self, node_id: str) -> int:
         """Forget every hint of node_id (the node was decommissioned); returns how many."""
-        with self._lock:
-            keys = [k for k, per_key in self._by_key.items() if node_id in per_key]
-            for key in keys:
-                self._drop(key, node_id)
-            self._by_node.pop(node_id, None)
-            self._by_old.pop(node_id, None)
-            self._per_node.pop(node_id, None)
-            self._by_age = [e for e in self._by_age if e[1] != node_id]
-            heapq.heapify(self._by_age)
+        keys = [k for k, per_key in self._by_key.items() if node_id in per_key]
+        for key in keys:
+            self._drop(key, node_id)
+        self._by_node.pop(node_id, None)
+        self._by_old.pop(node_id, None)
+        self._per_node.pop(node_id, None)
+        self._by_age = [e for e in self._by_age if e[1] != node_id]
+        heapq.heapify(self._by_age)
         return len(keys)
+
+    def count(self, node_id: str) -> int:
+        """How many hints node_id holds."""
+        return self._per_node.get(node_id, 0)
 
     def held(self, node_id: str) -> list[Hint]:
         """The hints held for node_id (for tests and diagnostics)."""
-        with self._lock:
-            return [per_key[node_id] for per_key in self._by_key.values() if node_id in per_key]
+        return [per_key[node_id] for per_key in self._by_key.values() if node_id in per_key]
 
     def lookup(self, key: bytes) -> list[str]:
-        with self._lock:
-            per_key = self._by_key.get(key)
-            return list(per_key) if per_key else []
+        per_key = self._by_key.get(key)
+        return list(per_key) if per_key else []
 
     def lookup_many(self, keys: Sequence[bytes]) -> list[list[str]] | None:
         """Hinted nodes per key, or None when no hints are held (the common, fast case)."""
         if not self._count:
             return None
-        with self._lock:
-            get = self._by_key.get
-            return [list(get(k, ())) for k in keys]
+        get = self._by_key.get
+        return [list(get(k, ())) for k in keys]
 
     def nodes(self) -> Iterable[str]:
-        with self._lock:
-            return list(self._by_node)
+        return list(self._by_node)
+
+    # -- subscriber -------------------------------------------------------------------------------
+    def on_event(self, event: SyncEvent) -> None:
+        """A replica that moved drops the hints it now covers; a forgotten node drops all of its."""
+        if isinstance(event, (ReplicaAdvanced, ReplicaInstalled)):
+            self.applied(event.node_id, event.epoch, event.sequence)
+        elif isinstance(event, NodeForgotten):
+            self.drop_node(event.node_id)

@@ -1,8 +1,10 @@
 """Prometheus text metrics of a coordinator, served on a separate port from a private registry.
 
-Event counters (lookups, candidates per lookup, probes, delta bytes, rebuilds) are bumped on
-the request path; per-node gauges (fill, predicted/observed FPR, lag, keys) are read from the
-fleet state at scrape time by a collector, so they are always consistent with FleetStatus.
+Event counters are bumped where the event happens: lookups, candidates per lookup and probes on
+the request path, delta bytes as the sync stream receives them, snapshots and rebuild requests
+from the sync events (`Metrics.on_event`). Per-node gauges (fill, predicted/observed FPR, lag,
+keys) are read at scrape time from coordinator/readings.py, so they always agree with
+FleetStatus.
 """
 
 from __future__ import annotations
@@ -14,20 +16,19 @@ from prometheus_client import CollectorRegistry, Counter, Histogram, start_http_
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from prometheus_client.registry import Collector
 
-from shardsieve.limits import fill_implausibility
+from shardsieve.coordinator.readings import Readings
+from shardsieve.sync.coordinator_side import RebuildRequested, ReplicaInstalled, SyncEvent
 
 CANDIDATE_BUCKETS = (0, 1, 2, 3, 4, 6, 8, 16, 32, 64, 128, 256)
 
 
 class FleetCollector(Collector):
-    def __init__(self, fleet: Any, clock: Callable[[], float] = time.monotonic) -> None:
-        self.fleet = fleet
+    def __init__(self, readings: Readings, clock: Callable[[], float] = time.monotonic) -> None:
+        self.readings = readings
         self.clock = clock
 
     def collect(self) -> Iterable[Any]:
-        now = self.clock()
-        fleet = self.fleet
-        counters, _ = fleet.accounting.snapshot()
+        fleet = self.readings.fleet(self.clock())
         labels = ["node"]
         fams = {
             "fill": GaugeMetricFamily("shardsieve_coordinator_node_fill", "Fraction of set bits of the replica", labels=labels),
@@ -50,31 +51,30 @@ class FleetCollector(Collector):
             "dbytes": CounterMetricFamily("shardsieve_coordinator_node_delta_bytes", "Delta payload bytes applied",
                                           labels=labels),
         }
-        for rec in fleet.records():
-            n = [rec.node_id]
-            c = counters.get(rec.node_id)
-            fams["fill"].add_metric(n, rec.fill)
-            fams["pfpr"].add_metric(n, rec.predicted_fpr)
+        for node in fleet.nodes:
+            n = [node.node_id]
+            c = node.counters
+            fams["fill"].add_metric(n, node.fill)
+            fams["pfpr"].add_metric(n, node.predicted_fpr)
             fams["ofpr"].add_metric(n, c.observed_fpr if c else 0.0)
-            fams["lag"].add_metric(n, max(0.0, now - rec.last_progress) if rec.last_progress > float("-inf") else -1.0)
-            fams["stale"].add_metric(n, 1.0 if fleet.is_stale(rec, now) else 0.0)
-            fams["keys"].add_metric(n, rec.key_count)
-            fams["cap"].add_metric(n, rec.capacity)
-            fams["epoch"].add_metric(n, rec.epoch)
-            fams["implausible"].add_metric(n, 1.0 if rec.geometry and rec.synced and fill_implausibility(
-                rec.set_bits, rec.geometry.bits, rec.geometry.hashes, rec.key_count) else 0.0)
+            fams["lag"].add_metric(n, node.lag_s if node.lag_s is not None else -1.0)
+            fams["stale"].add_metric(n, 1.0 if node.stale else 0.0)
+            fams["keys"].add_metric(n, node.key_count)
+            fams["cap"].add_metric(n, node.capacity)
+            fams["epoch"].add_metric(n, node.epoch)
+            fams["implausible"].add_metric(n, 1.0 if node.implausibility else 0.0)
             fams["wasted"].add_metric(n, c.wasted_probes if c else 0)
             fams["probes"].add_metric(n, c.probes if c else 0)
-            fams["dbytes"].add_metric(n, rec.delta_bytes)
+            fams["dbytes"].add_metric(n, node.delta_bytes)
         yield from fams.values()
         g = GaugeMetricFamily("shardsieve_coordinator_rebuilds_in_progress", "Rebuilds requested and not yet verified")
-        g.add_metric([], len(fleet.monitor.in_flight))
+        g.add_metric([], fleet.rebuilds_in_progress)
         yield g
         h = GaugeMetricFamily("shardsieve_coordinator_index_bytes", "Memory of the bit-sliced routing index")
-        h.add_metric([], fleet.index.memory_bytes())
+        h.add_metric([], fleet.index_bytes)
         yield h
         held = GaugeMetricFamily("shardsieve_coordinator_hints", "Read-your-writes hints held")
-        held.add_metric([], len(fleet.hints))
+        held.add_metric([], fleet.hints_held)
         yield held
         expired = CounterMetricFamily("shardsieve_coordinator_hints_expired",
                                       "Hints dropped by age while the replica still lacked their write "
@@ -86,7 +86,8 @@ class FleetCollector(Collector):
 class Metrics:
     """Request-path instruments in a private registry (several coordinators per process stay apart)."""
 
-    def __init__(self, fleet: Any) -> None:
+    def __init__(self, readings: Readings | None = None) -> None:
+        """readings: the source of the per-node gauges (None: request-path counters only)."""
         self.registry = CollectorRegistry(auto_describe=True)
         self.lookups = Counter("shardsieve_coordinator_lookups", "Keys looked up, by kind (locate, read, write, remove)",
                                ["kind"], registry=self.registry)
@@ -99,7 +100,15 @@ class Metrics:
         self.snapshots = Counter("shardsieve_coordinator_snapshots", "Snapshots installed", registry=self.registry)
         self.rebuilds = Counter("shardsieve_coordinator_rebuilds", "Rebuild requests sent, by action (rebuild, shrink)",
                                 ["action"], registry=self.registry)
-        self.registry.register(FleetCollector(fleet))
+        if readings is not None:
+            self.registry.register(FleetCollector(readings))
+
+    def on_event(self, event: SyncEvent) -> None:
+        """Snapshots installed and rebuild requests sent (by action: rebuild, shrink)."""
+        if isinstance(event, ReplicaInstalled):
+            self.snapshots.inc()
+        elif isinstance(event, RebuildRequested):
+            self.rebuilds.labels("shrink" if event.reason.startswith("shrink") else "rebuild").inc()
 
     def observe_locate(self, kind: str, counts: Sequence[int]) -> None:
         self.lookups.labels(kind).inc(len(counts))

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import threading
 from dataclasses import dataclass
 from typing import Any, Mapping
 
@@ -68,6 +69,27 @@ class Policy:
 
     def as_dict(self) -> dict[str, Any]:
         return dataclasses.asdict(self)
+
+
+class LivePolicy:
+    """The policy in force. Readers take `current` once per decision (a whole immutable policy,
+    swapped in one assignment); `update` runs under the coordinator's lock, so two operators
+    changing different names at once both get their change."""
+
+    def __init__(self, policy: Policy, lock: threading.RLock) -> None:
+        policy.validate()
+        self._policy = policy
+        self._lock = lock
+
+    @property
+    def current(self) -> Policy:
+        return self._policy
+
+    def update(self, values: Mapping[str, str]) -> Policy:
+        """Apply the named values (all or nothing; PolicyError names the first bad one)."""
+        with self._lock:
+            self._policy = self._policy.updated(values)
+            return self._policy
 
 
 def _parse(name: str, text: str, tp: Any) -> Any:

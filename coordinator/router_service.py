@@ -1,23 +1,31 @@
-"""Router servicer: Locate / LocateBatch / Read / Write / Remove over the fleet state.
+"""Router servicer: Locate / LocateBatch / Read / Write / Remove over the coordinator's state.
 
-Reads probe every candidate at once and return at the first hit; a read that found nothing
-while some candidate could not be asked fails with UNAVAILABLE naming it (absence is not
-proven). A write without a node id first asks the candidates whether the key exists (so an
-overwrite lands where the key lives), else goes to placement; the node's ack becomes a
-read-your-writes hint.
+Candidates come from the one merge of coordinator/candidates.py; Locate and LocateBatch answer
+with bytes encoded by coordinator/wire.py. Reads probe every candidate at once and return at
+the first hit; a read that found nothing while some candidate could not be asked fails with
+UNAVAILABLE naming it (absence is not proven). A write without a node id first asks the
+candidates whether the key exists (so an overwrite lands where the key lives), else goes to
+placement (the fresh node with the most free capacity); the node's ack becomes a
+read-your-writes hint (docs/architecture.md#2-read-your-writes-through-a-coordinator).
 """
 
 from __future__ import annotations
 
 import logging
 import time
-from typing import Callable
+from typing import Callable, Iterable
 
 import grpc
 
-from shardsieve.coordinator.accounting import ProbeOutcome
-from shardsieve.coordinator.fleet import Candidate, Fleet
+from shardsieve.coordinator.accounting import Accounting, ProbeOutcome
+from shardsieve.coordinator.candidates import Candidate, CandidateFinder, CandidateLists
+from shardsieve.coordinator.hints import HintTable
+from shardsieve.coordinator.membership import Membership, is_stale
+from shardsieve.coordinator.policy import LivePolicy, Policy
 from shardsieve.coordinator.probes import ProbeResult, Prober
+from shardsieve.coordinator.shell import CoordinatorShell
+from shardsieve.coordinator.wire import ReplyEncoder
+from shardsieve.sync.coordinator_side import NodeState
 from shardsieve.v1 import routing_pb2, storage_pb2
 
 log = logging.getLogger("shardsieve.coordinator.router")
@@ -42,18 +50,39 @@ def _check_key(key: bytes, what: str = "key", limit: int = MAX_KEY_BYTES) -> Non
                           f"{what} has {len(key)} bytes; the largest accepted is {limit} (setting max-key-bytes)")
 
 
+def most_free_capacity(nodes: Iterable[tuple[str, NodeState | None]], policy: Policy, now: float,
+                       exclude: frozenset[str] = frozenset()) -> str | None:
+    """Placement of a new key: the fresh node with the most free capacity (capacity - keys);
+    without a fresh one, the connected one with the most; None when none is connected."""
+    nodes = [(n, s) for n, s in nodes if n not in exclude and s is not None]
+    live = [(n, s) for n, s in nodes if not is_stale(s, policy, now)] or [(n, s) for n, s in nodes if s.connected]
+    if not live:
+        return None
+    return max(live, key=lambda item: (item[1].capacity - item[1].key_count, item[0]))[0]
+
+
 class Router:
     """The routing logic behind the gRPC servicer (usable in-process by tests and benchmarks)."""
 
-    def __init__(self, fleet: Fleet, prober: Prober, *, read_deadline_s: float = 2.0, write_deadline_s: float = 5.0,
-                 clock: Callable[[], float] = time.monotonic, metrics: object | None = None,
-                 max_key_bytes: int = MAX_KEY_BYTES, max_value_bytes: int = MAX_VALUE_BYTES,
-                 max_batch_keys: int = MAX_BATCH_KEYS) -> None:
-        self.fleet = fleet
+    def __init__(self, candidates: CandidateFinder, shell: CoordinatorShell, membership: Membership,
+                 hints: HintTable, accounting: Accounting, policy: LivePolicy, prober: Prober, *,
+                 expire_hints: Callable[[float], object] | None = None, read_deadline_s: float = 2.0,
+                 write_deadline_s: float = 5.0, clock: Callable[[], float] = time.monotonic,
+                 metrics: object | None = None, max_key_bytes: int = MAX_KEY_BYTES,
+                 max_value_bytes: int = MAX_VALUE_BYTES, max_batch_keys: int = MAX_BATCH_KEYS) -> None:
+        """expire_hints(now): drops hints past their age before a write adds one
+        (coordinator/operations.py; None: only the monitor's pass does)."""
+        self.candidates = candidates
+        self.shell = shell
+        self.membership = membership
+        self.hints = hints
+        self.accounting = accounting
+        self.policy = policy
+        self.prober = prober
+        self.expire_hints = expire_hints
         self.max_key_bytes = max_key_bytes
         self.max_value_bytes = max_value_bytes
         self.max_batch_keys = max_batch_keys
-        self.prober = prober
         self.read_deadline_s = read_deadline_s
         self.write_deadline_s = write_deadline_s
         self.clock = clock
@@ -61,12 +90,13 @@ class Router:
 
     # -- locate ------------------------------------------------------------------------------------
     def locate(self, keys: list[bytes], kind: str = "locate") -> list[list[Candidate]]:
+        """Candidates of each key as objects (the read, write and remove paths)."""
         if len(keys) > self.max_batch_keys:
             raise RouterError(grpc.StatusCode.INVALID_ARGUMENT,
                               f"batch of {len(keys)} keys exceeds the limit of {self.max_batch_keys}; split it")
         for i, key in enumerate(keys):
             _check_key(key, f"key #{i}", self.max_key_bytes)
-        result = self.fleet.candidates(keys, self.clock())
+        result = self.candidates.find(keys, self.clock()).rows()
         if self.metrics is not None:
             self.metrics.observe_locate(kind, [len(c) for c in result])  # type: ignore[attr-defined]
         return result
@@ -79,26 +109,19 @@ class Router:
             for i, key in enumerate(keys):
                 _check_key(key, f"key #{i}", self.max_key_bytes)
 
-    def locate_wire(self, keys: list[bytes]) -> list[bytes]:
-        """Like locate, each key's candidates encoded as a LocateReply message."""
+    def locate_lists(self, keys: list[bytes]) -> CandidateLists:
+        """Candidates of each key in compact form (the Locate and LocateBatch paths)."""
         self._check_batch(keys)
-        replies, total = self.fleet.candidates_wire(keys, self.clock())
+        lists = self.candidates.find(keys, self.clock())
         if self.metrics is not None:
-            self.metrics.observe_locate_total("locate", len(keys), total)  # type: ignore[attr-defined]
-        return replies
-
-    def locate_batch_wire(self, keys: list[bytes]) -> bytes:
-        """A whole LocateBatchReply, encoded (the gRPC LocateBatch path)."""
-        self._check_batch(keys)
-        reply, total = self.fleet.locate_batch_wire(keys, self.clock())
-        if self.metrics is not None:
-            self.metrics.observe_locate_total("locate", len(keys), total)  # type: ignore[attr-defined]
-        return reply
+            self.metrics.observe_locate_total("locate", len(keys), lists.total)  # type: ignore[attr-defined]
+        return lists
 
     # -- probing with accounting ----------------------------------------------------------------------
     def _probe_get(self, key: bytes, cands: list[Candidate], deadline_s: float) -> tuple[ProbeResult | None, list[ProbeResult]]:
         """Ask every candidate for key; return (first hit or None, results known so far)."""
-        indexed = set(self.fleet.indexed_nodes())
+        with self.shell.lock:   # the nodes whose filter was consulted: every one with a replica
+            indexed = {state.node_id for state in self.shell.nodes() if state.has_replica}
         listed = {c.node_id: c for c in cands}
 
         def account(results: list[ProbeResult]) -> None:
@@ -112,7 +135,8 @@ class Router:
                                              reached=r is not None and r.reached))
             for node_id in indexed - listed.keys():
                 outcomes.append(ProbeOutcome(node_id, consulted=True, listed_by_filter=False, probed=False))
-            self.fleet.record_read(outcomes)
+            with self.shell.lock:
+                self.accounting.record_read(outcomes)
             if self.metrics is not None:
                 self.metrics.observe_probes(results)  # type: ignore[attr-defined]
 
@@ -146,9 +170,10 @@ class Router:
                               f"value has {len(value)} bytes; the largest accepted is {self.max_value_bytes} "
                               "(setting max-value-bytes)")
         if node_id:
-            address = self.fleet.address_of(node_id)
+            with self.shell.lock:
+                address = self.membership.address(node_id)
+                known = ", ".join(self.membership.node_ids()) or "none"
             if address is None:
-                known = ", ".join(sorted(r.node_id for r in self.fleet.records())) or "none"
                 raise RouterError(grpc.StatusCode.INVALID_ARGUMENT, f"unknown node id {node_id!r} (known: {known})")
             target = node_id
         else:
@@ -160,11 +185,12 @@ class Router:
                 failed = [r for r in seen if not r.reached]
                 if failed:
                     raise self._unreachable("write (the key may exist there)", key, failed)
-                picked = self.fleet.placement(self.clock())
+                picked = self._place()
                 if picked is None:
                     raise RouterError(grpc.StatusCode.UNAVAILABLE, "no node is connected; nowhere to place the write")
                 target = picked
-            address = self.fleet.address_of(target) or ""
+            with self.shell.lock:
+                address = self.membership.address(target) or ""
         result = self.prober.call(target, address, "Put", storage_pb2.PutRequest(key=key, value=value),
                                   self.write_deadline_s)
         if not result.reached:
@@ -172,9 +198,26 @@ class Router:
         ack = result.reply
         old = (ack.old_position.epoch, ack.old_position.sequence) if ack.HasField("old_position") else None
         now = self.clock()
-        self.fleet.expire_hints(now)
-        self.fleet.add_hint(key, target, ack.epoch, ack.sequence, now, old=old)
+        if self.expire_hints is not None:
+            self.expire_hints(now)
+        self.hold_hint(key, target, ack.epoch, ack.sequence, now, old=old)
         return routing_pb2.WriteReply(node_id=target, created=ack.created, epoch=ack.epoch, sequence=ack.sequence)
+
+    def hold_hint(self, key: bytes, node_id: str, epoch: int, sequence: int, now: float,
+                  old: tuple[int, int] | None = None) -> bool:
+        """Hold a read-your-writes hint for a write node_id acknowledged at (epoch, sequence) (and
+        `old` during a hand-over) unless its replica already holds it; a node forgotten
+        meanwhile gets none. OverflowError when max-hints are held."""
+        with self.shell.lock:
+            if not self.membership.knows(node_id):
+                return False
+            return self.hints.add(key, node_id, epoch, sequence, applied=self.shell.position(node_id), old=old,
+                                  now=now)
+
+    def _place(self) -> str | None:
+        with self.shell.lock:
+            return most_free_capacity(((n, self.shell.node(n)) for n in self.membership.node_ids()),
+                                      self.policy.current, self.clock())
 
     def remove(self, key: bytes) -> routing_pb2.RemoveReply:
         _check_key(key, limit=self.max_key_bytes)
@@ -209,8 +252,9 @@ class Router:
 
 
 class RouterService:
-    def __init__(self, router: Router) -> None:
+    def __init__(self, router: Router, encoder: ReplyEncoder | None = None) -> None:
         self.router = router
+        self.encoder = encoder or ReplyEncoder()
 
     def _run(self, context: grpc.ServicerContext, fn: Callable[[], object]) -> object:
         try:
@@ -222,12 +266,19 @@ class RouterService:
         raise AssertionError("unreachable")
 
     # Locate and LocateBatch answer with LocateReply / LocateBatchReply already in protobuf wire
-    # format (bytes); `add_router_service` registers a serializer that passes bytes through.
+    # format (bytes, coordinator/wire.py); `add_router_service` registers a serializer that passes
+    # bytes through.
+    def locate_reply(self, key: bytes) -> bytes:
+        return self.encoder.locate_reply(self.router.locate_lists([key]))
+
+    def locate_batch_reply(self, keys: list[bytes]) -> bytes:
+        return self.encoder.locate_batch_reply(self.router.locate_lists(keys))
+
     def Locate(self, request: routing_pb2.LocateRequest, context: grpc.ServicerContext) -> bytes:
-        return self._run(context, lambda: self.router.locate_wire([request.key])[0])  # type: ignore[return-value]
+        return self._run(context, lambda: self.locate_reply(request.key))  # type: ignore[return-value]
 
     def LocateBatch(self, request: routing_pb2.LocateBatchRequest, context: grpc.ServicerContext) -> bytes:
-        return self._run(context, lambda: self.router.locate_batch_wire(list(request.keys)))  # type: ignore[return-value]
+        return self._run(context, lambda: self.locate_batch_reply(list(request.keys)))  # type: ignore[return-value]
 
     def Read(self, request: routing_pb2.ReadRequest, context: grpc.ServicerContext) -> routing_pb2.ReadReply:
         return self._run(context, lambda: self.router.read(request.key, request.deadline_ms))  # type: ignore[return-value]

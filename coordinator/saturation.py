@@ -1,8 +1,10 @@
 """Saturation monitor: decide which node filters to rebuild (grow or shrink), and when.
 
-A plain object driven by ticks: `tick(now, nodes, policy)` takes a view of every node and
-returns the decisions taken (with the numbers behind them) and the rebuilds to request. The
-daemon sends the requests over the nodes' sync streams and keeps the decisions for the admin API.
+A plain object driven by ticks: `tick(now, nodes, policy)` takes a reading of every synced
+node's filter and returns the decisions taken (with the numbers behind them) and the rebuilds
+to request. coordinator/operations.py sends the requests over the nodes' sync streams and keeps
+the decisions for the admin API. The monitor subscribes to the sync events only to drop a
+forgotten node. Not thread-safe: the coordinator calls it under its one lock.
 
 A node is saturated when (a) its predicted FPR fill^k is above ratio x target, (b) the lower
 end of the Wilson 95% interval of its observed FPR is above ratio x target, or (c) it holds
@@ -20,11 +22,12 @@ from shardsieve.coordinator.policy import Policy
 from shardsieve.geometry import Geometry, GeometryError, geometry_for
 from shardsieve.intervals import wilson_interval
 from shardsieve.sizing import fill_fpr
+from shardsieve.sync.coordinator_side import NodeForgotten, SyncEvent
 
 
 @dataclass(frozen=True)
-class NodeView:
-    """What the monitor needs to know about one node at one tick."""
+class FilterReading:
+    """What the monitor needs to know about one node's filter at one tick."""
 
     node_id: str
     epoch: int
@@ -74,7 +77,7 @@ class TickResult:
     rebuilds: list[RebuildPlan] = field(default_factory=list)
 
 
-def saturation_reasons(node: NodeView, policy: Policy) -> list[str]:
+def saturation_reasons(node: FilterReading, policy: Policy) -> list[str]:
     """Why a node is saturated, each reason with its numbers; empty when it is not."""
     limit = policy.saturation_ratio * policy.target_fpr
     reasons = []
@@ -118,7 +121,7 @@ class SaturationMonitor:
         self._last_note: dict[str, str] = {}
 
     # -- pure assessments ---------------------------------------------------------------------
-    def shrink_plan(self, node: NodeView, policy: Policy) -> RebuildPlan | None:
+    def shrink_plan(self, node: FilterReading, policy: Policy) -> RebuildPlan | None:
         if node.capacity <= policy.min_capacity or node.key_count >= policy.shrink_below * node.capacity:
             return None
         capacity = grow_capacity(node.key_count, policy)
@@ -129,16 +132,16 @@ class SaturationMonitor:
                            f"shrink: keys {node.key_count} < {policy.shrink_below:g} x capacity {node.capacity}; "
                            f"{node.bits} -> {geometry.bits} bits")
 
-    def grow_plan(self, node: NodeView, policy: Policy, reasons: list[str]) -> RebuildPlan:
+    def grow_plan(self, node: FilterReading, policy: Policy, reasons: list[str]) -> RebuildPlan:
         capacity = grow_capacity(node.key_count, policy)
         return RebuildPlan(node.node_id, capacity, policy.target_fpr, _geometry(capacity, policy.target_fpr),
                            "; ".join(reasons) + f"; rebuild at {policy.growth:g} x {node.key_count} keys = {capacity}")
 
-    def plan(self, nodes: list[NodeView], policy: Policy, *, node_ids: list[str] | None = None,
+    def plan(self, nodes: list[FilterReading], policy: Policy, *, node_ids: list[str] | None = None,
              flagged: bool = False, capacity: int = 0, target_fpr: float = 0.0) -> list[RebuildPlan]:
         """Rebuilds an operator asked for (named nodes, or every flagged one), marked queued past the limit."""
         by_id = {n.node_id: n for n in nodes}
-        chosen: list[NodeView] = []
+        chosen: list[FilterReading] = []
         if node_ids:
             missing = [i for i in node_ids if i not in by_id]
             if missing:
@@ -169,7 +172,11 @@ class SaturationMonitor:
         self._below_since.pop(node_id, None)
         self.flagged.pop(node_id, None)
 
-    def tick(self, now: float, nodes: list[NodeView], policy: Policy) -> TickResult:
+    def on_event(self, event: SyncEvent) -> None:
+        if isinstance(event, NodeForgotten):
+            self.forget(event.node_id)
+
+    def tick(self, now: float, nodes: list[FilterReading], policy: Policy) -> TickResult:
         """Assess every node; finish, time out, flag and start rebuilds. Returns what it decided."""
         out = TickResult()
         by_id = {n.node_id: n for n in nodes}

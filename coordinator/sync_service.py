@@ -1,9 +1,12 @@
-"""FilterSync servicer: drives shardsieve.sync.coordinator_side.CoordinatorSync from gRPC streams.
+"""FilterSync servicer: the thin gRPC shell of the coordinator's sync protocol object.
 
-Each stream gets a reader thread that feeds node messages into the protocol object (under one
-lock: the object is not thread-safe) and an outbox queue the response generator drains. The
-outbox of a node's current stream is also where rebuild requests go. After every message the
-node's record in the fleet is refreshed from the protocol object's view (freshness, hints).
+Per stream: check the peer's identity and stream count (shardsieve/security.py) and every
+message's limits (shardsieve/limits.py), feed the message to CoordinatorSync through the
+coordinator shell (one lock; the shell dispatches the events), and send the replies. Each
+stream has a reader thread and an outbox queue its response generator drains; the outbox of a
+node's current stream is also where `send` puts messages for that node (rebuild requests).
+
+It is also the transport's event subscriber: a forgotten node's stream ends.
 """
 
 from __future__ import annotations
@@ -13,14 +16,14 @@ import logging
 import queue
 import threading
 import time
-from typing import Any, Callable, Iterator
+from typing import Any, Callable, Iterator, Sequence
 
 import grpc
 
-from shardsieve.coordinator.fleet import Fleet
+from shardsieve.coordinator.shell import CoordinatorShell
 from shardsieve.limits import SyncLimits, check_node_message
 from shardsieve.security import NodeAuthorizer, PeerIdentity, StreamLimiter, peer_identity
-from shardsieve.sync.coordinator_side import CoordinatorSync, CoordinatorSyncConfig
+from shardsieve.sync.coordinator_side import NodeForgotten, SyncEvent
 from shardsieve.sync.errors import SyncError
 from shardsieve.v1 import sync_pb2, sync_pb2_grpc
 
@@ -30,112 +33,71 @@ _END = object()
 
 
 class _Failure:
+    """Ends the stream it is put on with this status."""
+
     def __init__(self, code: grpc.StatusCode, message: str) -> None:
         self.code = code
         self.message = message
 
 
-class NodeConnected(Exception):
-    """ForgetNode without force for a node whose sync stream is open."""
+class _Stream:
+    """One FilterSync stream: its peer, its outbox, and its node once the Hello was taken
+    (set and read under the shell's lock)."""
+
+    def __init__(self, stream_id: int, who: PeerIdentity) -> None:
+        self.stream_id = stream_id
+        self.who = who
+        self.outbox: queue.Queue[Any] = queue.Queue()
+        self.node_id: str | None = None
 
 
 class SyncService(sync_pb2_grpc.FilterSyncServicer):
-    def __init__(self, fleet: Fleet, sync: CoordinatorSync | None = None, *,
-                 clock: Callable[[], float] = time.monotonic, metrics: Any = None,
-                 authorizer: NodeAuthorizer | None = None, limiter: StreamLimiter | None = None,
-                 limits: SyncLimits | None = None) -> None:
-        self.fleet = fleet
+    def __init__(self, shell: CoordinatorShell, *, clock: Callable[[], float] = time.monotonic,
+                 delta_bytes: Callable[[int], None] | None = None, authorizer: NodeAuthorizer | None = None,
+                 limiter: StreamLimiter | None = None, limits: SyncLimits | None = None) -> None:
+        """delta_bytes(n): counts the payload bytes of each delta received (a metric)."""
+        self.shell = shell
         # identity checks, per-peer stream limit and message limits: shardsieve/security.py, limits.py
         self.authorizer = authorizer or NodeAuthorizer("open")
         self.limiter = limiter or StreamLimiter(1 << 30)
         self.limits = limits or SyncLimits()
-        self._identity: dict[str, str] = {}     # node id -> identity key of its current stream
-        self.sync = sync or CoordinatorSync(
-            fleet, CoordinatorSyncConfig(max_snapshot_bytes=self.limits.max_snapshot_bytes))
-        self.lock = threading.Lock()
         self.clock = clock
-        self.metrics = metrics
+        self._delta_bytes = delta_bytes
         self._ids = itertools.count(1)
+        # node id -> outbox / identity key of its current stream; changed under the shell's lock
         self._outbox: dict[str, queue.Queue[Any]] = {}
+        self._identity: dict[str, str] = {}
         self._stopping = threading.Event()
-        self._snapshots_seen: dict[str, int] = {}
-        # Views are taken under self.lock but handed to the fleet after it is released; a node
-        # forgotten in between must not come back from such a view. Each forget bumps the
-        # node's generation, and a view is observed only if the generation it was taken in is
-        # still current (checked and applied under _observe_lock, which forget also holds).
-        self._forgets: dict[str, int] = {}
-        self._observe_lock = threading.Lock()
 
-    def _observe(self, view: Any, generation: int) -> None:
-        with self._observe_lock:
-            if self._forgets.get(view.node_id, 0) == generation:
-                self.fleet.observe(view)
+    # -- the transport's side of the coordinator -----------------------------------------------------
+    def send(self, messages: Sequence[sync_pb2.CoordinatorMessage]) -> None:
+        """Put each message on its node's current stream (call with the shell's lock held, in the
+        same hold that made the protocol object produce them: the node is connected then)."""
+        with self.shell.lock:
+            for msg in messages:
+                self._outbox[msg.node_id].put(msg)
 
-    # -- called by the daemon ---------------------------------------------------------------------
-    def send_rebuild(self, node_id: str, capacity: int, target_fpr: float, reason: str) -> None:
-        """Queue a RebuildRequest on node_id's stream; KeyError if it has none, ValueError on bad sizes."""
-        with self.lock:
-            outbox = self._outbox.get(node_id)
-            if outbox is None:
-                raise KeyError(f"node {node_id!r} has no open sync stream")
-            msg = self.sync.request_rebuild(node_id, capacity, target_fpr, reason, self.clock())
-            view = self.sync.node(node_id)
-            generation = self._forgets.get(node_id, 0)
-        outbox.put(msg)
-        if view is not None:
-            self._observe(view, generation)
-        if self.metrics is not None:
-            self.metrics.rebuilds.labels("shrink" if reason.startswith("shrink") else "rebuild").inc()
-
-    def refresh(self) -> None:
-        """Re-read every node's view (the clock moved; e.g. before a status reply)."""
-        with self.lock:
-            views = [(v, self._forgets.get(v.node_id, 0)) for v in self.sync.nodes()]
-        for v, generation in views:
-            self._observe(v, generation)
-
-    def forget(self, node_id: str, force: bool = False) -> dict[str, Any]:
-        """Decommission node_id: drop it from the protocol object and the fleet. Raises KeyError
-        for a node this coordinator does not know, NodeConnected when its stream is open and
-        force is not set (nothing changes then). With force an open stream is ended; a node
-        that is still running reconnects as a new node."""
-        with self.lock:
-            known = node_id in self.sync.node_ids() or any(r.node_id == node_id for r in self.fleet.records())
-            if not known:
-                raise KeyError(node_id)
-            connected = self.sync.is_connected(node_id)
-            if connected and not force:
-                raise NodeConnected(node_id)
-            had_replica = self.sync.position(node_id) is not None or node_id in self.fleet.indexed_nodes()
-            self.sync.forget(node_id)     # (its replica leaves the index through the sink)
-            outbox = self._outbox.pop(node_id, None)
-            self._identity.pop(node_id, None)
-            self._snapshots_seen.pop(node_id, None)
-            with self._observe_lock:
-                self._forgets[node_id] = self._forgets.get(node_id, 0) + 1
-                result = self.fleet.forget(node_id) or {
-                    "node_id": node_id, "address": "", "was_connected": connected, "had_replica": False,
-                    "hints_dropped": 0, "key_count": 0}
-        result["was_connected"] = connected
-        result["had_replica"] = had_replica
-        if outbox is not None:
-            outbox.put(_Failure(grpc.StatusCode.ABORTED,
-                                f"this coordinator forgot node {node_id!r} (operator decommission); "
-                                "reconnecting registers it as a new node"))
-        return result
+    def on_event(self, event: SyncEvent) -> None:
+        """A forgotten node's stream ends; if the node is in fact running it reconnects as new."""
+        if isinstance(event, NodeForgotten):
+            outbox = self._outbox.pop(event.node_id, None)
+            self._identity.pop(event.node_id, None)
+            if outbox is not None:
+                outbox.put(_Failure(grpc.StatusCode.ABORTED,
+                                    f"this coordinator forgot node {event.node_id!r} (operator decommission); "
+                                    "reconnecting registers it as a new node"))
 
     def stop(self) -> None:
         self._stopping.set()
-        with self.lock:
+        with self.shell.lock:
             boxes = list(self._outbox.values())
         for box in boxes:
             box.put(_END)
 
     # -- the stream ----------------------------------------------------------------------------------
-    def Stream(self, request_iterator: Iterator[sync_pb2.NodeMessage], context: grpc.ServicerContext) -> Iterator[sync_pb2.CoordinatorMessage]:
+    def Stream(self, request_iterator: Iterator[sync_pb2.NodeMessage],
+               context: grpc.ServicerContext) -> Iterator[sync_pb2.CoordinatorMessage]:
         stream_id = next(self._ids)
-        outbox: queue.Queue[Any] = queue.Queue()
-        state: dict[str, Any] = {"node": None}
         who = peer_identity(context)
         if not self.limiter.acquire(who.host):
             log.warning("sync stream refused: too many streams from one peer",
@@ -144,12 +106,12 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
                           f"{who.host} already has {self.limiter.limit} sync streams open here "
                           "(setting max-streams-per-peer)")
         try:
-            yield from self._serve(stream_id, outbox, state, who, request_iterator, context)
+            yield from self._serve(_Stream(stream_id, who), request_iterator, context)
         finally:
             self.limiter.release(who.host)
 
     def _refusal(self, node_id: str, who: PeerIdentity) -> str | None:
-        """Why `who` may not open node_id's stream (None: allowed). Called under self.lock."""
+        """Why `who` may not open node_id's stream (None: allowed). Called under the shell's lock."""
         reason = self.authorizer.refusal(node_id, who)
         if reason is None and node_id in self._outbox and \
                 self._identity.get(node_id) != self.authorizer.identity_key(who):
@@ -157,69 +119,65 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
                       "same identity (reconnect takeover)")
         return reason
 
-    def _serve(self, stream_id: int, outbox: queue.Queue[Any], state: dict[str, Any], who: PeerIdentity,
-               request_iterator: Iterator[sync_pb2.NodeMessage],
+    def _feed(self, stream: _Stream, msg: sync_pb2.NodeMessage) -> bool:
+        """One message into the protocol object; its replies onto this stream. False: the stream
+        was refused (a _Failure is queued)."""
+        check_node_message(msg, self.limits)
+        now = self.clock()
+        with self.shell.lock:
+            if stream.node_id is not None:
+                result = self.shell.receive(stream.node_id, stream.stream_id, msg, now)
+            else:
+                if msg.WhichOneof("body") != "hello":
+                    stream.outbox.put(_Failure(grpc.StatusCode.FAILED_PRECONDITION,
+                                               "the first message of a sync stream must be a Hello"))
+                    return False
+                node_id = msg.hello.node_id
+                refusal = self._refusal(node_id, stream.who)
+                if refusal is not None:
+                    log.warning("sync stream refused: identity", extra={
+                        "node_id": node_id, "peer": stream.who.describe(), "reason": refusal})
+                    stream.outbox.put(_Failure(grpc.StatusCode.PERMISSION_DENIED, refusal))
+                    return False
+                result = self.shell.open(stream.stream_id, msg.hello, now)
+                stream.node_id = node_id
+                self._outbox[node_id] = stream.outbox
+                self._identity[node_id] = self.authorizer.identity_key(stream.who)
+                log.info("sync stream opened", extra={"node_id": node_id, "stream": stream.stream_id,
+                                                       "address": msg.hello.storage_address,
+                                                       "epoch": msg.hello.epoch, "sequence": msg.hello.sequence})
+            for reply in result.replies:
+                stream.outbox.put(reply)
+        if self._delta_bytes is not None and msg.WhichOneof("body") == "delta":
+            self._delta_bytes(len(msg.delta.payload))
+        return True
+
+    def _serve(self, stream: _Stream, request_iterator: Iterator[sync_pb2.NodeMessage],
                context: grpc.ServicerContext) -> Iterator[sync_pb2.CoordinatorMessage]:
 
         def reader() -> None:
             try:
                 for msg in request_iterator:
-                    check_node_message(msg, self.limits)
-                    now = self.clock()
-                    with self.lock:
-                        node_id = state["node"]
-                        if node_id is None:
-                            if msg.WhichOneof("body") != "hello":
-                                outbox.put(_Failure(grpc.StatusCode.FAILED_PRECONDITION,
-                                                    "the first message of a sync stream must be a Hello"))
-                                return
-                            refusal = self._refusal(msg.hello.node_id, who)
-                            if refusal is not None:
-                                log.warning("sync stream refused: identity", extra={
-                                    "node_id": msg.hello.node_id, "peer": who.describe(), "reason": refusal})
-                                outbox.put(_Failure(grpc.StatusCode.PERMISSION_DENIED, refusal))
-                                return
-                            out = self.sync.open(stream_id, msg.hello, now)
-                            node_id = state["node"] = msg.hello.node_id
-                            self._outbox[node_id] = outbox
-                            self._identity[node_id] = self.authorizer.identity_key(who)
-                            log.info("sync stream opened", extra={"node_id": node_id, "stream": stream_id,
-                                                                   "address": msg.hello.storage_address,
-                                                                   "epoch": msg.hello.epoch,
-                                                                   "sequence": msg.hello.sequence})
-                        else:
-                            out = self.sync.receive(node_id, stream_id, msg, now)
-                        view = self.sync.node(node_id)
-                        generation = self._forgets.get(node_id, 0)
-                    if self.metrics is not None and msg.WhichOneof("body") == "delta":
-                        self.metrics.delta_bytes.inc(len(msg.delta.payload))
-                    if view is not None:
-                        self._observe(view, generation)
-                        if self.metrics is not None:
-                            installed = view.counters.snapshots_installed
-                            if installed > self._snapshots_seen.get(node_id, 0):
-                                self.metrics.snapshots.inc(installed - self._snapshots_seen.get(node_id, 0))
-                                self._snapshots_seen[node_id] = installed
-                    for m in out:
-                        outbox.put(m)
-                outbox.put(_END)
+                    if not self._feed(stream, msg):
+                        return
+                stream.outbox.put(_END)
             except SyncError as exc:
                 code = getattr(grpc.StatusCode, exc.grpc_status_name, grpc.StatusCode.FAILED_PRECONDITION)
-                log.warning("sync stream refused", extra={"node_id": state["node"], "peer": who.describe(),
+                log.warning("sync stream refused", extra={"node_id": stream.node_id, "peer": stream.who.describe(),
                                                           "error": str(exc)})
-                outbox.put(_Failure(code, str(exc)))
+                stream.outbox.put(_Failure(code, str(exc)))
             except grpc.RpcError:
-                outbox.put(_END)   # the node went away
+                stream.outbox.put(_END)   # the node went away
             except Exception as exc:  # noqa: BLE001 - log, end this stream, keep serving others
-                log.exception("sync stream failed", extra={"node_id": state["node"]})
-                outbox.put(_Failure(grpc.StatusCode.INTERNAL, f"coordinator error: {exc}"))
+                log.exception("sync stream failed", extra={"node_id": stream.node_id})
+                stream.outbox.put(_Failure(grpc.StatusCode.INTERNAL, f"coordinator error: {exc}"))
 
-        thread = threading.Thread(target=reader, name=f"sync-{stream_id}", daemon=True)
+        thread = threading.Thread(target=reader, name=f"sync-{stream.stream_id}", daemon=True)
         thread.start()
         try:
             while context.is_active() and not self._stopping.is_set():
                 try:
-                    item = outbox.get(timeout=0.5)
+                    item = stream.outbox.get(timeout=0.5)
                 except queue.Empty:
                     continue
                 if item is _END:
@@ -228,15 +186,12 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
                     context.abort(item.code, item.message)
                 yield item
         finally:
-            node_id = state["node"]
-            if node_id is not None:
-                with self.lock:
-                    self.sync.close(node_id, stream_id, self.clock())
-                    if self._outbox.get(node_id) is outbox:
+            with self.shell.lock:
+                node_id = stream.node_id
+                if node_id is not None:
+                    self.shell.close(node_id, stream.stream_id, self.clock())
+                    if self._outbox.get(node_id) is stream.outbox:
                         del self._outbox[node_id]
                         self._identity.pop(node_id, None)
-                    view = self.sync.node(node_id)
-                    generation = self._forgets.get(node_id, 0)
-                if view is not None:
-                    self._observe(view, generation)
-                log.info("sync stream closed", extra={"node_id": node_id, "stream": stream_id})
+            if node_id is not None:
+                log.info("sync stream closed", extra={"node_id": node_id, "stream": stream.stream_id})

@@ -171,23 +171,28 @@ def measure_grpc(index: Any, keys: list[bytes], log: Callable[[str], None]) -> d
     """LocateBatch / Locate against an in-process Router service over loopback gRPC."""
     import grpc
 
-    from shardsieve.coordinator.fleet import Fleet, NodeRecord
+    from shardsieve.bloom import BloomFilter
     from shardsieve.coordinator.policy import Policy
     from shardsieve.coordinator.probes import Prober
     from shardsieve.coordinator.router_service import Router, RouterService, add_router_service
+    from shardsieve.coordinator.wiring import wire_state
+    from shardsieve.testing.replica_feed import NodeFeed
     from shardsieve.v1 import routing_pb2, routing_pb2_grpc
 
-    fleet = Fleet(Policy(mode="safe"))
-    fleet.index = index
-    for nid in index.nodes():   # every replica synced and fresh
-        fleet.nodes[nid] = NodeRecord(nid, address=f"127.0.0.1:{1}", connected=True, synced=True,
-                                      geometry=index.geometry_of(nid), last_progress=math.inf)
+    # Every replica synced through the real protocol object (Hello + snapshot) and fresh for the run.
+    state = wire_state(Policy(mode="safe", stale_after_s=3600.0), index=index)
+    for nid in index.nodes():
+        column = np.packbits(index.column(nid), bitorder="little").tobytes()
+        bloom = BloomFilter.from_bytes(index.geometry_of(nid), column)
+        NodeFeed(state.shell, nid, bloom, address="127.0.0.1:1").connect(time.monotonic())
     prober = Prober(2)
-    router = Router(fleet, prober)
+    router = Router(state.candidates, state.shell, state.membership, state.hints, state.accounting, state.policy,
+                    prober)
+    service = RouterService(router)
     server = grpc.server(futures.ThreadPoolExecutor(max_workers=8),
                          options=[("grpc.max_receive_message_length", 64 << 20),
                                   ("grpc.max_send_message_length", 64 << 20)])
-    add_router_service(RouterService(router), server)
+    add_router_service(service, server)
     port = server.add_insecure_port("127.0.0.1:0")
     server.start()
     out: dict[str, Any] = {}
@@ -205,7 +210,7 @@ def measure_grpc(index: Any, keys: list[bytes], log: Callable[[str], None]) -> d
 
         def run_in_process() -> None:
             for b in batches:
-                router.locate_batch_wire(b)
+                service.locate_batch_reply(b)
 
         def run_index() -> None:
             index.locate(keys, positions)

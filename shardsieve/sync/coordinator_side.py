@@ -1,27 +1,36 @@
 """Coordinator end of the sync protocol: a plain object, no sockets, threads, clocks or files.
 
-The coordinator daemon owns one `CoordinatorSync` and calls it under one lock from every
-stream handler (the object is not thread-safe). The FilterSync servicer is a thin driver:
+`CoordinatorSync` is the one owner of what a coordinator knows about each node: its stream,
+address, protocol position, geometry, key count and sizing, when it was last heard from and
+last applied, an outstanding snapshot request, its latest stats, the rebuild asked of it and
+its counters (docs/architecture.md#who-owns-which-state). Everyone else reads that state
+through `node(node_id)`, a typed read-only `NodeState`, never a copy.
 
-    out = sync.open(stream_id, first_message.hello, now)         # -> send each of out
-    for msg in rest_of_stream: out = sync.receive(node_id, stream_id, msg, now)
+Every mutating call returns one `SyncResult`: the replies to send and the events that say
+what changed, in order (docs/architecture.md#how-events-flow). The coordinator's shell calls
+it under one lock (the object is not thread-safe), sends the replies on the node's stream and
+hands the events to its subscribers:
+
+    result = sync.open(stream_id, first_message.hello, now)
+    for msg in rest_of_stream: result = sync.receive(node_id, stream_id, msg, now)
     finally: sync.close(node_id, stream_id, now)
     # a SyncError raised by open/receive: end the stream with error.grpc_status_name
 
 `stream_id` is any hashable the driver picks per stream (unique for the process life).
 `now` is a float in seconds from a monotonic clock; the object only stores/compares it.
 
-The replica bits live in a `ReplicaSink` (the routing index implements it); this object
-keeps per node only the protocol position (epoch, sequence, checksum, geometry) and
-bookkeeping. It applies a delta only when it moves the replica from exactly its sequence
-to the next and the checksum computed *before* touching the sink matches, so the sink
-only ever holds a state the node really had: that is what promise 1 rests on.
+The replica bits live in a `ReplicaSink` (the routing index implements it). A delta is
+applied only when it moves the replica from exactly its sequence to the next and the checksum
+computed *before* touching the sink matches, so the sink only ever holds a state the node
+really had: docs/architecture.md#1-no-false-negatives-once-synced rests on that.
 """
 
 from __future__ import annotations
 
-from collections.abc import Hashable
+import dataclasses
+from collections.abc import Hashable, Mapping
 from dataclasses import dataclass, field
+from types import MappingProxyType
 from typing import Protocol
 
 from shardsieve.bloom import BloomFilter, FilterDivergedError
@@ -51,6 +60,9 @@ REASON_BEHIND_HISTORY = sync_pb2.SNAPSHOT_REASON_BEHIND_HISTORY
 
 PURPOSE_REBUILD = filter_pb2.SNAPSHOT_PURPOSE_REBUILD
 
+Position = tuple[int, int]
+"""(epoch, sequence): a state of a node's filter; positions compare as tuples."""
+
 
 def reason_name(reason: int) -> str:
     """'GAP', 'NO_REPLICA', ... for a SnapshotReason value (for counters and logs)."""
@@ -58,6 +70,21 @@ def reason_name(reason: int) -> str:
         return sync_pb2.SnapshotReason.Name(reason).removeprefix("SNAPSHOT_REASON_")
     except ValueError:
         return str(reason)
+
+
+def holds_write(replica: Position, position: Position, old: Position | None = None) -> bool:
+    """Whether a replica at `replica` certainly holds a write the node acknowledged at `position`.
+
+    The one statement of the rule (docs/sync-protocol.md, "Why the promises hold", promise 2):
+    a replica at or past `position` holds it (a later epoch is reached only through a verified
+    snapshot cut after the write). A write made during a rebuild hand-over also landed in the
+    old epoch's filter at `old`; a replica in exactly that epoch at or past it holds the write
+    too. A replica that left the old epoch went through a snapshot that may predate the write,
+    so then only `position` counts.
+    """
+    if replica >= position:
+        return True
+    return old is not None and replica[0] == old[0] and replica[1] >= old[1]
 
 
 # --------------------------------------------------------------------------- the sink
@@ -93,7 +120,126 @@ class DictReplicaSink:
         self.replicas.pop(node_id, None)
 
 
-# --------------------------------------------------------------------------- settings and views
+# --------------------------------------------------------------------------- events
+
+
+@dataclass(frozen=True, slots=True)
+class StreamOpened:
+    """A node opened a stream (its Hello was valid); it is the node's stream from now on."""
+
+    node_id: str
+    stream_id: Hashable
+    address: str                       # storage address from the Hello
+    took_over: bool                    # the node's previous stream was still open...
+    replaced_stream: Hashable | None   # ...this one, now retired (StaleStream on its next message)
+
+
+@dataclass(frozen=True, slots=True)
+class StreamClosed:
+    """The node's current stream ended: it is disconnected (its replica stays, and turns stale)."""
+
+    node_id: str
+    stream_id: Hashable
+
+
+@dataclass(frozen=True, slots=True)
+class ReplicaAdvanced:
+    """A verified delta was applied: the replica is at (epoch, sequence)."""
+
+    node_id: str
+    epoch: int
+    sequence: int
+
+
+@dataclass(frozen=True, slots=True)
+class ReplicaInstalled:
+    """A verified snapshot replaced the replica: it is at (epoch, sequence) with `geometry`.
+    `rebuild`: it was the node's rebuilt filter (the node switched to it)."""
+
+    node_id: str
+    epoch: int
+    sequence: int
+    geometry: Geometry
+    rebuild: bool
+
+
+@dataclass(frozen=True, slots=True)
+class ResyncRequested:
+    """A NeedSnapshot went out: the replica may lack changes until a snapshot arrives."""
+
+    node_id: str
+    reason: str                        # reason name: 'GAP', 'NO_REPLICA', ...
+    detail: str
+
+
+@dataclass(frozen=True, slots=True)
+class SnapshotRejected:
+    """A snapshot failed verification and was refused; the replica is unchanged."""
+
+    node_id: str
+    snapshot_id: int
+    detail: str
+
+
+@dataclass(frozen=True, slots=True)
+class StatsReported:
+    """A heartbeat brought the node's stats (the message is stored; do not modify it)."""
+
+    node_id: str
+    stats: sync_pb2.NodeStats
+
+
+@dataclass(frozen=True, slots=True)
+class RebuildRequested:
+    """A RebuildRequest went out on the node's stream."""
+
+    node_id: str
+    request_id: int
+    capacity: int
+    target_fpr: float
+    reason: str
+
+
+@dataclass(frozen=True, slots=True)
+class NodeForgotten:
+    """The node was dropped for good (operator decommission); its replica left the sink.
+    Sent even when this object never heard of the node, so every subscriber drops it."""
+
+    node_id: str
+    was_connected: bool
+    had_replica: bool
+    key_count: int
+
+
+SyncEvent = (StreamOpened | StreamClosed | ReplicaAdvanced | ReplicaInstalled | ResyncRequested
+             | SnapshotRejected | StatsReported | RebuildRequested | NodeForgotten)
+
+
+@dataclass(frozen=True, slots=True)
+class SyncResult:
+    """What one call did: replies for the node's stream, and events for the subscribers, in order."""
+
+    replies: tuple[sync_pb2.CoordinatorMessage, ...] = ()
+    events: tuple[SyncEvent, ...] = ()
+
+
+NOTHING = SyncResult()
+
+
+class _Outcome:
+    """Collects one call's replies and events."""
+
+    __slots__ = ("replies", "events")
+
+    def __init__(self) -> None:
+        self.replies: list[sync_pb2.CoordinatorMessage] = []
+        self.events: list[SyncEvent] = []
+
+    def result(self) -> SyncResult:
+        return SyncResult(tuple(self.replies), tuple(self.events))
+
+
+# --------------------------------------------------------------------------- settings and state
 
 
 @dataclass(frozen=True)
@@ -125,51 +271,22 @@ class SyncCounters:
 
 
 @dataclass(frozen=True)
-class RebuildView:
+class RebuildTracking:
     """Where a node's rebuild stands, as far as this coordinator knows.
 
     phase: "" (none), "requested" (we asked), the node's own phases from heartbeats
     ("scanning", "streaming", "awaiting-verify"), "switched" (we installed the new epoch).
     """
 
-    phase: str
-    request_id: int
-    capacity: int
-    target_fpr: float
-    reason: str
-    requested_at: float | None
-    epoch: int
-    progress: float
-    switched_at: float | None
-
-
-@dataclass(frozen=True)
-class NodeView:
-    """Read-only state of one node's replica and stream."""
-
-    node_id: str
-    connected: bool
-    storage_address: str
-    has_replica: bool
-    epoch: int
-    sequence: int
-    checksum: int
-    geometry: Geometry | None
-    key_count: int
-    capacity: int
-    target_fpr: float
-    push_interval_ms: int
-    connected_at: float | None
-    disconnected_at: float | None
-    last_applied_at: float | None     # last delta applied or snapshot installed
-    last_heard_at: float | None       # last message of any kind
-    awaiting_snapshot: str | None     # reason name of an outstanding NeedSnapshot
-    stats: sync_pb2.NodeStats | None  # latest heartbeat (a copy)
-    rebuild: RebuildView
-    counters: SyncCounters            # a copy
-
-
-# --------------------------------------------------------------------------- internal state
+    phase: str = ""
+    request_id: int = 0
+    capacity: int = 0
+    target_fpr: float = 0.0
+    reason: str = ""
+    requested_at: float | None = None
+    epoch: int = 0
+    progress: float = 0.0
+    switched_at: float | None = None
 
 
 @dataclass
@@ -185,7 +302,7 @@ class _Assembly:
     last_chunk_at: float
 
 
-@dataclass
+@dataclass(eq=False)
 class _Node:
     node_id: str
     stream_id: Hashable | None = None
@@ -204,7 +321,7 @@ class _Node:
     geometry: Geometry | None = None
     last_applied_at: float | None = None
     last_heard_at: float | None = None
-    stats: sync_pb2.NodeStats | None = None
+    stats: sync_pb2.NodeStats | None = None   # replaced, never modified, by each heartbeat
     assembly: _Assembly | None = None
     last_snapshot_id: int = 0        # highest snapshot id installed/refused/skipped on this stream
     awaiting: int | None = None      # reason of the outstanding NeedSnapshot
@@ -212,16 +329,151 @@ class _Node:
     # restarted without a new epoch): the next snapshot installs whatever its sequence
     replica_foreign: bool = False
     need_sent_at: float = 0.0
-    rebuild_phase: str = ""
-    rebuild_request_id: int = 0
-    rebuild_capacity: int = 0
-    rebuild_target_fpr: float = 0.0
-    rebuild_reason: str = ""
-    rebuild_requested_at: float | None = None
-    rebuild_epoch: int = 0
-    rebuild_progress: float = 0.0
-    rebuild_switched_at: float | None = None
+    rebuild: RebuildTracking = field(default_factory=RebuildTracking)
     counters: SyncCounters = field(default_factory=SyncCounters)
+    state: NodeState = field(init=False, repr=False)
+
+    def __post_init__(self) -> None:
+        self.state = NodeState(self)
+
+    @property
+    def in_sync(self) -> bool:
+        return self.connected and self.has_replica and self.awaiting is None
+
+
+class NodeState:
+    """Read-only access to one node's live state (no copy: it shows the current values).
+
+    Read it under the lock the coordinator calls CoordinatorSync under, like every other use
+    of the object; `stats` is the latest heartbeat's message (treat it as read-only).
+    """
+
+    __slots__ = ("_n",)
+
+    def __init__(self, node: _Node) -> None:
+        self._n = node
+
+    def frozen_copy(self) -> NodeState:
+        """A copy that does not follow later changes (tests and diagnostics comparing a before
+        with an after); the coordinator itself always reads the live state."""
+        n = self._n
+        counters = dataclasses.replace(n.counters, need_snapshot=dict(n.counters.need_snapshot))
+        return dataclasses.replace(n, assembly=None, counters=counters).state
+
+    def __repr__(self) -> str:
+        n = self._n
+        return (f"NodeState({n.node_id!r}, connected={n.connected}, replica="
+                f"{(n.epoch, n.sequence) if n.has_replica else None}, awaiting={self.awaiting_snapshot})")
+
+    @property
+    def node_id(self) -> str:
+        return self._n.node_id
+
+    @property
+    def connected(self) -> bool:
+        """A stream of the node is open."""
+        return self._n.connected
+
+    @property
+    def storage_address(self) -> str:
+        """Storage address from the node's latest Hello ('' before any)."""
+        return self._n.storage_address
+
+    @property
+    def has_replica(self) -> bool:
+        """A verified replica of the node's filter is in the sink."""
+        return self._n.has_replica
+
+    @property
+    def in_sync(self) -> bool:
+        """Stream open, verified replica, no snapshot outstanding (the replica may lack nothing
+        the node sent); freshness then only depends on when the node was last heard from."""
+        return self._n.in_sync
+
+    @property
+    def synced_heard_at(self) -> float | None:
+        """When the node was last heard from if it is in sync, else None (the freshness input)."""
+        n = self._n
+        return n.last_heard_at if n.in_sync else None
+
+    @property
+    def epoch(self) -> int:
+        return self._n.epoch
+
+    @property
+    def sequence(self) -> int:
+        return self._n.sequence
+
+    @property
+    def position(self) -> Position | None:
+        """(epoch, sequence) of the replica, or None without one."""
+        n = self._n
+        return (n.epoch, n.sequence) if n.has_replica else None
+
+    @property
+    def checksum(self) -> int:
+        """Checksum of the replica at its position."""
+        return self._n.checksum
+
+    @property
+    def geometry(self) -> Geometry | None:
+        """Geometry of the replica (None before the first snapshot)."""
+        return self._n.geometry
+
+    @property
+    def key_count(self) -> int:
+        return self._n.key_count
+
+    @property
+    def capacity(self) -> int:
+        return self._n.capacity
+
+    @property
+    def target_fpr(self) -> float:
+        return self._n.target_fpr
+
+    @property
+    def push_interval_ms(self) -> int:
+        return self._n.push_interval_ms
+
+    @property
+    def connected_at(self) -> float | None:
+        return self._n.connected_at
+
+    @property
+    def disconnected_at(self) -> float | None:
+        return self._n.disconnected_at
+
+    @property
+    def last_applied_at(self) -> float | None:
+        """When a delta was last applied or a snapshot installed."""
+        return self._n.last_applied_at
+
+    @property
+    def last_heard_at(self) -> float | None:
+        """When the node last sent anything."""
+        return self._n.last_heard_at
+
+    @property
+    def awaiting_snapshot(self) -> str | None:
+        """Reason name of an outstanding NeedSnapshot (the replica may lack changes), else None."""
+        awaiting = self._n.awaiting
+        return reason_name(awaiting) if awaiting is not None else None
+
+    @property
+    def stats(self) -> sync_pb2.NodeStats | None:
+        """The latest heartbeat's stats (None before any)."""
+        return self._n.stats
+
+    @property
+    def rebuild(self) -> RebuildTracking:
+        return self._n.rebuild
+
+    @property
+    def counters(self) -> SyncCounters:
+        """The node's counters (a copy: they keep counting)."""
+        c = self._n.counters
+        return dataclasses.replace(c, need_snapshot=dict(c.need_snapshot))
 
 
 # --------------------------------------------------------------------------- the protocol object
@@ -237,9 +489,20 @@ class CoordinatorSync:
         self._streams: dict[Hashable, str] = {}       # open stream -> node id
         self._retired_streams: set[Hashable] = set()  # streams taken over by a newer one
         self._next_request_id = 1
+        # node id -> last_heard_at of every node in sync, kept current by each call: lookups
+        # read it on every call, so it is an index here rather than a pass over all nodes
+        self._synced_heard: dict[str, float] = {}
+        self._synced_heard_view = MappingProxyType(self._synced_heard)
+
+    def _note(self, node: _Node) -> None:
+        """Keep `_synced_heard` current after a call touched `node`."""
+        if node.in_sync and node.last_heard_at is not None:
+            self._synced_heard[node.node_id] = node.last_heard_at
+        else:
+            self._synced_heard.pop(node.node_id, None)
 
     # ------------------------------------------------------------------ streams
-    def open(self, stream_id: Hashable, hello: sync_pb2.Hello, now: float) -> list[sync_pb2.CoordinatorMessage]:
+    def open(self, stream_id: Hashable, hello: sync_pb2.Hello, now: float) -> SyncResult:
         """A node opened a stream with `hello`. Validates it (InvalidHello /
         UnsupportedProtocolVersion / HelloTwice, state unchanged), makes this the node's
         stream (a newer stream takes over an older one) and answers Ack when the replica can
@@ -257,12 +520,14 @@ class CoordinatorSync:
             geometry = Geometry.from_proto(hello.geometry)
         except GeometryError as exc:
             raise InvalidHello(f"Hello.geometry is invalid: {exc}") from exc
+        out = _Outcome()
         node = self._nodes.get(hello.node_id)
         if node is None:
             node = self._nodes[hello.node_id] = _Node(node_id=hello.node_id)
-        if node.stream_id is not None:
-            self._streams.pop(node.stream_id, None)
-            self._retired_streams.add(node.stream_id)
+        replaced = node.stream_id
+        if replaced is not None:
+            self._streams.pop(replaced, None)
+            self._retired_streams.add(replaced)
             node.counters.stream_takeovers += 1
         self._streams[stream_id] = node.node_id
         node.stream_id = stream_id
@@ -278,35 +543,43 @@ class CoordinatorSync:
         node.push_interval_ms = int(hello.push_interval_ms)
         node.key_count = int(hello.key_count)
         node.counters.streams_opened += 1
-        if not node.has_replica:
-            return self._need(node, REASON_NO_REPLICA, "no replica of this node (first contact or restart)", now)
-        if node.replica_foreign:
-            return self._need(node, REASON_UNKNOWN_EPOCH, "replica is not from the node's current history", now)
-        if node.epoch != hello.epoch:
-            return self._need(node, REASON_UNKNOWN_EPOCH,
-                              f"replica is at epoch {node.epoch}, node at epoch {hello.epoch}", now)
-        if geometry != node.geometry:
-            return self._need(node, REASON_UNKNOWN_EPOCH,
-                              f"epoch {hello.epoch} changed geometry from ({node.geometry}) to ({geometry})", now)
-        if node.sequence > hello.sequence:
-            node.replica_foreign = True   # not a state of this node's current history
-            return self._need(node, REASON_UNKNOWN_EPOCH,
-                              f"replica is at sequence {node.sequence}, beyond the node's {hello.sequence}", now)
-        if node.sequence == hello.sequence and node.checksum != hello.checksum:
-            node.replica_foreign = True
-            return self._need(node, REASON_CHECKSUM_MISMATCH,
-                              f"checksum {node.checksum:#x} at sequence {node.sequence}, node has {hello.checksum:#x}",
-                              now)
-        if node.sequence < hello.history_floor:
-            return self._need(node, REASON_BEHIND_HISTORY,
-                              f"replica at sequence {node.sequence} is below the history floor {hello.history_floor}",
-                              now)
-        return [self._ack(node)]
+        out.events.append(StreamOpened(node.node_id, stream_id, hello.storage_address, replaced is not None,
+                                       replaced))
+        self._answer_hello(node, hello, geometry, now, out)
+        self._note(node)
+        return out.result()
 
-    def receive(self, node_id: str, stream_id: Hashable, msg: sync_pb2.NodeMessage,
-                now: float) -> list[sync_pb2.CoordinatorMessage]:
+    def _answer_hello(self, node: _Node, hello: sync_pb2.Hello, geometry: Geometry, now: float,
+                      out: _Outcome) -> None:
+        if not node.has_replica:
+            self._need(node, REASON_NO_REPLICA, "no replica of this node (first contact or restart)", now, out)
+        elif node.replica_foreign:
+            self._need(node, REASON_UNKNOWN_EPOCH, "replica is not from the node's current history", now, out)
+        elif node.epoch != hello.epoch:
+            self._need(node, REASON_UNKNOWN_EPOCH, f"replica is at epoch {node.epoch}, node at epoch {hello.epoch}",
+                       now, out)
+        elif geometry != node.geometry:
+            self._need(node, REASON_UNKNOWN_EPOCH,
+                       f"epoch {hello.epoch} changed geometry from ({node.geometry}) to ({geometry})", now, out)
+        elif node.sequence > hello.sequence:
+            node.replica_foreign = True   # not a state of this node's current history
+            self._need(node, REASON_UNKNOWN_EPOCH,
+                       f"replica is at sequence {node.sequence}, beyond the node's {hello.sequence}", now, out)
+        elif node.sequence == hello.sequence and node.checksum != hello.checksum:
+            node.replica_foreign = True
+            self._need(node, REASON_CHECKSUM_MISMATCH,
+                       f"checksum {node.checksum:#x} at sequence {node.sequence}, node has {hello.checksum:#x}",
+                       now, out)
+        elif node.sequence < hello.history_floor:
+            self._need(node, REASON_BEHIND_HISTORY,
+                       f"replica at sequence {node.sequence} is below the history floor {hello.history_floor}",
+                       now, out)
+        else:
+            out.replies.append(self._ack(node))
+
+    def receive(self, node_id: str, stream_id: Hashable, msg: sync_pb2.NodeMessage, now: float) -> SyncResult:
         """One message on an open stream. Raises (state unchanged) NotOpened / StaleStream /
-        WrongNodeId / HelloTwice / MalformedMessage; otherwise returns the replies."""
+        WrongNodeId / HelloTwice / MalformedMessage; otherwise returns replies and events."""
         node = self._check_stream(node_id, stream_id)
         kind = msg.WhichOneof("body")
         if kind == "hello":
@@ -314,36 +587,47 @@ class CoordinatorSync:
         if kind is None:
             raise MalformedMessage(f"node {node_id!r} sent a message with no body")
         node.last_heard_at = now
+        out = _Outcome()
         if kind == "delta":
-            return self._on_delta(node, msg.delta, now)
-        if kind == "snapshot_chunk":
-            return self._on_chunk(node, msg.snapshot_chunk, now)
-        return self._on_heartbeat(node, msg.heartbeat.stats, now)
+            self._on_delta(node, msg.delta, now, out)
+        elif kind == "snapshot_chunk":
+            self._on_chunk(node, msg.snapshot_chunk, now, out)
+        else:
+            self._on_heartbeat(node, msg.heartbeat.stats, now, out)
+        self._note(node)
+        return out.result()
 
-    def close(self, node_id: str, stream_id: Hashable, now: float | None = None) -> None:
+    def close(self, node_id: str, stream_id: Hashable, now: float | None = None) -> SyncResult:
         """The stream ended. The replica stays (routing keeps using it; it turns stale)."""
         self._streams.pop(stream_id, None)
         self._retired_streams.discard(stream_id)
         node = self._nodes.get(node_id)
-        if node is not None and node.stream_id == stream_id:
-            node.stream_id = None
-            node.connected = False
-            node.disconnected_at = now
-            node.assembly = None
-            node.awaiting = None
+        if node is None or node.stream_id != stream_id:
+            return NOTHING   # a retired stream, or a node forgotten meanwhile
+        node.stream_id = None
+        node.connected = False
+        node.disconnected_at = now
+        node.assembly = None
+        node.awaiting = None
+        self._note(node)
+        return SyncResult(events=(StreamClosed(node_id, stream_id),))
 
-    def forget(self, node_id: str) -> None:
-        """Drop a node entirely (operator decommission): its replica leaves the sink."""
+    def forget(self, node_id: str) -> SyncResult:
+        """Drop a node entirely (operator decommission): its replica leaves the sink. The
+        NodeForgotten event goes out whether or not this object knew the node."""
         node = self._nodes.pop(node_id, None)
-        if node is not None:
-            if node.stream_id is not None:
-                self._streams.pop(node.stream_id, None)
-            self.sink.remove(node_id)
+        self._synced_heard.pop(node_id, None)
+        if node is None:
+            return SyncResult(events=(NodeForgotten(node_id, False, False, 0),))
+        if node.stream_id is not None:
+            self._streams.pop(node.stream_id, None)
+        self.sink.remove(node_id)
+        return SyncResult(events=(NodeForgotten(node_id, node.connected, node.has_replica, node.key_count),))
 
     def request_rebuild(self, node_id: str, capacity: int, target_fpr: float, reason: str,
-                        now: float) -> sync_pb2.CoordinatorMessage:
-        """The RebuildRequest to send on the node's stream (the driver sends it). Raises
-        KeyError for a node that is not connected, ValueError for bad sizes."""
+                        now: float) -> SyncResult:
+        """The RebuildRequest to send on the node's stream (in `replies`). Raises KeyError for a
+        node that is not connected, ValueError for bad sizes (nothing changes then)."""
         node = self._nodes.get(node_id)
         if node is None or not node.connected:
             raise KeyError(f"node {node_id!r} is not connected; a rebuild needs its sync stream")
@@ -353,65 +637,46 @@ class CoordinatorSync:
             raise ValueError(f"rebuild target_fpr must be between 0 and 1 (exclusive), got {target_fpr!r}")
         request_id = self._next_request_id
         self._next_request_id += 1
-        node.rebuild_phase = "requested"
-        node.rebuild_request_id = request_id
-        node.rebuild_capacity = capacity
-        node.rebuild_target_fpr = float(target_fpr)
-        node.rebuild_reason = reason
-        node.rebuild_requested_at = now
-        node.rebuild_progress = 0.0
-        node.rebuild_switched_at = None
-        return sync_pb2.CoordinatorMessage(
+        node.rebuild = RebuildTracking(phase="requested", request_id=request_id, capacity=capacity,
+                                       target_fpr=float(target_fpr), reason=reason, requested_at=now,
+                                       epoch=node.rebuild.epoch)
+        msg = sync_pb2.CoordinatorMessage(
             node_id=node_id,
             rebuild=sync_pb2.RebuildRequest(request_id=request_id, capacity=capacity, target_fpr=target_fpr,
                                             reason=reason))
+        return SyncResult((msg,), (RebuildRequested(node_id, request_id, capacity, float(target_fpr), reason),))
 
-    # ------------------------------------------------------------------ read-only accessors
+    # ------------------------------------------------------------------ read-only access
     def node_ids(self) -> list[str]:
         return list(self._nodes)
 
-    def node(self, node_id: str) -> NodeView | None:
-        """A read-only view of one node, or None if never seen."""
+    def node(self, node_id: str) -> NodeState | None:
+        """The live, read-only state of one node, or None if never seen (or forgotten)."""
         n = self._nodes.get(node_id)
-        if n is None:
-            return None
-        stats = None
-        if n.stats is not None:
-            stats = sync_pb2.NodeStats()
-            stats.CopyFrom(n.stats)
-        c = n.counters
-        counters = SyncCounters(**{**c.__dict__, "need_snapshot": dict(c.need_snapshot)})
-        return NodeView(
-            node_id=n.node_id, connected=n.connected, storage_address=n.storage_address,
-            has_replica=n.has_replica, epoch=n.epoch, sequence=n.sequence, checksum=n.checksum,
-            geometry=n.geometry, key_count=n.key_count, capacity=n.capacity, target_fpr=n.target_fpr,
-            push_interval_ms=n.push_interval_ms, connected_at=n.connected_at, disconnected_at=n.disconnected_at,
-            last_applied_at=n.last_applied_at, last_heard_at=n.last_heard_at,
-            awaiting_snapshot=reason_name(n.awaiting) if n.awaiting is not None else None, stats=stats,
-            rebuild=RebuildView(phase=n.rebuild_phase, request_id=n.rebuild_request_id,
-                                capacity=n.rebuild_capacity, target_fpr=n.rebuild_target_fpr,
-                                reason=n.rebuild_reason, requested_at=n.rebuild_requested_at,
-                                epoch=n.rebuild_epoch, progress=n.rebuild_progress,
-                                switched_at=n.rebuild_switched_at),
-            counters=counters)
+        return n.state if n is not None else None
 
-    def nodes(self) -> list[NodeView]:
-        return [v for v in (self.node(i) for i in self._nodes) if v is not None]
+    def nodes(self) -> list[NodeState]:
+        return [n.state for n in self._nodes.values()]
+
+    def synced_heard(self) -> Mapping[str, float]:
+        """`synced_heard_at` of every node in sync (a live read-only mapping: no copy)."""
+        return self._synced_heard_view
 
     def is_connected(self, node_id: str) -> bool:
         n = self._nodes.get(node_id)
         return bool(n and n.connected)
 
-    def position(self, node_id: str) -> tuple[int, int] | None:
+    def position(self, node_id: str) -> Position | None:
         """(epoch, sequence) of the node's replica in the sink, or None without one."""
         n = self._nodes.get(node_id)
         return (n.epoch, n.sequence) if n is not None and n.has_replica else None
 
-    def covers(self, node_id: str, epoch: int, sequence: int) -> bool:
-        """True once the replica holds the write a node acknowledged at (epoch, sequence)
-        (its WriteAck / NodeSync.pending_sequence): the read-your-writes hint can go."""
+    def covers(self, node_id: str, epoch: int, sequence: int, old: Position | None = None) -> bool:
+        """True once the replica holds the write a node acknowledged at (epoch, sequence) (its
+        WriteAck / NodeSync.pending_sequence; `old`: the WriteAck's old_position during a
+        hand-over): the read-your-writes hint can go (`holds_write`)."""
         pos = self.position(node_id)
-        return pos is not None and pos >= (epoch, sequence)
+        return pos is not None and holds_write(pos, (epoch, sequence), old)
 
     # ------------------------------------------------------------------ internals
     def _check_stream(self, node_id: str, stream_id: Hashable) -> _Node:
@@ -430,51 +695,54 @@ class CoordinatorSync:
             node_id=node.node_id,
             ack=sync_pb2.Ack(epoch=node.epoch, sequence=node.sequence, geometry=node.geometry.to_proto()))
 
-    def _need(self, node: _Node, reason: int, detail: str, now: float) -> list[sync_pb2.CoordinatorMessage]:
+    def _need(self, node: _Node, reason: int, detail: str, now: float, out: _Outcome) -> None:
         """NeedSnapshot, at most once per need_snapshot_retry_s while one is outstanding."""
         if node.awaiting is not None and now - node.need_sent_at < self.config.need_snapshot_retry_s:
-            return []
+            return
         if node.assembly is not None and now - node.assembly.last_chunk_at < self.config.need_snapshot_retry_s:
-            return []   # a snapshot is arriving; it will answer this
+            return   # a snapshot is arriving; it will answer this
         node.awaiting = reason
         node.need_sent_at = now
         name = reason_name(reason)
         node.counters.need_snapshot[name] = node.counters.need_snapshot.get(name, 0) + 1
-        return [sync_pb2.CoordinatorMessage(
+        out.replies.append(sync_pb2.CoordinatorMessage(
             node_id=node.node_id,
             need_snapshot=sync_pb2.NeedSnapshot(
                 reason=reason, have_epoch=node.epoch if node.has_replica else 0,
-                have_sequence=node.sequence if node.has_replica else 0, detail=detail))]
+                have_sequence=node.sequence if node.has_replica else 0, detail=detail)))
+        out.events.append(ResyncRequested(node.node_id, name, detail))
 
-    def _on_delta(self, node: _Node, d: filter_pb2.Delta, now: float) -> list[sync_pb2.CoordinatorMessage]:
+    def _on_delta(self, node: _Node, d: filter_pb2.Delta, now: float, out: _Outcome) -> None:
         if not node.has_replica:
-            return self._need(node, REASON_NO_REPLICA, "no replica to apply deltas to", now)
+            return self._need(node, REASON_NO_REPLICA, "no replica to apply deltas to", now, out)
         if d.epoch != node.epoch:
             if d.epoch < node.epoch:
-                return []   # a late delta of an epoch we already left
-            return self._need(node, REASON_UNKNOWN_EPOCH,
-                              f"delta of epoch {d.epoch}, replica at epoch {node.epoch}", now)
+                return None   # a late delta of an epoch we already left
+            return self._need(node, REASON_UNKNOWN_EPOCH, f"delta of epoch {d.epoch}, replica at epoch {node.epoch}",
+                              now, out)
         if node.replica_foreign:
-            return self._need(node, REASON_UNKNOWN_EPOCH, "replica is not from the node's current history", now)
+            return self._need(node, REASON_UNKNOWN_EPOCH, "replica is not from the node's current history", now, out)
         if d.sequence <= node.sequence:
             node.counters.duplicates += 1
-            return [self._ack(node)]
+            out.replies.append(self._ack(node))
+            return None
         if d.sequence > node.sequence + 1:
-            return self._need(node, REASON_GAP, f"delta {d.sequence} after {node.sequence}", now)
+            return self._need(node, REASON_GAP, f"delta {d.sequence} after {node.sequence}", now, out)
         assert node.geometry is not None
         try:
             changes = decode_delta(d.payload, node.geometry.bits, max_positions=self.config.max_delta_positions)
         except CodecError as exc:
-            return self._need(node, REASON_BAD_PAYLOAD, f"delta {d.sequence}: {exc}", now)
+            return self._need(node, REASON_BAD_PAYLOAD, f"delta {d.sequence}: {exc}", now, out)
         expected = changes.checksum_after(node.checksum)
         if expected != d.checksum:
             return self._need(node, REASON_CHECKSUM_MISMATCH,
-                              f"delta {d.sequence} leads to checksum {expected:#x}, node says {d.checksum:#x}", now)
+                              f"delta {d.sequence} leads to checksum {expected:#x}, node says {d.checksum:#x}",
+                              now, out)
         try:
             self.sink.apply(node.node_id, changes)
         except FilterDivergedError as exc:
-            return self._need(node, REASON_CHECKSUM_MISMATCH, f"delta {d.sequence} does not fit the replica: {exc}",
-                              now)
+            return self._need(node, REASON_CHECKSUM_MISMATCH,
+                              f"delta {d.sequence} does not fit the replica: {exc}", now, out)
         node.sequence = d.sequence
         node.checksum = d.checksum
         node.key_count = int(d.key_count)
@@ -482,7 +750,9 @@ class CoordinatorSync:
         node.awaiting = None
         node.counters.deltas_applied += 1
         node.counters.delta_bytes += len(d.payload)
-        return [self._ack(node)]
+        out.replies.append(self._ack(node))
+        out.events.append(ReplicaAdvanced(node.node_id, node.epoch, node.sequence))
+        return None
 
     @staticmethod
     def _replica_holds(node: _Node, epoch: int, sequence: int, checksum: int) -> bool:
@@ -495,41 +765,40 @@ class CoordinatorSync:
             return False
         return sequence < node.sequence or checksum == node.checksum
 
-    def _already_have(self, node: _Node, c: filter_pb2.SnapshotChunk) -> list[sync_pb2.CoordinatorMessage]:
+    def _already_have(self, node: _Node, c: filter_pb2.SnapshotChunk, out: _Outcome) -> None:
         """Replies to a snapshot that is not newer than the replica: confirm where we are."""
-        out = []
         if c.purpose == PURPOSE_REBUILD and c.epoch == node.epoch:
-            out.append(sync_pb2.CoordinatorMessage(
+            out.replies.append(sync_pb2.CoordinatorMessage(
                 node_id=node.node_id,
                 snapshot_verified=sync_pb2.SnapshotVerified(snapshot_id=c.snapshot_id, epoch=node.epoch,
                                                             sequence=node.sequence)))
-        out.append(self._ack(node))
-        return out
+        out.replies.append(self._ack(node))
 
-    def _reject(self, node: _Node, snapshot_id: int, detail: str) -> list[sync_pb2.CoordinatorMessage]:
+    def _reject(self, node: _Node, snapshot_id: int, detail: str, out: _Outcome) -> None:
         node.assembly = None
         node.last_snapshot_id = max(node.last_snapshot_id, snapshot_id)
         node.counters.snapshots_rejected += 1
-        return [sync_pb2.CoordinatorMessage(
-            node_id=node.node_id, snapshot_rejected=sync_pb2.SnapshotRejected(snapshot_id=snapshot_id, detail=detail))]
+        out.replies.append(sync_pb2.CoordinatorMessage(
+            node_id=node.node_id, snapshot_rejected=sync_pb2.SnapshotRejected(snapshot_id=snapshot_id, detail=detail)))
+        out.events.append(SnapshotRejected(node.node_id, snapshot_id, detail))
 
-    def _on_chunk(self, node: _Node, c: filter_pb2.SnapshotChunk, now: float) -> list[sync_pb2.CoordinatorMessage]:
+    def _on_chunk(self, node: _Node, c: filter_pb2.SnapshotChunk, now: float, out: _Outcome) -> None:
         asm = node.assembly
         if asm is None or c.snapshot_id != asm.snapshot_id:
             if c.snapshot_id <= node.last_snapshot_id or (asm is not None and c.snapshot_id < asm.snapshot_id):
-                return []   # a late chunk of an attempt already settled or superseded
+                return None   # a late chunk of an attempt already settled or superseded
             if self._replica_holds(node, int(c.epoch), int(c.sequence), int(c.checksum)):
                 node.last_snapshot_id = c.snapshot_id
-                return self._already_have(node, c)
+                return self._already_have(node, c, out)
             if not c.HasField("geometry"):
-                return self._reject(node, c.snapshot_id, "snapshot chunk has no geometry")
+                return self._reject(node, c.snapshot_id, "snapshot chunk has no geometry", out)
             try:
                 geometry = Geometry.from_proto(c.geometry)
                 assembler = SnapshotAssembler(geometry, encoding=int(c.encoding), chunk_count=int(c.chunk_count),
                                               total_bytes=int(c.total_bytes), checksum=int(c.checksum),
                                               max_total_bytes=self.config.max_snapshot_bytes)
             except (GeometryError, SnapshotError) as exc:
-                return self._reject(node, c.snapshot_id, f"snapshot {c.snapshot_id}: {exc}")
+                return self._reject(node, c.snapshot_id, f"snapshot {c.snapshot_id}: {exc}", out)
             asm = node.assembly = _Assembly(
                 snapshot_id=c.snapshot_id, epoch=int(c.epoch), sequence=int(c.sequence), purpose=int(c.purpose),
                 checksum=int(c.checksum), key_count=int(c.key_count), capacity=int(c.capacity),
@@ -537,24 +806,24 @@ class CoordinatorSync:
         if (c.epoch, c.sequence, c.checksum, c.chunk_count, c.total_bytes) != (
                 asm.epoch, asm.sequence, asm.checksum, asm.assembler.chunk_count, asm.assembler.total_bytes):
             return self._reject(node, c.snapshot_id, f"chunk {c.chunk_index} of snapshot {c.snapshot_id} "
-                                                     "disagrees with its first chunk's header")
+                                                     "disagrees with its first chunk's header", out)
         try:
             asm.assembler.add(int(c.chunk_index), c.data)
         except SnapshotError as exc:
-            return self._reject(node, c.snapshot_id, f"snapshot {c.snapshot_id}: {exc}")
+            return self._reject(node, c.snapshot_id, f"snapshot {c.snapshot_id}: {exc}", out)
         asm.last_chunk_at = now
         if not asm.assembler.complete:
-            return []
+            return None
         if self._replica_holds(node, asm.epoch, asm.sequence, asm.checksum):
             # deltas moved the replica past this snapshot while it assembled: installing it
             # would take back changes already applied (and keys already routable)
             node.assembly = None
             node.last_snapshot_id = asm.snapshot_id
-            return self._already_have(node, c)
+            return self._already_have(node, c, out)
         try:
             bloom = asm.assembler.finish()
         except SnapshotError as exc:
-            return self._reject(node, c.snapshot_id, f"snapshot {c.snapshot_id}: {exc}")
+            return self._reject(node, c.snapshot_id, f"snapshot {c.snapshot_id}: {exc}", out)
         self.sink.install(node.node_id, bloom)
         node.assembly = None
         node.last_snapshot_id = asm.snapshot_id
@@ -571,30 +840,32 @@ class CoordinatorSync:
         node.awaiting = None
         node.counters.snapshots_installed += 1
         node.counters.snapshot_bytes += asm.assembler.total_bytes
-        out = []
-        if asm.purpose == PURPOSE_REBUILD:
-            node.rebuild_phase = "switched"
-            node.rebuild_epoch = asm.epoch
-            node.rebuild_progress = 1.0
-            node.rebuild_switched_at = now
-            out.append(sync_pb2.CoordinatorMessage(
+        rebuild = asm.purpose == PURPOSE_REBUILD
+        if rebuild:
+            node.rebuild = dataclasses.replace(node.rebuild, phase="switched", epoch=asm.epoch, progress=1.0,
+                                               switched_at=now)
+            out.replies.append(sync_pb2.CoordinatorMessage(
                 node_id=node.node_id,
                 snapshot_verified=sync_pb2.SnapshotVerified(snapshot_id=asm.snapshot_id, epoch=asm.epoch,
                                                             sequence=asm.sequence)))
-        out.append(self._ack(node))
-        return out
+        out.replies.append(self._ack(node))
+        out.events.append(ReplicaInstalled(node.node_id, asm.epoch, asm.sequence, bloom.geometry, rebuild))
+        return None
 
-    def _on_heartbeat(self, node: _Node, stats: sync_pb2.NodeStats, now: float) -> list[sync_pb2.CoordinatorMessage]:
-        node.stats = sync_pb2.NodeStats()
-        node.stats.CopyFrom(stats)
+    def _on_heartbeat(self, node: _Node, stats: sync_pb2.NodeStats, now: float, out: _Outcome) -> None:
+        stored = sync_pb2.NodeStats()
+        stored.CopyFrom(stats)
+        node.stats = stored
         if stats.rebuild_phase:
-            node.rebuild_phase = stats.rebuild_phase
-            node.rebuild_epoch = int(stats.rebuild_epoch)
-            node.rebuild_progress = float(stats.rebuild_progress)
+            node.rebuild = dataclasses.replace(node.rebuild, phase=stats.rebuild_phase,
+                                               epoch=int(stats.rebuild_epoch),
+                                               progress=float(stats.rebuild_progress))
+        out.events.append(StatsReported(node.node_id, stored))
         if not node.has_replica:
-            return self._need(node, REASON_NO_REPLICA, "no replica of this node", now)
-        if node.awaiting is not None:
-            return self._need(node, node.awaiting, "still waiting for a snapshot", now)
-        # always answer: a position report lets the node resend what we lack, and answers a
-        # Hello whose reply was lost
-        return [self._ack(node)]
+            self._need(node, REASON_NO_REPLICA, "no replica of this node", now, out)
+        elif node.awaiting is not None:
+            self._need(node, node.awaiting, "still waiting for a snapshot", now, out)
+        else:
+            # always answer: a position report lets the node resend what we lack, and answers a
+            # Hello whose reply was lost
+            out.replies.append(self._ack(node))

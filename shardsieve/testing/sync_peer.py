@@ -25,7 +25,7 @@ from typing import Callable
 import grpc
 
 from shardsieve.bloom import BloomFilter
-from shardsieve.sync.coordinator_side import CoordinatorSync, DictReplicaSink, NodeView
+from shardsieve.sync.coordinator_side import CoordinatorSync, DictReplicaSink, NodeState
 from shardsieve.sync.errors import SyncError
 from shardsieve.v1 import sync_pb2, sync_pb2_grpc
 
@@ -51,7 +51,7 @@ class _Servicer(sync_pb2_grpc.FilterSyncServicer):
         node_id = first.hello.node_id
         try:
             with owner.lock:
-                replies = owner.sync.open(stream_id, first.hello, arrived)
+                replies = owner.sync.open(stream_id, first.hello, arrived).replies
         except SyncError as exc:
             context.abort(getattr(grpc.StatusCode, exc.grpc_status_name), str(exc))
         with owner.lock:
@@ -69,7 +69,7 @@ class _Servicer(sync_pb2_grpc.FilterSyncServicer):
                         continue
                     try:
                         with owner.lock:
-                            out = owner.sync.receive(node_id, stream_id, msg, now)
+                            out = owner.sync.receive(node_id, stream_id, msg, now).replies
                     except SyncError as exc:
                         error.append(exc)
                         return
@@ -148,19 +148,21 @@ class TestCoordinator:
             bloom = self.sink.replicas.get(node_id)
             return bloom.copy() if bloom is not None else None
 
-    def view(self, node_id: str) -> NodeView | None:
+    def view(self, node_id: str) -> NodeState | None:
+        """A copy of node_id's state in the protocol object as it is now (None before its Hello)."""
         with self.lock:
-            return self.sync.node(node_id)
+            state = self.sync.node(node_id)
+            return state.frozen_copy() if state is not None else None
 
     def connected(self, node_id: str) -> bool:
         with self.lock:
             return self.sync.is_connected(node_id) and node_id in self._queues
 
-    def wait_for_node(self, node_id: str, timeout: float = 15.0) -> NodeView:
+    def wait_for_node(self, node_id: str, timeout: float = 15.0) -> NodeState:
         """Wait until node_id is connected and has a replica."""
         from shardsieve.testing.procs import wait_until
 
-        def ready() -> NodeView | None:
+        def ready() -> NodeState | None:
             v = self.view(node_id)
             return v if v is not None and v.connected and v.has_replica else None
         return wait_until(ready, timeout, message=f"node {node_id} connected with a replica")
@@ -173,5 +175,6 @@ class TestCoordinator:
 
     def request_rebuild(self, node_id: str, capacity: int, target_fpr: float, reason: str = "test") -> None:
         with self.lock:
-            msg = self.sync.request_rebuild(node_id, capacity, target_fpr, reason, time.monotonic())
-            self._queues[node_id].put(msg)
+            result = self.sync.request_rebuild(node_id, capacity, target_fpr, reason, time.monotonic())
+            for msg in result.replies:
+                self._queues[node_id].put(msg)

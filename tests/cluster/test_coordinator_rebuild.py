@@ -89,8 +89,9 @@ def test_overfilled_node_is_flagged_rebuilt_and_never_misses(tmp_path) -> None:
         flag = next(d for d in decisions if d.node_id == "node-1" and d.action == "flag")
         assert "capacity 500" in flag.detail or "predicted FPR" in flag.detail
 
-        # Each decision is also logged with its numbers, as key=value fields (docs/coordinator.md, "Accounting and
-        # saturation"; LocalCluster runs the daemons with --log-format text; the JSON form is tests/unit/test_logs.py).
+        # Each decision is also logged with its numbers, as key=value fields (docs/coordinator.md,
+        # "Accounting and saturation"; LocalCluster runs the daemons with --log-format text; the
+        # JSON form is tests/unit/test_logs.py).
         lines = [line for line in (tmp_path / "coordinator.log").read_text().splitlines()
                  if "monitor decision" in line and "node_id=node-1" in line]
         assert any("action=flag" in line and f"detail={flag.detail}" in line for line in lines), lines

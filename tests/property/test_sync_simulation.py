@@ -11,7 +11,7 @@ from random.Random(seed), so any failure replays exactly:
 SHARDSIEVE_SIM_SCHEDULES=<n> changes how many seeds the full run covers (default 10,000).
 
 Checked:
-- during the run, promise 1 (ARCHITECTURE.md): once the coordinator's replica position
+- during the run, no false negatives once synced (docs/architecture.md#1-no-false-negatives-once-synced): once the coordinator's replica position
   covers the point at which a key was added (and the key is still live on the node), the
   replica contains the key;
 - at the end of each schedule, after a quiet period of reliable delivery, the replica
@@ -78,7 +78,7 @@ class Simulation:
         self.universe = [f"parcel-{i:03d}" for i in range(rng.randint(8, 48))]
         self.live: set[str] = set()
         self.added_at: dict[str, tuple[list[tuple[int, int]], int]] = {}
-        self.seen: set[str] = set()   # live keys the coordinator has applied (promise 1 holds for them)
+        self.seen: set[str] = set()   # live keys the coordinator has applied (no false negatives from here on)
         geometry = Geometry(bits=rng.choice((1024, 2048, 4096)), hashes=rng.randint(2, 7), seed=rng.randint(0, 9))
         self.filter = CountingBloomFilter(geometry)
         initial = sorted(rng.sample(self.universe, rng.randint(0, len(self.universe) // 2)))
@@ -123,7 +123,7 @@ class Simulation:
             self.node.disconnect(PEER)   # the stream failed to open
             return
         self.link = link
-        link.to_node.extend(self.coord.open(link.stream_id, hello.hello, self.now))
+        link.to_node.extend(self.coord.open(link.stream_id, hello.hello, self.now).replies)
 
     def disconnect(self) -> None:
         if self.link is not None:
@@ -154,8 +154,8 @@ class Simulation:
         if self.link is None:
             return
         capacity = self.rng.choice((60, 120, 250))
-        msg = self.coord.request_rebuild(NODE, capacity, 0.01, "simulated saturation", self.now)
-        self.link.to_node.append(msg)
+        result = self.coord.request_rebuild(NODE, capacity, 0.01, "simulated saturation", self.now)
+        self.link.to_node.extend(result.replies)
 
     def send(self, queue: list, msg: object, reliable: bool) -> None:
         if not reliable and self.rng.random() < self.loss:
@@ -212,7 +212,7 @@ class Simulation:
             return
         msg = self._take(link.to_coord, reliable)
         try:
-            replies = self.coord.receive(NODE, link.stream_id, msg, self.now)
+            replies = self.coord.receive(NODE, link.stream_id, msg, self.now).replies
         except ProtocolViolation as exc:  # pragma: no cover - would be a protocol bug
             raise AssertionError(f"coordinator refused a node message: {exc!r}") from exc
         for reply in replies:
@@ -263,7 +263,7 @@ class Simulation:
                 else:
                     continue
             if not all(bits[int(p)] for p in self.positions(key, replica.geometry)[0]):
-                raise AssertionError(f"promise 1 broken: key {key!r} (added at {self.added_at.get(key)}) was "
+                raise AssertionError(f"false negative once synced: key {key!r} (added at {self.added_at.get(key)}) was "
                                      f"applied by the coordinator, yet the replica at {pos} does not hold it")
 
     # ------------------------------------------------------------------ schedule
@@ -362,7 +362,7 @@ class Simulation:
         self.link = Link(stream_id=self.streams)
         self.node.connect(PEER, self.now)
         (hello,) = self.take_ready(0)
-        self.link.to_node.extend(self.coord.open(self.link.stream_id, hello.hello, self.now))
+        self.link.to_node.extend(self.coord.open(self.link.stream_id, hello.hello, self.now).replies)
 
     def converged(self) -> bool:
         replica = self.sink.replicas.get(NODE)

@@ -1,4 +1,5 @@
-"""Read-your-writes hints: when they may go (coordinator/hints.py, Fleet.add_hint/expire_hints).
+"""Read-your-writes hints: when they may go (coordinator/hints.py; Router.hold_hint and
+Operations.expire_hints around it).
 
 Rule under test (docs/coordinator.md, freshness contract (b); docs/sync-protocol.md, "The
 rebuild hand-over"): a hint goes only once the key is certainly routable without it — the
@@ -6,7 +7,8 @@ replica reached the acknowledged (epoch, sequence), or the old-epoch position a 
 during a hand-over also landed at — or, as a last resort, after hint-max-age-s.
 
 The end-to-end tests run a real NodeCore (store + counting filter + NodeSync) against a real
-CoordinatorSync applying into a Fleet, message by message, and check after every message,
+CoordinatorSync behind the coordinator's shell (its events reach the hint table), message by
+message, and check after every message,
 for every key written through the Router, that the node is a candidate. Whether the replica
 really holds a key is judged independently of the project's code: the key's k positions are
 recomputed from mmh3 by the published Kirsch–Mitzenmacher recipe (Kirsch & Mitzenmacher 2006;
@@ -23,16 +25,19 @@ from typing import Any
 import mmh3
 import pytest
 
-from shardsieve.coordinator.fleet import Fleet, NodeRecord
+from shardsieve.bloom import BloomFilter
 from shardsieve.coordinator.hints import HintTable
+from shardsieve.coordinator.metrics import FleetCollector
+from shardsieve.coordinator.operations import Operations
 from shardsieve.coordinator.policy import Policy
 from shardsieve.coordinator.probes import ProbeResult
 from shardsieve.coordinator.router_service import Router
+from shardsieve.coordinator.wiring import CoordinatorState, wire_state
 from shardsieve.node.core import Limits, NodeCore
 from shardsieve.node.service import _ack
 from shardsieve.node.store import MemoryStore
 from shardsieve.geometry import Geometry
-from shardsieve.sync.coordinator_side import CoordinatorSync
+from shardsieve.testing.replica_feed import NodeFeed
 from shardsieve.v1 import filter_pb2, storage_pb2, sync_pb2
 
 NODE = "node-heron-2"
@@ -115,12 +120,23 @@ def kirsch_mitzenmacher(key: bytes, g: Geometry) -> list[int]:
     return [(((h1 + i * h2) % 2**64) * g.bits) >> 64 for i in range(g.hashes)]
 
 
-def replica_holds(fleet: Fleet, key: bytes) -> bool:
-    g = fleet.index.geometry_of(NODE)
+def replica_holds(state: CoordinatorState, key: bytes) -> bool:
+    g = state.replicas.geometry_of(NODE)
     if g is None:
         return False
-    column = fleet.index.column(NODE)
+    column = state.replicas.column(NODE)
     return all(column[p] for p in kirsch_mitzenmacher(key, g))
+
+
+def operations(state: CoordinatorState, hint_max_age_s: float) -> Operations:
+    """The coordinator's operations, with nothing to send (no node stream in these tests)."""
+    return Operations(state.shell, state.readings, state.monitor, state.policy, state.hints, state.membership,
+                      send=lambda messages: None, hint_max_age_s=hint_max_age_s)
+
+
+def router(state: CoordinatorState, prober: Any, ops: Operations, clock: Any) -> Router:
+    return Router(state.candidates, state.shell, state.membership, state.hints, state.accounting, state.policy,
+                  prober, expire_hints=ops.expire_hints, clock=clock)
 
 
 class CoreProber:
@@ -160,9 +176,11 @@ class Link:
                              background_rebuild=False, storage_address="127.0.0.1:7101")
         self.core.load()
         self.core.put_many([(f"oyster-{i}".encode(), b"v") for i in range(keys)])
-        self.fleet = Fleet(Policy(stale_after_s=60.0), hint_max_age_s=300.0)
-        self.sync = CoordinatorSync(self.fleet)
-        self.router = Router(self.fleet, CoreProber(self.core), clock=lambda: self.t)  # type: ignore[arg-type]
+        self.state = wire_state(Policy(stale_after_s=60.0))
+        self.shell = self.state.shell
+        self.hints = self.state.hints
+        self.operations = operations(self.state, hint_max_age_s=300.0)
+        self.router = router(self.state, CoreProber(self.core), self.operations, lambda: self.t)
         self.written: list[bytes] = []
         self.refuse_rebuild = False
         self.on_rebuild_chunk: Any = None
@@ -173,25 +191,26 @@ class Link:
         self.outbox = ListOutbox()
         self.core.open_stream(PEER, self.outbox, self.t)
         hello, *rest = self.outbox.take()
-        self._observe(self.sync.open(1, hello.hello, self.t))
+        self._take(self.shell.open(1, hello.hello, self.t).replies)
         assert not rest
         self.pump()
 
-    def _observe(self, replies: list[sync_pb2.CoordinatorMessage]) -> None:
-        view = self.sync.node(NODE)
-        assert view is not None
-        self.fleet.observe(view)
+    def position(self) -> tuple[int, int] | None:
+        with self.shell.lock:
+            return self.shell.position(NODE)
+
+    def _take(self, replies: tuple[sync_pb2.CoordinatorMessage, ...]) -> None:
         self.to_node.extend(replies)
         self.check()
 
     def check(self) -> None:
         """Read-your-writes after every message: each key written is listed (filter or hint)."""
-        row = self.fleet.candidates(self.written, self.t)
+        row = self.state.candidates.find(self.written, self.t).rows()
         for key, cands in zip(self.written, row):
             if NODE not in {c.node_id for c in cands}:
-                self.violations.append(f"{key!r} not a candidate at replica {self.fleet.applied(NODE)}")
-            hinted = key in {k for k in self.written if NODE in self.fleet.hints.lookup(k)}
-            if not hinted and not replica_holds(self.fleet, key):
+                self.violations.append(f"{key!r} not a candidate at replica {self.position()}")
+            hinted = NODE in self.hints.lookup(key)
+            if not hinted and not replica_holds(self.state, key):
                 self.violations.append(f"hint of {key!r} gone but the replica lacks it")
 
     def write(self, key: bytes) -> storage_pb2.WriteAck:
@@ -221,7 +240,7 @@ class Link:
                         self.to_node.append(sync_pb2.CoordinatorMessage(node_id=NODE, snapshot_rejected=(
                             sync_pb2.SnapshotRejected(snapshot_id=chunk.snapshot_id, detail="refused by the test"))))
                     continue
-                self._observe(self.sync.receive(NODE, 1, msg, self.t))
+                self._take(self.shell.receive(NODE, 1, msg, self.t).replies)
             self.t += 0.05
         raise AssertionError("the link did not go quiet")
 
@@ -235,7 +254,7 @@ class Link:
 def test_a_write_during_an_abandoned_rebuild_clears_once_the_old_epoch_covers_it() -> None:
     link = Link()
     old_epoch = link.core.epoch
-    assert link.fleet.applied(NODE) is not None and len(link.fleet.hints) == 0
+    assert link.position() is not None and len(link.hints) == 0
     link.refuse_rebuild = True
     held: list[Any] = []
 
@@ -245,8 +264,8 @@ def test_a_write_during_an_abandoned_rebuild_clears_once_the_old_epoch_covers_it
         # the rebuild is abandoned
         key = f"kelp-{chunk.snapshot_id}".encode()
         ack = link.write(key)
-        assert ack.epoch == chunk.epoch and link.fleet.hints.lookup(key) == [NODE]
-        held.extend(h for h in link.fleet.hints.held(NODE) if h.key == key)
+        assert ack.epoch == chunk.epoch and link.hints.lookup(key) == [NODE]
+        held.extend(h for h in link.hints.held(NODE) if h.key == key)
 
     link.on_rebuild_chunk = write_past_the_split_point
     new_epoch = link.start_rebuild()
@@ -257,13 +276,13 @@ def test_a_write_during_an_abandoned_rebuild_clears_once_the_old_epoch_covers_it
     link.pump()
 
     assert link.core.epoch == old_epoch and len(link.refused) == len(held) == 3   # 3 attempts, then abandoned
-    replica = link.fleet.applied(NODE)
+    replica = link.position()
     assert replica is not None and replica[0] == old_epoch     # the replica never reached the new epoch
     for hint in held:
         assert hint.position[0] == new_epoch and hint.old is not None and hint.old[0] == old_epoch
         assert replica < hint.position                          # the new-epoch position is never covered...
-        assert replica_holds(link.fleet, hint.key)
-    assert len(link.fleet.hints) == 0                           # ...yet no hint is left behind
+        assert replica_holds(link.state, hint.key)
+    assert len(link.hints) == 0                                 # ...yet no hint is left behind
     assert link.violations == []
 
 
@@ -275,16 +294,16 @@ def test_without_the_old_position_the_hint_would_stay_until_its_age_runs_out(cap
     result = link.core.put_many([(b"kelp-no-old", b"v")])[0]
     link.written.append(b"kelp-no-old")
     # what a coordinator gets from a node that does not report the old position
-    link.fleet.add_hint(b"kelp-no-old", NODE, result.epoch, result.sequence, now=link.t)
+    link.router.hold_hint(b"kelp-no-old", NODE, result.epoch, result.sequence, now=link.t)
     link.pump()
-    assert link.core.epoch == old_epoch and link.fleet.applied(NODE)[0] == old_epoch   # type: ignore[index]
-    assert link.fleet.hints.lookup(b"kelp-no-old") == [NODE]     # never covered: the leak
+    assert link.core.epoch == old_epoch and link.position()[0] == old_epoch   # type: ignore[index]
+    assert link.hints.lookup(b"kelp-no-old") == [NODE]           # never covered: the leak
     added = link.t
-    assert link.fleet.expire_hints(added + 299.0) == []          # nothing drops before the bound
-    with caplog.at_level(logging.WARNING, logger="shardsieve.coordinator.fleet"):
-        (gone,) = link.fleet.expire_hints(added + 301.0)
+    assert link.operations.expire_hints(added + 299.0) == []     # nothing drops before the bound
+    with caplog.at_level(logging.WARNING, logger="shardsieve.coordinator.operations"):
+        (gone,) = link.operations.expire_hints(added + 301.0)
     assert gone.position == (new_epoch, result.sequence)
-    assert link.fleet.hints.lookup(b"kelp-no-old") == [] and link.fleet.hints_expired == 1
+    assert link.hints.lookup(b"kelp-no-old") == [] and link.hints.expired_unapplied == 1
     (record,) = [r for r in caplog.records if "expired" in r.getMessage()]
     assert (record.node_id, record.hint_epoch, record.hint_sequence) == (NODE, new_epoch, result.sequence)
     assert record.replica_epoch == old_epoch and record.age_s >= 300.0
@@ -303,25 +322,38 @@ def test_a_switched_rebuild_clears_hints_by_the_new_epoch_and_nothing_drops_earl
     new_epoch = link.start_rebuild()
     link.write(b"kelp-before-split")
     link.pump()
-    assert link.fleet.applied(NODE)[0] == new_epoch and late    # type: ignore[index]
+    assert link.position()[0] == new_epoch and late    # type: ignore[index]
     link.write(b"kelp-after-switch")
-    assert link.fleet.hints.lookup(b"kelp-after-switch") == [NODE]
+    assert link.hints.lookup(b"kelp-after-switch") == [NODE]
     link.pump()
-    assert len(link.fleet.hints) == 0 and link.violations == []
+    assert len(link.hints) == 0 and link.violations == []
 
 
 def test_an_expired_hint_whose_write_arrived_is_not_reported() -> None:
-    fleet = Fleet(Policy(), hint_max_age_s=5.0)
-    fleet.nodes[NODE] = NodeRecord(NODE, "127.0.0.1:7101", connected=True, synced=True, epoch=3, sequence=9)
-    assert fleet.add_hint(b"x", NODE, 3, 10, now=0.0)
-    fleet.nodes[NODE].sequence = 10        # applied, but the table has not heard yet
-    assert fleet.expire_hints(now=10.0) == [] and fleet.hints_expired == 0 and len(fleet.hints) == 0
+    hints = HintTable()
+    assert hints.add(b"x", NODE, 3, 10, applied=(3, 9), now=0.0)
+    # applied (the replica is at (3, 10)) but dropped by age before the table heard of it
+    assert hints.expire(10.0, 5.0, position_of=lambda node_id: (3, 10)) == []
+    assert hints.expired_unapplied == 0 and len(hints) == 0
+    assert hints.add(b"y", NODE, 3, 11, applied=(3, 10), now=20.0)
+    (lacking,) = hints.expire(30.0, 5.0, position_of=lambda node_id: (3, 10))
+    assert lacking.key == b"y" and hints.expired_unapplied == 1
+
+
+def _synced_at_epoch_3(hint_max_age_s: float) -> tuple[CoordinatorState, Router, Operations]:
+    state = wire_state(Policy())
+    ops = operations(state, hint_max_age_s)
+    NodeFeed(state.shell, NODE, BloomFilter(Geometry(bits=1024, hashes=3)), address="127.0.0.1:7101",
+             epoch=3).connect(0.0)
+    return state, router(state, CoreProber(None), ops, lambda: 0.0), ops   # type: ignore[arg-type]
 
 
 @pytest.mark.parametrize("unknown", ["node-never-seen"])
-def test_a_hint_for_a_node_the_fleet_does_not_know_is_not_held(unknown: str) -> None:
-    fleet = Fleet(Policy())
-    assert not fleet.add_hint(b"x", unknown, 1, 1, now=0.0) and len(fleet.hints) == 0
+def test_a_hint_for_a_node_the_coordinator_does_not_know_is_not_held(unknown: str) -> None:
+    state, route, _ = _synced_at_epoch_3(5.0)
+    assert not route.hold_hint(b"x", unknown, 1, 1, now=0.0) and len(state.hints) == 0
+    assert not route.hold_hint(b"x", NODE, 3, 0, now=0.0)    # its replica already holds (3, 0)
+    assert route.hold_hint(b"x", NODE, 3, 1, now=0.0) and state.hints.lookup(b"x") == [NODE]
 
 
 def test_hints_held_and_expired_are_prometheus_metrics() -> None:
@@ -330,20 +362,17 @@ def test_hints_held_and_expired_are_prometheus_metrics() -> None:
     from prometheus_client import CollectorRegistry, generate_latest
     from prometheus_client.parser import text_string_to_metric_families
 
-    from shardsieve.coordinator.metrics import FleetCollector
-
-    fleet = Fleet(Policy(), hint_max_age_s=5.0)
-    fleet.nodes[NODE] = NodeRecord(NODE, "127.0.0.1:7101", connected=True, synced=True, epoch=3, sequence=9)
+    state, route, ops = _synced_at_epoch_3(5.0)
     registry = CollectorRegistry()
-    registry.register(FleetCollector(fleet, clock=lambda: 0.0))
+    registry.register(FleetCollector(state.readings, clock=lambda: 0.0))
 
     def scrape() -> dict[str, float]:
         text = generate_latest(registry).decode()
         return {s.name: s.value for f in text_string_to_metric_families(text) for s in f.samples}
 
-    assert fleet.add_hint(b"kelp-late", NODE, 3, 10, now=0.0) and fleet.add_hint(b"kelp-later", NODE, 3, 11, now=4.0)
+    assert route.hold_hint(b"kelp-late", NODE, 3, 10, now=0.0) and route.hold_hint(b"kelp-later", NODE, 3, 11, now=4.0)
     before = scrape()
     assert before["shardsieve_coordinator_hints"] == 2 and before["shardsieve_coordinator_hints_expired_total"] == 0
-    assert len(fleet.expire_hints(now=6.0)) == 1     # the first is 6 s old, past the 5 s bound; never applied
+    assert len(ops.expire_hints(now=6.0)) == 1      # the first is 6 s old, past the 5 s bound; never applied
     after = scrape()
     assert after["shardsieve_coordinator_hints"] == 1 and after["shardsieve_coordinator_hints_expired_total"] == 1

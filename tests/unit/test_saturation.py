@@ -7,7 +7,7 @@ import math
 import pytest
 
 from shardsieve.coordinator.policy import Policy, PolicyError
-from shardsieve.coordinator.saturation import NodeView, SaturationMonitor, saturation_reasons
+from shardsieve.coordinator.saturation import FilterReading, SaturationMonitor, saturation_reasons
 from shardsieve.geometry import geometry_for
 from shardsieve.sizing import false_positive_rate
 
@@ -15,12 +15,12 @@ POLICY = Policy(target_fpr=0.01, saturation_ratio=2.0, growth=2.0, min_capacity=
 
 
 def _view(node_id: str, keys: int, capacity: int, *, epoch: int = 1, fill: float | None = None,
-          checked: int = 0, fps: int = 0) -> NodeView:
+          checked: int = 0, fps: int = 0) -> FilterReading:
     geo = geometry_for(capacity, POLICY.target_fpr)
     if fill is None:
         # Expected fill after n inserts, 1 - e^(-kn/m) (Broder & Mitzenmacher 2004, section 2).
         fill = -math.expm1(-geo.hashes * keys / geo.bits)
-    return NodeView(node_id, epoch, keys, capacity, fill, geo.hashes, geo.bits, checked, fps)
+    return FilterReading(node_id, epoch, keys, capacity, fill, geo.hashes, geo.bits, checked, fps)
 
 
 def test_healthy_node_is_not_flagged() -> None:

@@ -291,6 +291,7 @@ def test_decode_guard_answers_invalid_argument_for_garbage(guarded: tuple[grpc.C
 def test_second_stream_needs_the_same_identity_as_the_connected_one() -> None:
     import queue
 
+    from shardsieve.coordinator.shell import CoordinatorShell
     from shardsieve.coordinator.sync_service import SyncService
     from shardsieve.sync.coordinator_side import CoordinatorSync, DictReplicaSink
 
@@ -298,8 +299,7 @@ def test_second_stream_needs_the_same_identity_as_the_connected_one() -> None:
             ("open", PeerIdentity("10.0.0.1"), PeerIdentity("10.0.0.1"), PeerIdentity("10.0.0.2")),
             ("certificate", PeerIdentity("10.0.0.1", ("n1",)), PeerIdentity("10.0.0.9", ("n1",)),
              PeerIdentity("10.0.0.1", ("n2",)))):
-        svc = SyncService(None, CoordinatorSync(DictReplicaSink()),  # type: ignore[arg-type]
-                          authorizer=NodeAuthorizer(mode))
+        svc = SyncService(CoordinatorShell(CoordinatorSync(DictReplicaSink())), authorizer=NodeAuthorizer(mode))
         assert svc._refusal("n1", first) is None                   # nobody connected yet
         svc._outbox["n1"] = queue.Queue()                          # n1's stream is open
         svc._identity["n1"] = svc.authorizer.identity_key(first)

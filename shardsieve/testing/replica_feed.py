@@ -1,0 +1,114 @@
+"""Plays one node towards a coordinator's protocol object, with the real sync messages.
+
+For tests and benchmarks of the coordinator without a node process: `NodeFeed` holds a
+BloomFilter and sends what a node would (Hello, snapshot chunks, deltas, heartbeats) to
+anything with CoordinatorSync's open / receive / close (the protocol object itself, or the
+coordinator's shell, which also dispatches the events). Replies are returned, not consumed.
+
+    feed = NodeFeed(shell, "node-kelp-1", bloom, address="127.0.0.1:7101")
+    feed.connect(now)                  # Hello + snapshot: a verified replica, in sync
+    feed.add([b"crate-9"], now)        # one delta adding the key
+    feed.heartbeat(now)                # heard from again
+    feed.close(now)                    # stream down (stale)
+"""
+
+from __future__ import annotations
+
+import itertools
+from collections.abc import Hashable
+from typing import Protocol, Sequence
+
+from shardsieve.bloom import BloomFilter
+from shardsieve.changeset import ChangeSet
+from shardsieve.codec import encode_delta
+from shardsieve.hashing import positions
+from shardsieve.snapshot import encode_snapshot
+from shardsieve.sync.coordinator_side import SyncResult
+from shardsieve.v1 import filter_pb2, sync_pb2
+
+_STREAMS = itertools.count(1_000_000)   # stream ids of their own, apart from the caller's
+
+
+class SyncTarget(Protocol):
+    def open(self, stream_id: Hashable, hello: sync_pb2.Hello, now: float) -> SyncResult: ...
+
+    def receive(self, node_id: str, stream_id: Hashable, msg: sync_pb2.NodeMessage, now: float) -> SyncResult: ...
+
+    def close(self, node_id: str, stream_id: Hashable, now: float) -> SyncResult: ...
+
+
+class NodeFeed:
+    """One node's side of a stream: its filter, epoch and sequence, and the messages they make."""
+
+    def __init__(self, target: SyncTarget, node_id: str, bloom: BloomFilter, *, address: str = "",
+                 capacity: int = 1000, key_count: int = 0, epoch: int = 1) -> None:
+        self.target = target
+        self.node_id = node_id
+        self.bloom = bloom
+        self.address = address
+        self.capacity = capacity
+        self.key_count = key_count
+        self.epoch = epoch
+        self.sequence = 0
+        self.stream_id: Hashable | None = None
+        self._snapshot_ids = itertools.count(1)
+
+    def hello(self) -> sync_pb2.Hello:
+        return sync_pb2.Hello(node_id=self.node_id, storage_address=self.address,
+                              geometry=self.bloom.geometry.to_proto(), epoch=self.epoch, sequence=self.sequence,
+                              checksum=self.bloom.checksum, key_count=self.key_count, capacity=self.capacity,
+                              target_fpr=0.01, push_interval_ms=50, protocol_version=1,
+                              history_floor=self.sequence)
+
+    def connect(self, now: float) -> list[sync_pb2.CoordinatorMessage]:
+        """Open a new stream and send a snapshot: the replica then equals this filter."""
+        self.stream_id = next(_STREAMS)
+        replies = list(self.target.open(self.stream_id, self.hello(), now).replies)
+        return replies + self.snapshot(now)
+
+    def snapshot(self, now: float) -> list[sync_pb2.CoordinatorMessage]:
+        enc = encode_snapshot(self.bloom)
+        snapshot_id = next(self._snapshot_ids)
+        replies: list[sync_pb2.CoordinatorMessage] = []
+        for i, data in enumerate(enc.chunks):
+            replies += self.send(sync_pb2.NodeMessage(snapshot_chunk=filter_pb2.SnapshotChunk(
+                snapshot_id=snapshot_id, epoch=self.epoch, sequence=self.sequence,
+                geometry=self.bloom.geometry.to_proto(), encoding=enc.encoding,
+                purpose=filter_pb2.SNAPSHOT_PURPOSE_RESYNC, chunk_index=i, chunk_count=enc.chunk_count,
+                total_bytes=enc.total_bytes, data=data, checksum=self.bloom.checksum, key_count=self.key_count,
+                capacity=self.capacity)), now)
+        return replies
+
+    def delta(self, changes: ChangeSet) -> sync_pb2.NodeMessage:
+        """The next delta (applied to this filter; not sent)."""
+        self.bloom.apply(changes)
+        self.sequence += 1
+        return sync_pb2.NodeMessage(delta=filter_pb2.Delta(
+            epoch=self.epoch, sequence=self.sequence, payload=encode_delta(changes, self.bloom.geometry.bits),
+            checksum=self.bloom.checksum, key_count=self.key_count))
+
+    def add(self, keys: Sequence[bytes], now: float) -> list[sync_pb2.CoordinatorMessage]:
+        """Add keys to the filter and send the delta that carries them."""
+        pos = {int(p) for p in positions(list(keys), self.bloom.geometry).ravel()}
+        self.key_count += len(keys)
+        changes = ChangeSet.of(sorted(p for p in pos if not self.bloom.bits[p]), [])
+        return self.send(self.delta(changes), now)
+
+    def skip(self, now: float) -> list[sync_pb2.CoordinatorMessage]:
+        """Lose one delta and send the one after it: a gap (the coordinator asks for a snapshot)."""
+        self.delta(ChangeSet.of([], []))
+        return self.send(self.delta(ChangeSet.of([], [])), now)
+
+    def heartbeat(self, now: float, **stats: object) -> list[sync_pb2.CoordinatorMessage]:
+        return self.send(sync_pb2.NodeMessage(heartbeat=sync_pb2.Heartbeat(stats=sync_pb2.NodeStats(
+            key_count=self.key_count, capacity=self.capacity, epoch=self.epoch, sequence=self.sequence,
+            **stats))), now)  # type: ignore[arg-type]
+
+    def send(self, msg: sync_pb2.NodeMessage, now: float) -> list[sync_pb2.CoordinatorMessage]:
+        assert self.stream_id is not None, "connect() first"
+        return list(self.target.receive(self.node_id, self.stream_id, msg, now).replies)
+
+    def close(self, now: float) -> None:
+        if self.stream_id is not None:
+            self.target.close(self.node_id, self.stream_id, now)
+            self.stream_id = None
