@@ -8,7 +8,7 @@ was probed, and whether the probe found the key. From that it derives:
 Predicted FPR (fill^k) lives in shardsieve/sizing.py, avoided fan-out in shardsieve/fanout.py.
 
 It subscribes to the sync events: a replica installed in a new epoch restarts that node's
-observed FPR (the old counts describe the old filter), a forgotten node loses its counters.
+observed FPR (the old counts describe the old filter), an unlisted node loses its counters.
 Not thread-safe: the coordinator calls it under its one lock (docs/architecture.md#how-events-flow).
 """
 
@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from typing import Iterable
 
 from shardsieve.intervals import wilson_interval
-from shardsieve.sync.coordinator_side import NodeForgotten, ReplicaInstalled, SyncEvent
+from shardsieve.sync.coordinator_side import NodeUnlisted, ReplicaInstalled, SyncEvent
 
 
 @dataclass
@@ -113,7 +113,7 @@ class Accounting:
             c.false_positives = 0
         c.epoch = epoch
 
-    def forget(self, node_id: str) -> None:
+    def drop_node(self, node_id: str) -> None:
         self.nodes.pop(node_id, None)
 
     def snapshot(self) -> tuple[dict[str, NodeCounters], FleetTotals]:
@@ -123,5 +123,5 @@ class Accounting:
     def on_event(self, event: SyncEvent) -> None:
         if isinstance(event, ReplicaInstalled):
             self.new_epoch(event.node_id, event.epoch)
-        elif isinstance(event, NodeForgotten):
-            self.forget(event.node_id)
+        elif isinstance(event, NodeUnlisted):
+            self.drop_node(event.node_id)

@@ -1,5 +1,5 @@
 """Admin servicer: fleet status, node detail, rebuilds (with dry-run plans), policy, decisions,
-decommissioning (ForgetNode).
+unlisting a node gone for good (UnlistNode).
 
 A thin adapter: figures come from coordinator/readings.py, actions and the decision log from
 coordinator/operations.py, the policy from its holder. The admin token is checked before a
@@ -127,20 +127,20 @@ class AdminService(admin_pb2_grpc.AdminServicer):
     def Decisions(self, request: admin_pb2.DecisionsRequest, context: grpc.ServicerContext) -> admin_pb2.DecisionsReply:
         return admin_pb2.DecisionsReply(decisions=[_decision_proto(d) for d in self.operations.decisions(request.limit)])
 
-    def ForgetNode(self, request: admin_pb2.ForgetNodeRequest, context: grpc.ServicerContext) -> admin_pb2.ForgetNodeReply:
+    def UnlistNode(self, request: admin_pb2.UnlistNodeRequest, context: grpc.ServicerContext) -> admin_pb2.UnlistNodeReply:
         node_id = request.node_id
         if not node_id:
-            context.abort(grpc.StatusCode.INVALID_ARGUMENT, "name the node id to forget")
+            context.abort(grpc.StatusCode.INVALID_ARGUMENT, "name the node id to unlist")
         try:
-            gone = self.operations.forget(node_id, request.force)
+            gone = self.operations.unlist(node_id, request.force)
         except KeyError:
             context.abort(grpc.StatusCode.NOT_FOUND,
                           f"no node {node_id!r} is known (known: {self._known()}); nothing changed")
         except NodeConnected:
             context.abort(grpc.StatusCode.FAILED_PRECONDITION,
                           f"node {node_id!r} is connected (its sync stream is open), so it is not gone; nothing "
-                          "changed. Stop it first, or set force (`shardsieve forget --force`) to forget it anyway (it "
+                          "changed. Stop it first, or set force (`shardsieve unlist --force`) to unlist it anyway (it "
                           "comes back as a new node if it reconnects)")
-        return admin_pb2.ForgetNodeReply(node_id=node_id, was_connected=gone.was_connected,
+        return admin_pb2.UnlistNodeReply(node_id=node_id, was_connected=gone.was_connected,
                                          had_replica=gone.had_replica, hints_dropped=gone.hints_dropped,
                                          key_count=gone.key_count, address=gone.address)

@@ -11,7 +11,7 @@ resort, when the hint is older than a bound (`expire`), returned to the caller t
 numbers (safe mode still lists a stale node).
 
 The table subscribes to the sync events: a replica that advanced or was installed drops the
-hints it covers, a forgotten node drops all of its hints.
+hints it covers, an unlisted node drops all of its hints.
 
 Pure: no clocks (the caller passes `now`), no I/O. Not thread-safe: the coordinator calls it
 under its one lock (docs/architecture.md#how-events-flow).
@@ -24,7 +24,7 @@ from dataclasses import dataclass
 from typing import Callable, Iterable, Sequence
 
 from shardsieve.sync.coordinator_side import (
-    NodeForgotten,
+    NodeUnlisted,
     Position,
     ReplicaAdvanced,
     ReplicaInstalled,
@@ -167,7 +167,7 @@ class HintTable:
         return lacking
 
     def drop_node(self, node_id: str) -> int:
-        """Forget every hint of node_id (the node was decommissioned); returns how many."""
+        """Drop every hint of node_id (the node was unlisted); returns how many."""
         keys = [k for k, per_key in self._by_key.items() if node_id in per_key]
         for key in keys:
             self._drop(key, node_id)
@@ -202,8 +202,8 @@ class HintTable:
 
     # -- subscriber -------------------------------------------------------------------------------
     def on_event(self, event: SyncEvent) -> None:
-        """A replica that moved drops the hints it now covers; a forgotten node drops all of its."""
+        """A replica that moved drops the hints it now covers; an unlisted node drops all of its."""
         if isinstance(event, (ReplicaAdvanced, ReplicaInstalled)):
             self.applied(event.node_id, event.epoch, event.sequence)
-        elif isinstance(event, NodeForgotten):
+        elif isinstance(event, NodeUnlisted):
             self.drop_node(event.node_id)

@@ -3,11 +3,11 @@
 Known nodes: the ones expected from the settings (expect-node), the ones remembered in the
 state dir's membership file (nodes.json) and every node that opened a sync stream. A known
 node is listed stale until it has a verified replica, so after a coordinator restart safe mode
-lists every remembered node until it resyncs instead of forgetting it exists
+lists every remembered node until it resyncs instead of losing track of it
 (docs/coordinator.md, "Freshness contract" (c); docs/architecture.md#3-bounded-staleness).
 
 `Membership` subscribes to the sync events: StreamOpened records the node and its storage
-address (persisted when it changed), NodeForgotten drops it. It is called under the
+address (persisted when it changed), NodeUnlisted drops it. It is called under the
 coordinator's lock like every other subscriber.
 """
 
@@ -21,7 +21,7 @@ from types import MappingProxyType
 from typing import Mapping
 
 from shardsieve.coordinator.policy import Policy
-from shardsieve.sync.coordinator_side import NodeForgotten, NodeState, StreamOpened, SyncEvent
+from shardsieve.sync.coordinator_side import NodeUnlisted, NodeState, StreamOpened, SyncEvent
 
 log = logging.getLogger("shardsieve.coordinator.membership")
 
@@ -29,8 +29,8 @@ MEMBERSHIP_FILE = "nodes.json"
 
 
 def fresh_nodes(synced_heard: Mapping[str, float], policy: Policy, now: float) -> set[str]:
-    """The freshness rule. `synced_heard`: when each node in sync was last heard from
-    (CoordinatorSync.synced_heard). Fresh: in sync and heard from within stale-after-s. Every
+    """The freshness rule. `synced_heard`: when each node synced was last heard from
+    (CoordinatorSync.synced_heard). Fresh: synced and heard from within stale-after-s. Every
     other known node is stale: not known to the protocol yet, stream down, no verified replica,
     a snapshot outstanding (the replica may lack changes), or silent for stale-after-s."""
     after = policy.stale_after_s
@@ -43,7 +43,7 @@ def is_stale(node: NodeState | None, policy: Policy, now: float) -> bool:
 
 
 def state_name(node: NodeState | None, policy: Policy, now: float, rebuild_in_flight: bool) -> str:
-    """The state shown in status: disconnected, syncing, rebuilding, stale or in-sync.
+    """The state shown in status: disconnected, syncing, rebuilding, stale or fresh.
 
     rebuild_in_flight: the saturation monitor is waiting for a rebuild of this node; the
     node's latest heartbeat also says when it is rebuilding on its own."""
@@ -53,7 +53,7 @@ def state_name(node: NodeState | None, policy: Policy, now: float, rebuild_in_fl
         return "syncing"
     if rebuild_in_flight or (node.stats is not None and node.stats.rebuild_phase):
         return "rebuilding"
-    return "stale" if is_stale(node, policy, now) else "in-sync"
+    return "stale" if is_stale(node, policy, now) else "fresh"
 
 
 class Membership:
@@ -88,7 +88,7 @@ class Membership:
             if known is None or (event.address and event.address != known):
                 self._addresses = {**self._addresses, event.node_id: event.address or (known or "")}
                 self._save()
-        elif isinstance(event, NodeForgotten):
+        elif isinstance(event, NodeUnlisted):
             if event.node_id in self._addresses:
                 self._addresses = {n: a for n, a in self._addresses.items() if n != event.node_id}
                 self._save()

@@ -1,5 +1,5 @@
 """What the coordinator does to its fleet, in one place: rebuilds (asked by an operator or by the
-saturation monitor), forgetting a node, the monitor's periodic pass, and the decision log.
+saturation monitor), unlisting a node, the monitor's periodic pass, and the decision log.
 
 Each action runs under the coordinator's lock, goes through CoordinatorSync (via the shell, so
 its events reach every subscriber) and sends what the node must hear on the node's stream
@@ -29,12 +29,12 @@ Send = Callable[[Sequence[sync_pb2.CoordinatorMessage]], None]
 
 
 class NodeConnected(Exception):
-    """ForgetNode without force for a node whose sync stream is open."""
+    """UnlistNode without force for a node whose sync stream is open."""
 
 
 @dataclass(frozen=True)
-class Forgotten:
-    """What a forgotten node left behind (the ForgetNode reply)."""
+class Unlisted:
+    """What an unlisted node left behind (the UnlistNode reply)."""
 
     node_id: str
     address: str
@@ -45,7 +45,7 @@ class Forgotten:
 
 
 class Operations:
-    """Rebuilds, forgetting, the monitor's pass and the decision log."""
+    """Rebuilds, unlisting, the monitor's pass and the decision log."""
 
     def __init__(self, shell: CoordinatorShell, readings: Readings, monitor: SaturationMonitor, policy: LivePolicy,
                  hints: HintTable, membership: Membership, send: Send, *, hint_max_age_s: float = 300.0,
@@ -106,7 +106,7 @@ class Operations:
                 result = self._shell.request_rebuild(plan.node_id, plan.capacity, plan.target_fpr, plan.reason,
                                                      self._clock())
             except (KeyError, ValueError) as exc:
-                self._monitor.forget(plan.node_id)
+                self._monitor.drop_node(plan.node_id)
                 self.record([Decision(self._wall(), plan.node_id, "skip", f"rebuild not sent: {exc}")])
                 return False
             self._send(result.replies)
@@ -115,9 +115,9 @@ class Operations:
                 self._monitor.started(plan, state.epoch if state is not None else 0, now)
             return True
 
-    # -- forgetting -----------------------------------------------------------------------------------
-    def forget(self, node_id: str, force: bool = False) -> Forgotten:
-        """Decommission node_id: every part drops it (replica, hints, accounting, monitor, the
+    # -- unlisting -----------------------------------------------------------------------------------
+    def unlist(self, node_id: str, force: bool = False) -> Unlisted:
+        """Unlist node_id (gone for good): every part drops it (replica, hints, accounting, monitor, the
         membership file) and a connected node's stream ends. KeyError: not a known node;
         NodeConnected: its stream is open and force is not set. Either way nothing changes."""
         with self._shell.lock:
@@ -128,15 +128,15 @@ class Operations:
                 raise NodeConnected(node_id)
             address = self._membership.address(node_id) or ""
             hints = self._hints.count(node_id)
-            (gone,) = self._shell.forget(node_id).events
-            forgotten = Forgotten(node_id, address, gone.was_connected, gone.had_replica, hints, gone.key_count)
-            self.record([Decision(self._wall(), node_id, "forget",
-                                  f"forgotten by an operator{' (forced while connected)' if gone.was_connected else ''}"
+            (gone,) = self._shell.unlist(node_id).events
+            unlisted = Unlisted(node_id, address, gone.was_connected, gone.had_replica, hints, gone.key_count)
+            self.record([Decision(self._wall(), node_id, "unlist",
+                                  f"unlisted by an operator{' (forced while connected)' if gone.was_connected else ''}"
                                   f"; {gone.key_count} keys last reported, {hints} hints dropped")])
-        log.info("node forgotten", extra={"node_id": node_id, "address": address, "was_connected": gone.was_connected,
+        log.info("node unlisted", extra={"node_id": node_id, "address": address, "was_connected": gone.was_connected,
                                           "had_replica": gone.had_replica, "hints_dropped": hints,
                                           "key_count": gone.key_count})
-        return forgotten
+        return unlisted
 
     # -- the monitor's pass -------------------------------------------------------------------------
     def expire_hints(self, now: float) -> list[Hint]:

@@ -69,7 +69,7 @@ class Prober:
                     ("grpc.max_reconnect_backoff_ms", 1000),
                     ("grpc.dns_min_time_between_resolutions_ms", 500),
                     # Own subchannels: a fresh channel must not inherit a failed connection state
-                    # from a forgotten one to the same address (gRPC shares them process-wide).
+                    # from a dropped one to the same address (gRPC shares them process-wide).
                     ("grpc.use_local_subchannel_pool", 1),
                 ])
                 entry = self._stubs[address] = (channel, storage_pb2_grpc.NodeStorageStub(channel))
@@ -84,10 +84,10 @@ class Prober:
             return ProbeResult(node_id, reply=reply)
         except grpc.RpcError as exc:
             if exc.code() == grpc.StatusCode.UNAVAILABLE:
-                self._forget(address, stub)
+                self._drop_channel(address, stub)
             return ProbeResult(node_id, error=exc)
 
-    def _forget(self, address: str, stub: storage_pb2_grpc.NodeStorageStub) -> None:
+    def _drop_channel(self, address: str, stub: storage_pb2_grpc.NodeStorageStub) -> None:
         """Drop an unreachable node's cached channel, so the next probe resolves its name afresh
         (a restarted node may come back at another IP; a cached channel would keep the old one).
         Not closed here: calls of other threads may still use it; it closes when collected."""

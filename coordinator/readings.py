@@ -33,7 +33,7 @@ class NodeReading:
     connected: bool
     has_replica: bool
     stale: bool
-    state: str                        # disconnected, syncing, rebuilding, stale, in-sync
+    state: str                        # disconnected, syncing, rebuilding, stale, fresh
     geometry: Geometry | None
     epoch: int
     sequence: int
@@ -69,7 +69,7 @@ class NodeReading:
         c = self.counters
         return FilterReading(self.node_id, self.epoch, self.key_count, max(1, self.capacity), self.fill,
                              self.geometry.hashes, self.geometry.bits, c.lookups_checked if c else 0,
-                             c.false_positives if c else 0, in_sync=not self.stale)
+                             c.false_positives if c else 0, fresh=not self.stale)
 
 
 @dataclass(frozen=True)

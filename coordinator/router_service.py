@@ -206,7 +206,7 @@ class Router:
     def hold_hint(self, key: bytes, node_id: str, epoch: int, sequence: int, now: float,
                   old: tuple[int, int] | None = None) -> bool:
         """Hold a read-your-writes hint for a write node_id acknowledged at (epoch, sequence) (and
-        `old` during a hand-over) unless its replica already holds it; a node forgotten
+        `old` during a hand-over) unless its replica already holds it; a node unlisted
         meanwhile gets none. OverflowError when max-hints are held."""
         with self.shell.lock:
             if not self.membership.knows(node_id):

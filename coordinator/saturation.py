@@ -4,7 +4,7 @@ A plain object driven by ticks: `tick(now, nodes, policy)` takes a reading of ev
 node's filter and returns the decisions taken (with the numbers behind them) and the rebuilds
 to request. coordinator/operations.py sends the requests over the nodes' sync streams and keeps
 the decisions for the admin API. The monitor subscribes to the sync events only to drop a
-forgotten node. Not thread-safe: the coordinator calls it under its one lock.
+unlisted node. Not thread-safe: the coordinator calls it under its one lock.
 
 A node is saturated when (a) its predicted FPR fill^k is above ratio x target, (b) the lower
 end of the Wilson 95% interval of its observed FPR is above ratio x target, or (c) it holds
@@ -22,7 +22,7 @@ from shardsieve.coordinator.policy import Policy
 from shardsieve.geometry import Geometry, GeometryError, geometry_for
 from shardsieve.intervals import wilson_interval
 from shardsieve.sizing import fill_fpr
-from shardsieve.sync.coordinator_side import NodeForgotten, SyncEvent
+from shardsieve.sync.coordinator_side import NodeUnlisted, SyncEvent
 
 
 @dataclass(frozen=True)
@@ -38,7 +38,7 @@ class FilterReading:
     bits: int
     lookups_checked: int = 0
     false_positives: int = 0
-    in_sync: bool = True          # stream up and replica current: only such nodes are rebuilt
+    fresh: bool = True            # stream up, replica current, heard from lately: only such nodes are rebuilt
 
     @property
     def predicted_fpr(self) -> float:
@@ -167,14 +167,14 @@ class SaturationMonitor:
     def started(self, plan: RebuildPlan, epoch_before: int, now: float) -> None:
         self.in_flight[plan.node_id] = _InFlight(now, epoch_before, plan.capacity, plan.reason)
 
-    def forget(self, node_id: str) -> None:
+    def drop_node(self, node_id: str) -> None:
         self.in_flight.pop(node_id, None)
         self._below_since.pop(node_id, None)
         self.flagged.pop(node_id, None)
 
     def on_event(self, event: SyncEvent) -> None:
-        if isinstance(event, NodeForgotten):
-            self.forget(event.node_id)
+        if isinstance(event, NodeUnlisted):
+            self.drop_node(event.node_id)
 
     def tick(self, now: float, nodes: list[FilterReading], policy: Policy) -> TickResult:
         """Assess every node; finish, time out, flag and start rebuilds. Returns what it decided."""
@@ -207,7 +207,7 @@ class SaturationMonitor:
                 self.flagged[node.node_id] = reasons
             else:
                 self.flagged.pop(node.node_id, None)
-            if node.node_id in self.in_flight or not node.in_sync:
+            if node.node_id in self.in_flight or not node.fresh:
                 continue
             if now - self._last_done.get(node.node_id, -math.inf) < self.cooldown_s:
                 continue

@@ -62,9 +62,9 @@ class CoordinatorShell:
         with self.lock:
             return self._dispatch(self._sync.close(node_id, stream_id, now))
 
-    def forget(self, node_id: str) -> SyncResult:
+    def unlist(self, node_id: str) -> SyncResult:
         with self.lock:
-            return self._dispatch(self._sync.forget(node_id))
+            return self._dispatch(self._sync.unlist(node_id))
 
     def request_rebuild(self, node_id: str, capacity: int, target_fpr: float, reason: str,
                         now: float) -> SyncResult:

@@ -6,7 +6,7 @@ coordinator shell (one lock; the shell dispatches the events), and send the repl
 stream has a reader thread and an outbox queue its response generator drains; the outbox of a
 node's current stream is also where `send` puts messages for that node (rebuild requests).
 
-It is also the transport's event subscriber: a forgotten node's stream ends.
+It is also the transport's event subscriber: an unlisted node's stream ends.
 """
 
 from __future__ import annotations
@@ -23,7 +23,7 @@ import grpc
 from shardsieve.coordinator.shell import CoordinatorShell
 from shardsieve.limits import SyncLimits, check_node_message
 from shardsieve.security import NodeAuthorizer, PeerIdentity, StreamLimiter, peer_identity
-from shardsieve.sync.coordinator_side import NodeForgotten, SyncEvent
+from shardsieve.sync.coordinator_side import NodeUnlisted, SyncEvent
 from shardsieve.sync.errors import SyncError
 from shardsieve.v1 import sync_pb2, sync_pb2_grpc
 
@@ -78,13 +78,13 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
                 self._outbox[msg.node_id].put(msg)
 
     def on_event(self, event: SyncEvent) -> None:
-        """A forgotten node's stream ends; if the node is in fact running it reconnects as new."""
-        if isinstance(event, NodeForgotten):
+        """An unlisted node's stream ends; if the node is in fact running it reconnects as new."""
+        if isinstance(event, NodeUnlisted):
             outbox = self._outbox.pop(event.node_id, None)
             self._identity.pop(event.node_id, None)
             if outbox is not None:
                 outbox.put(_Failure(grpc.StatusCode.ABORTED,
-                                    f"this coordinator forgot node {event.node_id!r} (operator decommission); "
+                                    f"this coordinator unlisted node {event.node_id!r} (an operator unlisted it); "
                                     "reconnecting registers it as a new node"))
 
     def stop(self) -> None:

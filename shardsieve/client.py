@@ -231,9 +231,9 @@ class CoordinatorClient:
         from shardsieve.v1 import admin_pb2
         return self.call("Decisions", self.admin.Decisions, admin_pb2.DecisionsRequest(limit=limit))
 
-    def forget_node(self, node_id: str, force: bool = False) -> Any:
+    def unlist_node(self, node_id: str, force: bool = False) -> Any:
         from shardsieve.v1 import admin_pb2
-        return self.call("ForgetNode", self.admin.ForgetNode, admin_pb2.ForgetNodeRequest(node_id=node_id, force=force))
+        return self.call("UnlistNode", self.admin.UnlistNode, admin_pb2.UnlistNodeRequest(node_id=node_id, force=force))
 
     # -- Router ---------------------------------------------------------------------------------
     def locate(self, key: bytes) -> Any:

@@ -1,14 +1,14 @@
 """A coordinator and N storage nodes as real processes on loopback, in one directory.
 
-For cluster tests, the demo, the load tester and benchmarks::
+For cluster tests, the tour, the load tester and benchmarks::
 
     from shardsieve.localcluster import LocalCluster
 
-    with LocalCluster(tmp_path, nodes=4, capacity=5000) as cluster:   # starts, waits until in sync
+    with LocalCluster(tmp_path, nodes=4, capacity=5000) as cluster:   # starts, waits until synced
         router = cluster.router()                 # shardsieve.v1 Router stub
         router.Write(routing_pb2.WriteRequest(key=b"k", value=b"v"))
         cluster.fleet_status()                    # Admin FleetStatus reply
-        cluster.restart_coordinator()             # and wait_in_sync() again
+        cluster.restart_coordinator()             # and wait_fresh() again
     # every process is stopped here, also on Ctrl-C or an exception
 
 Layout of the directory: coordinator/ (its state dir + coordinator.log), <node-id>/ (store) and
@@ -49,7 +49,7 @@ class NodeHandle:
 
 @dataclass
 class LocalCluster:
-    """Start/stop a coordinator and `nodes` storage nodes; wait for health and for every node in sync.
+    """Start/stop a coordinator and `nodes` storage nodes; wait for health and for every node synced.
 
     capacity / fpr / push_interval_ms / heartbeat_ms apply to every node; extra_node_args and
     extra_coordinator_args are appended to the command lines (e.g. ["--stale-after-s", "1"]).
@@ -155,7 +155,7 @@ class LocalCluster:
         argv += list(self.extra_coordinator_args)
         return argv
 
-    def start(self, wait_in_sync: bool = True) -> LocalCluster:
+    def start(self, wait_fresh: bool = True) -> LocalCluster:
         """Start the coordinator, then every node; wait for health and (optionally) for sync."""
         self.directory.mkdir(parents=True, exist_ok=True)
         atexit.register(self.stop)
@@ -166,8 +166,8 @@ class LocalCluster:
             for handle in self.node_handles.values():
                 assert handle.process is not None
                 handle.process.wait_healthy(self.start_timeout)
-            if wait_in_sync:
-                self.wait_in_sync(self.start_timeout)
+            if wait_fresh:
+                self.wait_fresh(self.start_timeout)
         except BaseException:
             self.stop()
             raise
@@ -186,15 +186,15 @@ class LocalCluster:
         if self.coordinator is not None:
             self.coordinator.kill() if kill else self.coordinator.stop()
 
-    def restart_coordinator(self, kill: bool = False, wait_in_sync: bool = True, timeout: float = 30.0) -> None:
+    def restart_coordinator(self, kill: bool = False, wait_fresh: bool = True, timeout: float = 30.0) -> None:
         self.stop_coordinator(kill=kill)
         with self._lock:
             ch = self._channels.pop(self.coordinator_address, None)
         if ch is not None:
             ch.close()
         self.start_coordinator()
-        if wait_in_sync:
-            self.wait_in_sync(timeout)
+        if wait_fresh:
+            self.wait_fresh(timeout)
 
     def start_node(self, node_id: str, wait_healthy: bool = True) -> DaemonProcess:
         handle = self.node_handles[node_id]
@@ -250,23 +250,23 @@ class LocalCluster:
         self.stop()
 
     # -- waiting ---------------------------------------------------------------------------------
-    def in_sync(self, node_ids: Sequence[str] | None = None) -> bool:
+    def all_fresh(self, node_ids: Sequence[str] | None = None) -> bool:
         status = self.fleet_status()
         want = set(node_ids if node_ids is not None else self.node_handles)
         states = {n.node_id: n for n in status.nodes}
         return all(nid in states and states[nid].connected and not states[nid].stale
-                   and states[nid].state == "in-sync" for nid in want)
+                   and states[nid].state == "fresh" for nid in want)
 
-    def wait_in_sync(self, timeout: float = 30.0, node_ids: Sequence[str] | None = None) -> None:
+    def wait_fresh(self, timeout: float = 30.0, node_ids: Sequence[str] | None = None) -> None:
         """Wait until every (named) node is connected, synced and fresh at the coordinator."""
         def describe() -> str:
             try:
                 st = self.fleet_status()
-                return "all nodes in sync; now: " + ", ".join(f"{n.node_id}={n.state}" for n in st.nodes)
+                return "all nodes synced; now: " + ", ".join(f"{n.node_id}={n.state}" for n in st.nodes)
             except grpc.RpcError as exc:
-                return f"all nodes in sync (coordinator unreachable: {exc.code().name})"
+                return f"all nodes synced (coordinator unreachable: {exc.code().name})"
 
-        wait_until(lambda: self.in_sync(node_ids), timeout, interval=0.05, message=describe)
+        wait_until(lambda: self.all_fresh(node_ids), timeout, interval=0.05, message=describe)
 
     def wait_node_state(self, node_id: str, predicate: Any, timeout: float = 30.0, what: str = "node state") -> Any:
         """Wait until predicate(NodeStatus of node_id) is truthy; returns the NodeStatus."""

@@ -1,4 +1,4 @@
-"""The demo's invented scenario: the Brinewick Kelp Cooperative and its records.
+"""The tour's invented scenario: the Brinewick Kelp Cooperative and its records.
 
 Everything here is made up (the cooperative, its harbour, farms, boats and customers); the
 names are built from invented syllables, and any likeness to a real business is accidental.

@@ -31,7 +31,7 @@ MUST_CODEC_RATE = 5e6
 
 
 def make_keys(n: int, prefix: bytes = b"harbour-parcel") -> list[bytes]:
-    """Invented demo keys: parcel ids of a fictional harbour courier."""
+    """Invented example keys: parcel ids of a fictional harbour courier."""
     return [b"%s:%010d" % (prefix, i) for i in range(n)]
 
 

@@ -20,9 +20,9 @@ COMMANDS = {
     "put": "shardsieve.cli.ops:put",
     "delete": "shardsieve.cli.ops:delete",
     "policy": "shardsieve.cli.ops:policy",
-    "forget": "shardsieve.cli.ops:forget",
+    "unlist": "shardsieve.cli.ops:unlist",
     "loadtest": "shardsieve.cli.loadtest:loadtest",
-    "demo": "shardsieve.cli.demo:demo",
+    "tour": "shardsieve.cli.tour:tour",
     "health": "shardsieve.cli.health:health",
     "certs": "shardsieve.cli.certs:certs",
 }
@@ -34,8 +34,8 @@ def cli() -> None:
     """Route key lookups in a sharded store to the nodes whose Bloom filters may hold the key.
 
     Daemons: `node`, `coordinator`. Planning and measurement: `plan`, `bench`, `loadtest`,
-    `demo`. Operating a fleet: `status`, `inspect`, `rebuild`, `locate`, `get`, `put`,
-    `delete`, `policy`, `forget`. Setup and checks: `certs`, `health`.
+    `tour`. Operating a fleet: `status`, `inspect`, `rebuild`, `locate`, `get`, `put`,
+    `delete`, `policy`, `unlist`. Setup and checks: `certs`, `health`.
     """
 
 

@@ -1,4 +1,4 @@
-"""Operator commands: status, inspect, rebuild, locate, get, put, delete, policy, forget.
+"""Operator commands: status, inspect, rebuild, locate, get, put, delete, policy, unlist.
 
 Every command takes --coordinator / --token / --config / --timeout / --json. Output is a rich
 table for people and a JSON document (stdout) for scripts. Any failure prints ONE line on stderr
@@ -602,22 +602,22 @@ def delete(key: str, hex_input: bool, coordinator: str | None, token: str | None
 
 
 # ---------------------------------------------------------------------------------------------
-# forget (decommission)
+# unlist (a node gone for good)
 # ---------------------------------------------------------------------------------------------
-FORGET_WARNING = ("keys still on that node become unreachable through this coordinator (reads of them answer "
+UNLIST_WARNING = ("keys still on that node become unreachable through this coordinator (reads of them answer "
                   "not found, writes go elsewhere)")
 
 
 @click.command(cls=OneLineCommand, short_help="Tell the coordinator a node is gone for good.")
 @click.argument("node")
-@click.option("--force", is_flag=True, help="Forget it even though its sync stream is connected (a running node "
+@click.option("--force", is_flag=True, help="Unlist it even though its sync stream is connected (a running node "
                                             "comes back as a new node when it reconnects).")
 @click.option("--yes", is_flag=True, help="Do not ask for confirmation (required when not run at a terminal).")
 @coordinator_options
 @guarded
-def forget(node: str, force: bool, yes: bool, coordinator: str | None, token: str | None, config_file: str | None,
+def unlist(node: str, force: bool, yes: bool, coordinator: str | None, token: str | None, config_file: str | None,
            timeout_s: float | None, as_json: bool) -> None:
-    """Decommission NODE: the coordinator drops its filter replica, hints, counters and its
+    """Unlist NODE (gone for good): the coordinator drops its filter replica, hints, counters and its
     entry in the state dir, and stops listing it as stale. Keys still on NODE become
     unreachable through this coordinator.
 
@@ -626,20 +626,20 @@ def forget(node: str, force: bool, yes: bool, coordinator: str | None, token: st
     with open_client(coordinator, token, config_file, timeout_s) as client:
         if not yes:
             if not sys.stdin.isatty():
-                raise ClientError(f"forgetting {node} needs --yes when not run at a terminal: {FORGET_WARNING}",
+                raise ClientError(f"unlisting {node} needs --yes when not run at a terminal: {UNLIST_WARNING}",
                                   EXIT_USAGE)
             st = client.node_detail(node).status
             what = (f"{node} ({st.address or 'no address'}, {'connected' if st.connected else 'disconnected'}, "
                     f"{fmt_count(st.key_count)} keys last reported)")
-            if not click.confirm(f"Forget node {what}? {FORGET_WARNING[0].upper()}{FORGET_WARNING[1:]}.",
+            if not click.confirm(f"Unlist node {what}? {UNLIST_WARNING[0].upper()}{UNLIST_WARNING[1:]}.",
                                  default=False, err=True):
                 raise CliFailure(f"not confirmed; {node} is still known to the coordinator", EXIT_FAILURE)
-        reply = client.forget_node(node, force=force)
+        reply = client.unlist_node(node, force=force)
     if as_json:
         emit_json(message_to_dict(reply))
         return
     forced = " (forced: it was connected)" if reply.was_connected else ""
-    console().print(f"forgot {reply.node_id}{forced}: {fmt_count(reply.key_count)} keys it last reported are no "
+    console().print(f"unlisted {reply.node_id}{forced}: {fmt_count(reply.key_count)} keys it last reported are no "
                     f"longer reachable through this coordinator; {reply.hints_dropped} read-your-writes hints "
                     f"dropped; it is no longer listed as stale")
 

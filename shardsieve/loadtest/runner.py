@@ -52,7 +52,7 @@ def wait_fleet_ready(client: CoordinatorClient, timeout_s: float, min_nodes: int
         if time.monotonic() > deadline:
             bad = [f"{n.node_id} ({n.state})" for n in view.values() if n.stale or not n.connected]
             raise ClientError(
-                f"the fleet is not ready after {timeout_s:.0f}s ({len(view)} nodes known; not in sync: "
+                f"the fleet is not ready after {timeout_s:.0f}s ({len(view)} nodes known; not synced: "
                 f"{', '.join(bad) or 'none'}): check `shardsieve status`, then retry", EXIT_FAILURE)
         time.sleep(0.1)
 
@@ -261,7 +261,7 @@ def run_reads(client: CoordinatorClient, stream: LookupStream, tally: Tally, con
 
 
 # ---------------------------------------------------------------------------------------------
-# A whole run (used by `shardsieve loadtest` and `shardsieve demo`)
+# A whole run (used by `shardsieve loadtest` and `shardsieve tour`)
 # ---------------------------------------------------------------------------------------------
 @dataclass(frozen=True)
 class LoadtestOptions:
@@ -352,7 +352,7 @@ def _measure(client: CoordinatorClient, opts: LoadtestOptions, phases: Phases, s
         phases.start("waiting until the coordinator routes every key", len(keys))
         wait_routable(client, keys, owners, opts.routable_timeout_s, on_progress=phases.advance)
         phases.finish()
-        # Routing is complete; wait for the fleet to be in sync again so no node is listed as stale.
+        # Routing is complete; wait for the fleet to be synced again so no node is listed as stale.
         view = wait_fleet_ready(client, opts.ready_timeout_s)
     fprs = {nid: info.predicted_fpr for nid, info in view.items()}
     tally = Tally(fprs, confidence=opts.confidence)

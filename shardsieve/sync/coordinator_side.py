@@ -101,7 +101,7 @@ class ReplicaSink(Protocol):
         set position is already 1 or a cleared one already 0."""
 
     def remove(self, node_id: str) -> None:
-        """Forget the node's filter."""
+        """Drop the node's filter."""
 
 
 class DictReplicaSink:
@@ -201,8 +201,8 @@ class RebuildRequested:
 
 
 @dataclass(frozen=True, slots=True)
-class NodeForgotten:
-    """The node was dropped for good (operator decommission); its replica left the sink.
+class NodeUnlisted:
+    """The node was dropped for good (an operator unlisted it); its replica left the sink.
     Sent even when this object never heard of the node, so every subscriber drops it."""
 
     node_id: str
@@ -212,7 +212,7 @@ class NodeForgotten:
 
 
 SyncEvent = (StreamOpened | StreamClosed | ReplicaAdvanced | ReplicaInstalled | ResyncRequested
-             | SnapshotRejected | StatsReported | RebuildRequested | NodeForgotten)
+             | SnapshotRejected | StatsReported | RebuildRequested | NodeUnlisted)
 
 
 @dataclass(frozen=True, slots=True)
@@ -337,7 +337,7 @@ class _Node:
         self.state = NodeState(self)
 
     @property
-    def in_sync(self) -> bool:
+    def synced(self) -> bool:
         return self.connected and self.has_replica and self.awaiting is None
 
 
@@ -385,16 +385,16 @@ class NodeState:
         return self._n.has_replica
 
     @property
-    def in_sync(self) -> bool:
+    def synced(self) -> bool:
         """Stream open, verified replica, no snapshot outstanding (the replica may lack nothing
         the node sent); freshness then only depends on when the node was last heard from."""
-        return self._n.in_sync
+        return self._n.synced
 
     @property
     def synced_heard_at(self) -> float | None:
-        """When the node was last heard from if it is in sync, else None (the freshness input)."""
+        """When the node was last heard from if it is synced, else None (the freshness input)."""
         n = self._n
-        return n.last_heard_at if n.in_sync else None
+        return n.last_heard_at if n.synced else None
 
     @property
     def epoch(self) -> int:
@@ -489,14 +489,14 @@ class CoordinatorSync:
         self._streams: dict[Hashable, str] = {}       # open stream -> node id
         self._retired_streams: set[Hashable] = set()  # streams taken over by a newer one
         self._next_request_id = 1
-        # node id -> last_heard_at of every node in sync, kept current by each call: lookups
+        # node id -> last_heard_at of every node synced, kept current by each call: lookups
         # read it on every call, so it is an index here rather than a pass over all nodes
         self._synced_heard: dict[str, float] = {}
         self._synced_heard_view = MappingProxyType(self._synced_heard)
 
     def _note(self, node: _Node) -> None:
         """Keep `_synced_heard` current after a call touched `node`."""
-        if node.in_sync and node.last_heard_at is not None:
+        if node.synced and node.last_heard_at is not None:
             self._synced_heard[node.node_id] = node.last_heard_at
         else:
             self._synced_heard.pop(node.node_id, None)
@@ -603,7 +603,7 @@ class CoordinatorSync:
         self._retired_streams.discard(stream_id)
         node = self._nodes.get(node_id)
         if node is None or node.stream_id != stream_id:
-            return NOTHING   # a retired stream, or a node forgotten meanwhile
+            return NOTHING   # a retired stream, or a node unlisted meanwhile
         node.stream_id = None
         node.connected = False
         node.disconnected_at = now
@@ -612,17 +612,17 @@ class CoordinatorSync:
         self._note(node)
         return SyncResult(events=(StreamClosed(node_id, stream_id),))
 
-    def forget(self, node_id: str) -> SyncResult:
-        """Drop a node entirely (operator decommission): its replica leaves the sink. The
-        NodeForgotten event goes out whether or not this object knew the node."""
+    def unlist(self, node_id: str) -> SyncResult:
+        """Drop a node entirely (an operator unlisted it): its replica leaves the sink. The
+        NodeUnlisted event goes out whether or not this object knew the node."""
         node = self._nodes.pop(node_id, None)
         self._synced_heard.pop(node_id, None)
         if node is None:
-            return SyncResult(events=(NodeForgotten(node_id, False, False, 0),))
+            return SyncResult(events=(NodeUnlisted(node_id, False, False, 0),))
         if node.stream_id is not None:
             self._streams.pop(node.stream_id, None)
         self.sink.remove(node_id)
-        return SyncResult(events=(NodeForgotten(node_id, node.connected, node.has_replica, node.key_count),))
+        return SyncResult(events=(NodeUnlisted(node_id, node.connected, node.has_replica, node.key_count),))
 
     def request_rebuild(self, node_id: str, capacity: int, target_fpr: float, reason: str,
                         now: float) -> SyncResult:
@@ -651,7 +651,7 @@ class CoordinatorSync:
         return list(self._nodes)
 
     def node(self, node_id: str) -> NodeState | None:
-        """The live, read-only state of one node, or None if never seen (or forgotten)."""
+        """The live, read-only state of one node, or None if never seen (or unlisted)."""
         n = self._nodes.get(node_id)
         return n.state if n is not None else None
 
@@ -659,7 +659,7 @@ class CoordinatorSync:
         return [n.state for n in self._nodes.values()]
 
     def synced_heard(self) -> Mapping[str, float]:
-        """`synced_heard_at` of every node in sync (a live read-only mapping: no copy)."""
+        """`synced_heard_at` of every node synced (a live read-only mapping: no copy)."""
         return self._synced_heard_view
 
     def is_connected(self, node_id: str) -> bool:

@@ -587,7 +587,7 @@ class NodeSync:
 
     # ------------------------------------------------------------------ per-peer stream
     def connect(self, peer: str, now: float) -> None:
-        """A stream to `peer` opened (or re-opened): forget its old cursor, queue the Hello."""
+        """A stream to `peer` opened (or re-opened): drop its old cursor, queue the Hello."""
         s = self._stream
         hello = sync_pb2.Hello(
             node_id=self.node_id, storage_address=self.storage_address, geometry=s.geometry_proto,

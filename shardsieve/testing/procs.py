@@ -1,4 +1,4 @@
-"""Start, watch and stop daemon processes on loopback, for cluster tests, benchmarks and the demo.
+"""Start, watch and stop daemon processes on loopback, for cluster tests, benchmarks and the tour.
 
 Typical use::
 
@@ -215,7 +215,7 @@ def start_daemon(argv: Sequence[str], log_path: Path, *, env: Mapping[str, str] 
     full_env = dict(os.environ)
     full_env.update(env or {})
     full_env.setdefault("PYTHONUNBUFFERED", "1")
-    # Test, benchmark and demo daemons listen on loopback: plaintext is allowed here explicitly
+    # Test, benchmark and tour daemons listen on loopback: plaintext is allowed here explicitly
     # (the daemons still log a warning); a caller passing TLS settings or "false" overrides it.
     full_env.setdefault("SHARDSIEVE_NODE_ALLOW_PLAINTEXT", "true")
     full_env.setdefault("SHARDSIEVE_COORDINATOR_ALLOW_PLAINTEXT", "true")

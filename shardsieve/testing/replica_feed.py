@@ -6,7 +6,7 @@ anything with CoordinatorSync's open / receive / close (the protocol object itse
 coordinator's shell, which also dispatches the events). Replies are returned, not consumed.
 
     feed = NodeFeed(shell, "node-kelp-1", bloom, address="127.0.0.1:7101")
-    feed.connect(now)                  # Hello + snapshot: a verified replica, in sync
+    feed.connect(now)                  # Hello + snapshot: a verified replica, synced
     feed.add([b"crate-9"], now)        # one delta adding the key
     feed.heartbeat(now)                # heard from again
     feed.close(now)                    # stream down (stale)

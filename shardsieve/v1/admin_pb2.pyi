@@ -216,7 +216,7 @@ class DecisionsReply(_message.Message):
     decisions: _containers.RepeatedCompositeFieldContainer[Decision]
     def __init__(self, decisions: _Optional[_Iterable[_Union[Decision, _Mapping]]] = ...) -> None: ...
 
-class ForgetNodeRequest(_message.Message):
+class UnlistNodeRequest(_message.Message):
     __slots__ = ("node_id", "force")
     NODE_ID_FIELD_NUMBER: _ClassVar[int]
     FORCE_FIELD_NUMBER: _ClassVar[int]
@@ -224,7 +224,7 @@ class ForgetNodeRequest(_message.Message):
     force: bool
     def __init__(self, node_id: _Optional[str] = ..., force: _Optional[bool] = ...) -> None: ...
 
-class ForgetNodeReply(_message.Message):
+class UnlistNodeReply(_message.Message):
     __slots__ = ("node_id", "was_connected", "had_replica", "hints_dropped", "key_count", "address")
     NODE_ID_FIELD_NUMBER: _ClassVar[int]
     WAS_CONNECTED_FIELD_NUMBER: _ClassVar[int]

@@ -64,10 +64,10 @@ class AdminStub:
                 request_serializer=shardsieve_dot_v1_dot_admin__pb2.DecisionsRequest.SerializeToString,
                 response_deserializer=shardsieve_dot_v1_dot_admin__pb2.DecisionsReply.FromString,
                 _registered_method=True)
-        self.ForgetNode = channel.unary_unary(
-                '/shardsieve.v1.Admin/ForgetNode',
-                request_serializer=shardsieve_dot_v1_dot_admin__pb2.ForgetNodeRequest.SerializeToString,
-                response_deserializer=shardsieve_dot_v1_dot_admin__pb2.ForgetNodeReply.FromString,
+        self.UnlistNode = channel.unary_unary(
+                '/shardsieve.v1.Admin/UnlistNode',
+                request_serializer=shardsieve_dot_v1_dot_admin__pb2.UnlistNodeRequest.SerializeToString,
+                response_deserializer=shardsieve_dot_v1_dot_admin__pb2.UnlistNodeReply.FromString,
                 _registered_method=True)
 
 
@@ -110,7 +110,7 @@ class AdminServicer:
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
-    def ForgetNode(self, request, context):
+    def UnlistNode(self, request, context):
         """Missing associated documentation comment in .proto file."""
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
@@ -149,10 +149,10 @@ def add_AdminServicer_to_server(servicer, server):
                     request_deserializer=shardsieve_dot_v1_dot_admin__pb2.DecisionsRequest.FromString,
                     response_serializer=shardsieve_dot_v1_dot_admin__pb2.DecisionsReply.SerializeToString,
             ),
-            'ForgetNode': grpc.unary_unary_rpc_method_handler(
-                    servicer.ForgetNode,
-                    request_deserializer=shardsieve_dot_v1_dot_admin__pb2.ForgetNodeRequest.FromString,
-                    response_serializer=shardsieve_dot_v1_dot_admin__pb2.ForgetNodeReply.SerializeToString,
+            'UnlistNode': grpc.unary_unary_rpc_method_handler(
+                    servicer.UnlistNode,
+                    request_deserializer=shardsieve_dot_v1_dot_admin__pb2.UnlistNodeRequest.FromString,
+                    response_serializer=shardsieve_dot_v1_dot_admin__pb2.UnlistNodeReply.SerializeToString,
             ),
     }
     generic_handler = grpc.method_handlers_generic_handler(
@@ -328,7 +328,7 @@ class Admin:
             _registered_method=True)
 
     @staticmethod
-    def ForgetNode(request,
+    def UnlistNode(request,
             target,
             options=(),
             channel_credentials=None,
@@ -341,9 +341,9 @@ class Admin:
         return grpc.experimental.unary_unary(
             request,
             target,
-            '/shardsieve.v1.Admin/ForgetNode',
-            shardsieve_dot_v1_dot_admin__pb2.ForgetNodeRequest.SerializeToString,
-            shardsieve_dot_v1_dot_admin__pb2.ForgetNodeReply.FromString,
+            '/shardsieve.v1.Admin/UnlistNode',
+            shardsieve_dot_v1_dot_admin__pb2.UnlistNodeRequest.SerializeToString,
+            shardsieve_dot_v1_dot_admin__pb2.UnlistNodeReply.FromString,
             options,
             channel_credentials,
             insecure,

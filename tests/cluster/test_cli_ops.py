@@ -53,14 +53,14 @@ def one_line(stderr: str) -> str:
     return lines[0]
 
 
-def test_status_lists_every_node_in_sync(cluster: LocalCluster) -> None:
+def test_status_lists_every_node_fresh(cluster: LocalCluster) -> None:
     res = run(cluster, "status", "--json")
     assert res.exit_code == 0, res.output
     doc = json.loads(res.stdout)
     assert sorted(n["node_id"] for n in doc["nodes"]) == sorted(cluster.node_addresses)
     for n in doc["nodes"]:
         assert n["address"] == cluster.node_addresses[n["node_id"]]
-        assert n["state"] == "in-sync" and n["connected"] is True
+        assert n["state"] == "fresh" and n["connected"] is True
         assert isinstance(n["capacity"], int) and isinstance(n["geometry"]["bits"], int)
     assert doc["mode"] in ("safe", "fast")
     res = run(cluster, "status")

@@ -59,7 +59,7 @@ def test_admin_token_policy_rebuild_plan_metrics_and_health(tmp_path) -> None:
 
         # A real rebuild on operator request: node-1 moves to epoch 2 at the asked capacity.
         admin.Rebuild(admin_pb2.RebuildCommand(node_ids=["node-1"], capacity=5000), metadata=good, timeout=5)
-        cluster.wait_node_state("node-1", lambda n: n.epoch == 2 and n.capacity == 5000 and n.state == "in-sync",
+        cluster.wait_node_state("node-1", lambda n: n.epoch == 2 and n.capacity == 5000 and n.state == "fresh",
                                 timeout=30, what="operator rebuild")
 
         # Metrics: lookups, candidates histogram, wasted probes, per-node fill/FPR/lag, delta bytes, rebuilds.

@@ -105,14 +105,14 @@ def test_coordinator_restart_mid_load_keeps_every_acknowledged_key(tmp_path) -> 
             frozen_at = history.now()
             try:
                 killed_at = history.now()
-                cluster.restart_coordinator(kill=True, wait_in_sync=False)   # returns once it is SERVING
+                cluster.restart_coordinator(kill=True, wait_fresh=False)   # returns once it is SERVING
                 serving_at = history.now()
                 # It remembers every node (its state dir): the frozen one is known and stale.
                 status = {n.node_id: n for n in cluster.fleet_status().nodes}
                 assert set(status) == set(cluster.node_handles)
                 assert status[HELD_BACK].stale and not status[HELD_BACK].connected
                 others = [n for n in cluster.node_handles if n != HELD_BACK]
-                cluster.wait_in_sync(30, node_ids=others)
+                cluster.wait_fresh(30, node_ids=others)
                 # The window that matters: the frozen node cannot have resynced, so only safe mode
                 # keeps its keys reachable. Each is listed (stale), and its read fails naming the node.
                 router = cluster.router()
@@ -133,7 +133,7 @@ def test_coordinator_restart_mid_load_keeps_every_acknowledged_key(tmp_path) -> 
                                     f"from {reply.node_id or 'no node'}; expected UNAVAILABLE naming {HELD_BACK}")
             finally:
                 cluster.thaw_node(HELD_BACK)
-            cluster.wait_in_sync(30)
+            cluster.wait_fresh(30)
             back_at = history.now()
             wait_until(lambda: history.counts().get("write", 0) >= before + 100, 30,
                        message="100 writes after the restart")
@@ -169,7 +169,7 @@ def test_coordinator_restart_mid_load_keeps_every_acknowledged_key(tmp_path) -> 
 
         # Every node resynced (a snapshot after the restart), and each acknowledged key is found.
         for n in cluster.fleet_status().nodes:
-            assert n.snapshots >= 1 and n.state == "in-sync"
+            assert n.snapshots >= 1 and n.state == "fresh"
         router = cluster.router()
         for key, value in history.live_keys().items():
             start = history.now()
@@ -225,6 +225,6 @@ def test_frozen_node_turns_stale_listed_in_safe_mode_only(tmp_path) -> None:
             admin.SetPolicy(admin_pb2.PolicySetRequest(values={"mode": "safe"}), timeout=5)
         finally:
             proc.signal(signal.SIGCONT)
-        cluster.wait_in_sync(20)
+        cluster.wait_fresh(20)
         reply = router.Read(routing_pb2.ReadRequest(key=b"crate-9"), timeout=10)
         assert reply.found and reply.value == b"dock-4" and reply.node_id == "node-3"

@@ -72,10 +72,10 @@ def test_overfilled_node_is_flagged_rebuilt_and_never_misses(tmp_path) -> None:
                 acked.extend(it.key for it in items)
                 first_batch.set()
 
-            # Back to health: a later epoch, in sync, all keys counted, not saturated any more.
+            # Back to health: a later epoch, synced, all keys counted, not saturated any more.
             done = cluster.wait_node_state(
-                "node-1", lambda n: n.epoch > 1 and n.state == "in-sync" and n.key_count >= total and not n.saturated,
-                timeout=60, what="rebuilt, in sync and unsaturated")
+                "node-1", lambda n: n.epoch > 1 and n.state == "fresh" and n.key_count >= total and not n.saturated,
+                timeout=60, what="rebuilt, synced and unsaturated")
             wait_until(lambda: history.counts().get("read", 0) > 300, 20, message="reads across the swap")
         finally:
             stop.set()

@@ -196,7 +196,7 @@ def test_cluster_runs_entirely_over_mutual_tls(tmp_path: Path) -> None:
         assert oper.send(hello("node-2", geometry)).status() == grpc.StatusCode.PERMISSION_DENIED
         oper.close()
         assert coordinator_state(cluster) == before
-        assert cluster.in_sync()
+        assert cluster.all_fresh()
         log = cluster.coordinator.log_text() if cluster.coordinator else ""
         assert "sync stream refused: identity" in log and "issued to 'node-2'" in log
         assert "listening with TLS" in log and "PLAINTEXT" not in log
@@ -300,7 +300,7 @@ def test_spoofed_node_ids_are_permission_denied(cluster: LocalCluster) -> None:
         assert fake.send(hello(node_id, GEOMETRY)).status() == grpc.StatusCode.PERMISSION_DENIED, node_id
         fake.close()
     assert coordinator_state(cluster, READ_MD) == before
-    assert cluster.in_sync()                        # the real node-1 kept its stream
+    assert cluster.all_fresh()                        # the real node-1 kept its stream
     log = cluster.coordinator.log_text() if cluster.coordinator else ""
     assert len(re.findall(r"sync stream refused: identity", log)) >= len(cases)
 
@@ -431,7 +431,7 @@ def test_streams_per_peer_are_limited(cluster: LocalCluster) -> None:
     finally:
         for f in held:
             f.close()
-    wait_until(lambda: cluster.in_sync(), 20, message="node-1 in sync")
+    wait_until(lambda: cluster.all_fresh(), 20, message="node-1 synced")
 
     def accepted_again() -> bool:
         probe = FakeNode(cluster.coordinator_address, md).send(hello("spare2", GEOMETRY))

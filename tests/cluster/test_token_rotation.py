@@ -76,9 +76,9 @@ def test_sighup_rotates_every_token_file_and_a_bad_file_changes_nothing(tmp_path
 
             def synced() -> bool:
                 reply = admin.FleetStatus(admin_pb2.FleetStatusRequest(), timeout=5, metadata=_bearer(OLD["admin"]))
-                return any(n.node_id == "kelp-node-1" and n.state == "in-sync" for n in reply.nodes)
+                return any(n.node_id == "kelp-node-1" and n.state == "fresh" for n in reply.nodes)
 
-            wait_until(synced, 30, message=lambda: "node in sync\n" + coord.log_tail())
+            wait_until(synced, 30, message=lambda: "node synced\n" + coord.log_tail())
             router.Write(routing_pb2.WriteRequest(key=b"kelp/lot-7", value=b"kombu"), timeout=10)
             assert read(OLD["read"]).found
             assert status(NEW["admin"]) == grpc.StatusCode.UNAUTHENTICATED

@@ -347,7 +347,7 @@ class ContainerCluster:
             self.acked[node_id] = max(self.acked.get(node_id, (0, 0)), (epoch, sequence))
 
     def synced(self, coordinator: Daemon, nodes: list[Daemon]) -> bool:
-        """True when the coordinator is in sync with each node: connected, fresh, and applied up to
+        """True when the coordinator is synced with each node: connected, fresh, and applied up to
         both the node's own position (read just before) and every write the node acknowledged."""
         with self._acked_lock:
             acked = dict(self.acked)
@@ -355,7 +355,7 @@ class ContainerCluster:
         fleet = self.fleet(coordinator)
         for node_id, pos in positions.items():
             st = fleet.get(node_id)
-            if st is None or not st.connected or st.stale or st.state != "in-sync":
+            if st is None or not st.connected or st.stale or st.state != "fresh":
                 return False
             if (st.epoch, st.sequence) < pos:
                 return False
@@ -371,7 +371,7 @@ class ContainerCluster:
                 states = ", ".join(f"{k}={v.state}/{v.epoch}:{v.sequence}" for k, v in sorted(fleet.items()))
             except grpc.RpcError as exc:
                 states = f"FleetStatus failed: {exc.code()}"
-            return f"{coordinator.alias} in sync with {[n.alias for n in nodes]} ({states})\n{coordinator.logs(30)}"
+            return f"{coordinator.alias} synced with {[n.alias for n in nodes]} ({states})\n{coordinator.logs(30)}"
 
         wait_until(lambda: self.synced(coordinator, nodes), timeout, interval=0.05, message=describe)
         return time.monotonic() - t0

@@ -4,7 +4,7 @@ Reference: docs/architecture.md#who-owns-which-state (a coordinator's state is s
 come back from the nodes), docs/architecture.md#1-no-false-negatives-once-synced (through restarts
 of either side) and docs/architecture.md#3-bounded-staleness (nodes not yet resynced are stale and
 safe mode lists them for every key). Measured and printed, never asserted (speed belongs in the
-README's figures): coordinator container start -> every node in sync.
+README's figures): coordinator container start -> every node synced.
 """
 
 from __future__ import annotations
@@ -111,8 +111,8 @@ def test_coordinator_restart_under_load_resyncs_all_nodes_without_false_negative
                    message=lambda: f"reads to resume after the restart ({load.snapshot()})")
     counts = load.snapshot()
 
-    report_time("coordinator restart: container start -> all nodes in sync", all_synced - started)
-    report_time("coordinator restart: kill -> all nodes in sync", all_synced - killed,
+    report_time("coordinator restart: container start -> all nodes synced", all_synced - started)
+    report_time("coordinator restart: kill -> all nodes synced", all_synced - killed,
                 detail="load over the run: " + ", ".join(f"{k} {v}" for k, v in counts.items()))
     # Zero false negatives in safe mode: no acknowledged key was ever read as absent.
     assert counts["absent"] == 0, counts

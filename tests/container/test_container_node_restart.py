@@ -3,7 +3,7 @@
 Checked against docs/architecture.md#1-no-false-negatives-once-synced and
 docs/architecture.md#4-nothing-acknowledged-is-lost: every write the coordinator acknowledged is still on the node, the coordinator's replica of the node's filter
 catches up, and afterwards no lookup misses a key. The recovery time (new container started ->
-coordinator in sync with the node) is measured and printed.
+coordinator synced with the node) is measured and printed.
 """
 
 from __future__ import annotations
@@ -51,7 +51,7 @@ def test_killed_node_restarts_on_its_volume_with_every_acknowledged_write(cluste
     serving_s = cluster.wait_serving(victim)
     cluster.wait_synced(coordinator, [victim])
     report_time("node restart: container start -> health SERVING", serving_s)
-    report_time("node restart: container start -> coordinator in sync", time.monotonic() - started)
+    report_time("node restart: container start -> coordinator synced", time.monotonic() - started)
 
     # Every acknowledged write is on the node's store, byte for byte (asked directly, not routed).
     stub = victim.storage()

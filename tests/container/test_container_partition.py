@@ -70,7 +70,7 @@ def test_cut_off_node_is_stale_and_unavailable_never_absent_then_heals(cluster, 
     healed = time.monotonic()
     cluster.unpause(victim) if how == "pause" else cluster.reconnect(victim)
     cluster.wait_synced(coordinator, [victim])
-    report_time(f"partition ({how}): heal -> coordinator in sync with the node", time.monotonic() - healed)
+    report_time(f"partition ({how}): heal -> coordinator synced with the node", time.monotonic() - healed)
 
     for key, candidates in zip(victim_keys, driver.locate(victim_keys)):
         assert any(c.node_id == victim.alias and not c.stale for c in candidates), (key, candidates)

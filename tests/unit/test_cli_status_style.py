@@ -15,7 +15,7 @@ from shardsieve.v1 import admin_pb2
 
 
 def _node(node_id: str, **kw: object) -> admin_pb2.NodeStatus:
-    return admin_pb2.NodeStatus(node_id=node_id, connected=kw.pop("connected", True), state=kw.pop("state", "in-sync"),
+    return admin_pb2.NodeStatus(node_id=node_id, connected=kw.pop("connected", True), state=kw.pop("state", "fresh"),
                                 **kw)
 
 
@@ -31,7 +31,7 @@ def test_saturated_and_stale_rows_are_marked_in_words_and_colour() -> None:
     out.print(table)
     text = out.export_text(clear=False)
     ansi = {line.split("shed-0")[1][0]: line for line in out.export_text(styles=True).splitlines() if "shed-0" in line}
-    assert "in-sync SATURATED" in text and "stale" in text and "disconnected" in text
+    assert "fresh SATURATED" in text and "stale" in text and "disconnected" in text
     rows = {n.node_id: row_style(n) for n in nodes}
     assert rows["shed-01"] is None                                # a healthy row is plain
     assert rows["shed-02"] and "red" in rows["shed-02"]

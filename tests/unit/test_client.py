@@ -35,7 +35,7 @@ def _authorized(context: grpc.ServicerContext) -> bool:
 def _node(i: int, **kw: object) -> admin_pb2.NodeStatus:
     base = dict(node_id=f"n{i}", address=f"127.0.0.1:{9000 + i}", connected=True, key_count=1000 * i,
                 capacity=4000, fill=0.3, predicted_fpr=0.0081, observed_fpr=0.01, lookups_checked=100,
-                state="in-sync", geometry=filter_pb2.Geometry(bits=65536, hashes=4, scheme=1, seed=0),
+                state="fresh", geometry=filter_pb2.Geometry(bits=65536, hashes=4, scheme=1, seed=0),
                 epoch=1, sequence=7 * i, wasted_probes=i)
     base.update(kw)
     return admin_pb2.NodeStatus(**base)  # type: ignore[arg-type]

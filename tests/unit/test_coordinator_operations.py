@@ -2,7 +2,7 @@
 object fed with real sync messages; no sockets, no threads.
 
 Expected behaviour: docs/coordinator.md ("Freshness contract", "Accounting and saturation",
-"Decommissioning a node") and docs/architecture.md#how-events-flow (every event of a call
+"Removing a node for good") and docs/architecture.md#how-events-flow (every event of a call
 reaches every subscriber, in order, under the coordinator's lock). Saturation figures are
 checked against the Bloom filter's expected fill 1 - e^(-kn/m) (Broder & Mitzenmacher 2004,
 section 2), computed here.
@@ -97,7 +97,7 @@ def test_every_event_reaches_every_subscriber_in_order_and_a_failing_one_does_no
 # ----------------------------------------------------------------------------- subscribers
 
 
-def test_membership_persists_addresses_and_drops_forgotten_nodes(tmp_path: Path, caplog) -> None:
+def test_membership_persists_addresses_and_drops_unlisted_nodes(tmp_path: Path, caplog) -> None:
     path = tmp_path / "nodes.json"
     membership = Membership({"node-expected-1": "10.0.0.1:7100"}, tmp_path)
     assert membership.node_ids() == ["node-expected-1"] and not path.exists()   # nothing changed yet
@@ -109,7 +109,7 @@ def test_membership_persists_addresses_and_drops_forgotten_nodes(tmp_path: Path,
     assert Membership(state_dir=tmp_path).address("node-new-2") == "10.0.0.9:7100"   # a restart reads it back
     state = wire_state(Policy(), state_dir=tmp_path)
     Operations(state.shell, state.readings, state.monitor, state.policy, state.hints, state.membership,
-               Sent()).forget("node-expected-1")
+               Sent()).unlist("node-expected-1")
     assert json.loads(path.read_text()) == {"nodes": {"node-new-2": "10.0.0.9:7100"}}
     path.write_text("{not json")
     with caplog.at_level(logging.WARNING, logger="shardsieve.coordinator.membership"):
@@ -147,7 +147,7 @@ def test_node_states_in_status() -> None:
     state.shell.open("s4", feed.hello(), T0)             # Hello answered, no snapshot yet
     assert read("node-wrack-4", T0).state == "syncing"
     feed.snapshot(T0)
-    assert read("node-wrack-4", T0 + 1).state == "in-sync" and not read("node-wrack-4", T0 + 1).stale
+    assert read("node-wrack-4", T0 + 1).state == "fresh" and not read("node-wrack-4", T0 + 1).stale
     assert read("node-wrack-4", T0 + 2.5).state == "stale"                   # not heard for 2.5 s > 2 s
     feed.heartbeat(T0 + 3, rebuild_phase="scanning", rebuild_progress=0.25)
     node = read("node-wrack-4", T0 + 3)

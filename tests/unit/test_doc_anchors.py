@@ -51,8 +51,8 @@ def tracked_text_files() -> list[Path]:
     ("Logic without I/O", "logic-without-io"),
     ("1. No false negatives once synced", "1-no-false-negatives-once-synced"),
     ("Durability: what an acknowledged write survives", "durability-what-an-acknowledged-write-survives"),
-    ("Decommissioning a node (`ForgetNode`, `shardsieve forget`)",
-     "decommissioning-a-node-forgetnode-shardsieve-forget"),
+    ("Removing a node for good (`UnlistNode`, `shardsieve unlist`)",
+     "removing-a-node-for-good-unlistnode-shardsieve-unlist"),
 ])
 def test_slug_follows_githubs_rule(heading: str, expected: str) -> None:
     assert slug(heading) == expected

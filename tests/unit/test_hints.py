@@ -100,7 +100,7 @@ def test_age_expiry_drops_only_old_hints_and_returns_their_numbers() -> None:
     assert hints.lookup(b"c") == [NODE] and len(hints) == 1
 
 
-def test_drop_node_forgets_every_hint_of_that_node_only() -> None:
+def test_drop_node_drops_every_hint_of_that_node_only() -> None:
     hints = HintTable()
     for i in range(5):
         hints.add(f"k{i}".encode(), NODE, epoch=1, sequence=i + 1, old=(0, i), now=float(i))

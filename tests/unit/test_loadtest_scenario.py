@@ -1,4 +1,4 @@
-"""The demo's invented scenario: distinct records, reproducible, placement by farm."""
+"""The tour's invented scenario: distinct records, reproducible, placement by farm."""
 
 from __future__ import annotations
 

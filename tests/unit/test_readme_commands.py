@@ -21,11 +21,11 @@ def test_readme_opens_with_the_job_paragraph() -> None:
     assert "shardsieve" in first_paragraph and "fan-out" in first_paragraph
 
 
-def test_quick_start_is_two_commands_demo_then_tests() -> None:
+def test_quick_start_is_two_commands_tour_then_tests() -> None:
     commands = _quick_start_commands()
     assert len(commands) == 2, commands
     assert all("\n" not in c for c in commands)
-    assert commands[0].endswith("shardsieve demo")
+    assert commands[0].endswith("shardsieve tour")
     assert "pytest" in commands[1]
 
 

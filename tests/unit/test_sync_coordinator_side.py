@@ -25,7 +25,7 @@ from shardsieve.sync.coordinator_side import (
     CoordinatorSync,
     CoordinatorSyncConfig,
     DictReplicaSink,
-    NodeForgotten,
+    NodeUnlisted,
     RebuildRequested,
     ReplicaAdvanced,
     ReplicaInstalled,
@@ -255,13 +255,13 @@ def test_a_gap_asks_for_a_snapshot_once_per_retry_interval() -> None:
     gap = sync.receive(NODE, 1, d3, 0.0)
     assert reasons(gap.replies) == ["SNAPSHOT_REASON_GAP"]        # docs/sync-protocol.md, "Coordinator side"
     assert gap.events == (ResyncRequested(NODE, "GAP", "delta 3 after 1"),)
-    assert sync.node(NODE).awaiting_snapshot == "GAP" and not sync.node(NODE).in_sync
+    assert sync.node(NODE).awaiting_snapshot == "GAP" and not sync.node(NODE).synced
     assert sync.receive(NODE, 1, d4, 0.5).replies == ()           # one request per retry interval
     assert reasons(sync.receive(NODE, 1, d4, 1.5).replies) == ["SNAPSHOT_REASON_GAP"]
     assert sink.replicas[NODE] == before and sync.node(NODE).sequence == 1
     send_all(sync, node.snapshot())
     assert sync.node(NODE).awaiting_snapshot is None and sink.replicas[NODE] == node.bloom
-    assert sync.node(NODE).in_sync
+    assert sync.node(NODE).synced
 
 
 def test_a_bad_payload_asks_for_a_snapshot_and_changes_nothing() -> None:
@@ -463,23 +463,23 @@ def test_a_snapshot_at_the_replica_position_with_another_checksum_replaces_the_r
     assert all(sink.replicas[NODE].bits[p] for p in reference_positions("box-99", G))
 
 
-# ----------------------------------------------------------------------------- forgetting and the accessor
+# ----------------------------------------------------------------------------- unlisting and the accessor
 
 
-def test_forget_drops_the_node_and_reports_what_it_had() -> None:
+def test_unlist_drops_the_node_and_reports_what_it_had() -> None:
     sync, sink, node = synced(keys=("box-1", "box-2"))
-    assert sync.forget(NODE).events == (NodeForgotten(NODE, was_connected=True, had_replica=True, key_count=7),)
+    assert sync.unlist(NODE).events == (NodeUnlisted(NODE, was_connected=True, had_replica=True, key_count=7),)
     assert NODE not in sink.replicas and sync.node(NODE) is None and sync.node_ids() == []
     with pytest.raises(NotOpened):                          # its stream is gone with it
         sync.receive(NODE, 1, node.add_key("box-3"), 0.0)
     # a node this object never heard of: the event still goes out, so every subscriber drops it
-    assert sync.forget("node-remembered-9").events == (NodeForgotten("node-remembered-9", False, False, 0),)
+    assert sync.unlist("node-remembered-9").events == (NodeUnlisted("node-remembered-9", False, False, 0),)
 
 
 def test_node_state_is_live_and_read_only() -> None:
     sync, _, node = synced()
     state = sync.node(NODE)
-    assert state.position == (1, 1) and state.in_sync
+    assert state.position == (1, 1) and state.synced
     send_all(sync, [node.add_key("box-2")], now=9.0)
     assert state.position == (1, 2) and state.last_applied_at == 9.0     # the same object shows the change
     with pytest.raises(AttributeError):
@@ -489,8 +489,8 @@ def test_node_state_is_live_and_read_only() -> None:
     assert sync.node(NODE).counters.deltas_applied == 1
     before = state.frozen_copy()
     sync.close(NODE, 1, 10.0)
-    assert not state.connected and not state.in_sync and state.position == (1, 2)
-    assert before.connected and before.in_sync and before.counters.deltas_applied == 1   # the copy stays
+    assert not state.connected and not state.synced and state.position == (1, 2)
+    assert before.connected and before.synced and before.counters.deltas_applied == 1   # the copy stays
 
 
 def test_synced_heard_follows_every_call() -> None:
@@ -514,7 +514,7 @@ def test_synced_heard_follows_every_call() -> None:
     assert dict(sync.synced_heard()) == {NODE: 5.0}
     sync.close(NODE, 1, 6.0)
     assert dict(sync.synced_heard()) == {}
-    sync.open(2, node.hello(floor=node.sequence), 7.0)       # reconnect within history: acked, in sync
+    sync.open(2, node.hello(floor=node.sequence), 7.0)       # reconnect within history: acked, synced
     assert dict(sync.synced_heard()) == {NODE: 7.0}
-    sync.forget(NODE)
+    sync.unlist(NODE)
     assert dict(sync.synced_heard()) == {}

@@ -1,7 +1,7 @@
-"""Decommissioning: Admin.ForgetNode through the coordinator's one forget path
+"""Unlisting a node: Admin.UnlistNode through the coordinator's one unlist path
 (coordinator/operations.py), no sockets.
 
-Expected behaviour (docs/coordinator.md, "Decommissioning a node"): a forgotten node leaves
+Expected behaviour (docs/coordinator.md, "Removing a node for good"): an unlisted node leaves
 every table — replica column, hints, accounting, monitor, membership file — and is no longer
 listed as stale; a connected node is refused with FAILED_PRECONDITION and nothing changes unless
 force is set, and then its stream ends. Whether a key is listed is checked against a Bloom
@@ -119,7 +119,7 @@ def test_a_connected_node_is_refused_and_nothing_changes(world: World, tmp_path:
     before = held_state(world.state, tmp_path)
     assert "node-gannet-1" in before["membership"] and before["hints"] == 1
     with pytest.raises(Aborted) as refused:
-        world.admin.ForgetNode(admin_pb2.ForgetNodeRequest(node_id="node-gannet-1"), FakeContext())
+        world.admin.UnlistNode(admin_pb2.UnlistNodeRequest(node_id="node-gannet-1"), FakeContext())
     assert refused.value.code == grpc.StatusCode.FAILED_PRECONDITION
     assert "connected" in refused.value.details and "force" in refused.value.details
     assert held_state(world.state, tmp_path) == before
@@ -133,7 +133,7 @@ def test_a_disconnected_node_leaves_every_table_and_stops_being_listed_stale(wor
     row = state.candidates.find([b"no-such-key"], NOW).rows()[0]
     assert [(c.node_id, c.stale) for c in row] == [("node-gannet-1", True)]       # listed stale (safe mode)
 
-    reply = world.admin.ForgetNode(admin_pb2.ForgetNodeRequest(node_id="node-gannet-1"), FakeContext())
+    reply = world.admin.UnlistNode(admin_pb2.UnlistNodeRequest(node_id="node-gannet-1"), FakeContext())
     assert (reply.node_id, reply.was_connected, reply.had_replica, reply.hints_dropped, reply.key_count) == \
         ("node-gannet-1", False, True, 1, 30)
     assert reply.address == "127.0.0.1:7101"
@@ -147,8 +147,8 @@ def test_a_disconnected_node_leaves_every_table_and_stops_being_listed_stale(wor
         assert state.shell.node("node-gannet-1") is None
     status = world.admin.FleetStatus(admin_pb2.FleetStatusRequest(), FakeContext())
     assert [n.node_id for n in status.nodes] == ["node-gannet-2"]
-    assert [(d.node_id, d.action) for d in world.operations.decisions()][-1] == ("node-gannet-1", "forget")
-    # a late message or close on the forgotten node's old stream must not bring it back
+    assert [(d.node_id, d.action) for d in world.operations.decisions()][-1] == ("node-gannet-1", "unlist")
+    # a late message or close on the unlisted node's old stream must not bring it back
     with pytest.raises(NotOpened):
         state.shell.receive("node-gannet-1", 1, sync_pb2.NodeMessage(heartbeat=sync_pb2.Heartbeat()), NOW)
     assert state.shell.close("node-gannet-1", 1, NOW).events == ()
@@ -157,12 +157,12 @@ def test_a_disconnected_node_leaves_every_table_and_stops_being_listed_stale(wor
     assert wire_state(Policy(), state_dir=tmp_path).readings.node_ids() == ["node-gannet-2"]
 
 
-def test_force_forgets_a_connected_node_and_ends_its_stream(world: World) -> None:
+def test_force_unlists_a_connected_node_and_ends_its_stream(world: World) -> None:
     state = world.state
     box: queue.Queue = queue.Queue()
     with state.shell.lock:
         world.streams._outbox["node-gannet-2"] = box       # node-gannet-2's stream is open
-    reply = world.admin.ForgetNode(admin_pb2.ForgetNodeRequest(node_id="node-gannet-2", force=True), FakeContext())
+    reply = world.admin.UnlistNode(admin_pb2.UnlistNodeRequest(node_id="node-gannet-2", force=True), FakeContext())
     assert reply.was_connected and reply.had_replica
     assert state.readings.node_ids() == ["node-gannet-1"] and "node-gannet-2" not in world.streams._outbox
     ended = box.get_nowait()
@@ -179,19 +179,19 @@ def test_unknown_or_empty_ids_change_nothing(world: World, tmp_path: Path, node_
                                             code: grpc.StatusCode) -> None:
     before = held_state(world.state, tmp_path)
     with pytest.raises(Aborted) as err:
-        world.admin.ForgetNode(admin_pb2.ForgetNodeRequest(node_id=node_id, force=True), FakeContext())
+        world.admin.UnlistNode(admin_pb2.UnlistNodeRequest(node_id=node_id, force=True), FakeContext())
     assert err.value.code == code and held_state(world.state, tmp_path) == before
     if code == grpc.StatusCode.NOT_FOUND:
         assert "node-gannet-1, node-gannet-2" in err.value.details
 
 
-def test_a_remembered_node_that_never_reconnected_can_be_forgotten(tmp_path: Path) -> None:
+def test_a_remembered_node_that_never_reconnected_can_be_unlisted(tmp_path: Path) -> None:
     (tmp_path / "nodes.json").write_text(json.dumps({"nodes": {"node-skua-9": "10.0.0.9:7100"}}))
     state = wire_state(Policy(), state_dir=tmp_path)
     ops = Operations(state.shell, state.readings, state.monitor, state.policy, state.hints, state.membership,
                      send=lambda messages: None, clock=lambda: NOW)
     assert [c.node_id for c in state.candidates.find([b"x"], NOW).rows()[0]] == ["node-skua-9"]   # stale forever otherwise
-    gone = ops.forget("node-skua-9")
+    gone = ops.unlist("node-skua-9")
     assert gone.address == "10.0.0.9:7100" and not gone.had_replica and not gone.was_connected
     assert state.candidates.find([b"x"], NOW).rows() == [[]]
     assert json.loads((tmp_path / "nodes.json").read_text()) == {"nodes": {}}

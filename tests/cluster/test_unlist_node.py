@@ -1,8 +1,8 @@
-"""Decommissioning a node on real processes: `shardsieve forget` against a live LocalCluster.
+"""Unlisting a node gone for good, on real processes: `shardsieve unlist` against a live LocalCluster.
 
 Outside checks: the node's own process state (stopped / still answering its NodeStorage API) and
 the coordinator's state dir on disk, besides the coordinator's replies. The behaviour expected is
-docs/coordinator.md, "Decommissioning a node", and docs/cli.md (exit codes 0, 2, 6).
+docs/coordinator.md, "Removing a node for good", and docs/cli.md (exit codes 0, 2, 6).
 """
 
 from __future__ import annotations
@@ -30,7 +30,7 @@ def status_ids(cluster: LocalCluster) -> list[str]:
     return sorted(n.node_id for n in cluster.fleet_status().nodes)
 
 
-def test_forget_a_stopped_node_turns_unavailable_reads_into_clean_not_found(tmp_path) -> None:
+def test_unlist_a_stopped_node_turns_unavailable_reads_into_clean_not_found(tmp_path) -> None:
     with LocalCluster(tmp_path, nodes=2, capacity=1000, extra_coordinator_args=["--auto-rebuild", "false"]) as cluster:
         router = cluster.router()
         router.Write(routing_pb2.WriteRequest(key=b"buoy-7", value=b"amber", node_id="node-2"), timeout=5)
@@ -38,14 +38,14 @@ def test_forget_a_stopped_node_turns_unavailable_reads_into_clean_not_found(tmp_
 
         # A connected node is refused without --force, and nothing changes.
         before = status_ids(cluster)
-        refused = run(cluster, "forget", "node-1", "--yes")
+        refused = run(cluster, "unlist", "node-1", "--yes")
         assert refused.exit_code == 6, refused.output
         assert "node-1" in refused.output and "is connected" in refused.output and "force" in refused.output
-        no_yes = run(cluster, "forget", "node-1")                    # no terminal, no --yes: usage error
+        no_yes = run(cluster, "unlist", "node-1")                    # no terminal, no --yes: usage error
         assert no_yes.exit_code == 2 and "unreachable through this coordinator" in no_yes.output
         assert status_ids(cluster) == before == ["node-1", "node-2"]
         n1 = next(n for n in cluster.fleet_status().nodes if n.node_id == "node-1")
-        assert n1.connected and n1.state == "in-sync"
+        assert n1.connected and n1.state == "fresh"
 
         # node-2 goes away: safe mode lists it stale, and reads that need it cannot prove absence.
         cluster.stop_node("node-2")
@@ -55,9 +55,9 @@ def test_forget_a_stopped_node_turns_unavailable_reads_into_clean_not_found(tmp_
                 router.Read(routing_pb2.ReadRequest(key=key), timeout=5)
             assert err.value.code() == grpc.StatusCode.UNAVAILABLE and "node-2" in err.value.details()
 
-        forgot = run(cluster, "forget", "node-2", "--yes", "--json")
-        assert forgot.exit_code == 0, forgot.output
-        doc = json.loads(forgot.stdout)
+        unlisted = run(cluster, "unlist", "node-2", "--yes", "--json")
+        assert unlisted.exit_code == 0, unlisted.output
+        doc = json.loads(unlisted.stdout)
         assert doc["node_id"] == "node-2" and doc["was_connected"] is False and doc["had_replica"] is True
 
         reply = router.Read(routing_pb2.ReadRequest(key=b"buoy-7"), timeout=5)
@@ -68,4 +68,4 @@ def test_forget_a_stopped_node_turns_unavailable_reads_into_clean_not_found(tmp_
         assert sorted(membership) == ["node-1"]
         # node-1 was never touched: it still serves its own API
         assert cluster.storage("node-1").Get(storage_pb2.GetRequest(key=b"buoy-7"), timeout=5).found is False
-        wait_until(lambda: cluster.in_sync(["node-1"]), 10, message="node-1 still in sync")
+        wait_until(lambda: cluster.all_fresh(["node-1"]), 10, message="node-1 still synced")

@@ -1,7 +1,7 @@
-"""`shardsieve demo`: a coordinator and 8 nodes on loopback, an invented business's records, a short
+"""`shardsieve tour`: a coordinator and 8 nodes on loopback, an invented business's records, a short
 load test and its report — then a clean shutdown, or (--keep) a running fleet to explore.
 
-Ctrl-C (SIGINT) or SIGTERM at any point stops every process the demo started before it exits.
+Ctrl-C (SIGINT) or SIGTERM at any point stops every process the tour started before it exits.
 """
 
 from __future__ import annotations
@@ -28,7 +28,7 @@ from shardsieve.client import EXIT_FAILURE, EXIT_USAGE, CliSettings, ClientError
 from shardsieve.loadtest.runner import LoadtestOptions, NodeChannels, run_loadtest, wait_fleet_ready
 from shardsieve.loadtest.runner import seed as seed_nodes
 
-DEMO_NODES = 8
+TOUR_NODES = 8
 
 
 def _on_sigterm(signum: int, frame: FrameType | None) -> None:
@@ -40,7 +40,7 @@ def _listen_port(coordinator: str | None) -> int:
         return 0
     host, sep, port = coordinator.rpartition(":")
     if not sep or host not in ("127.0.0.1", "localhost") or not port.isdigit() or not 0 < int(port) < 65536:
-        raise ClientError(f"--coordinator {coordinator!r}: the demo listens on loopback, give 127.0.0.1:PORT",
+        raise ClientError(f"--coordinator {coordinator!r}: the tour listens on loopback, give 127.0.0.1:PORT",
                           EXIT_USAGE)
     return int(port)
 
@@ -49,7 +49,7 @@ def _listen_port(coordinator: str | None) -> int:
 @click.option("--dir", "directory", type=click.Path(file_okay=False), default=None,
               help="Directory for stores, logs and the plot (default: a new temporary directory).")
 @click.option("--keep", is_flag=True, help="Leave the fleet running and print the commands to explore it.")
-@click.option("--nodes", type=click.IntRange(2, 32), default=DEMO_NODES, show_default=True,
+@click.option("--nodes", type=click.IntRange(2, 32), default=TOUR_NODES, show_default=True,
               help="Storage nodes to start.")
 @click.option("--records", type=click.IntRange(100, 200_000), default=12_000, show_default=True,
               help="Records of the invented business to seed.")
@@ -59,11 +59,11 @@ def _listen_port(coordinator: str | None) -> int:
               help="Reader threads of the load test.")
 @click.option("--seed", type=int, default=1, show_default=True, help="Random seed of records and workload.")
 @click.option("--coordinator", default=None, metavar="127.0.0.1:PORT",
-              help="Where the demo's coordinator listens (default: a free port).")
-@click.option("--token", default=None, help="Bearer token the demo's coordinator will require (default: none).")
+              help="Where the tour's coordinator listens (default: a free port).")
+@click.option("--token", default=None, help="Bearer token the tour's coordinator will require (default: none).")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON document (the report and where things are).")
 @guarded
-def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s: float, concurrency: int,
+def tour(directory: str | None, keep: bool, nodes: int, records: int, duration_s: float, concurrency: int,
          seed: int, coordinator: str | None, token: str | None, as_json: bool) -> None:
     """Start a small fleet on this machine, seed the Brinewick Kelp Cooperative's records
     (an invented business), run a short load test and print its report."""
@@ -72,7 +72,7 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
 
     started = time.monotonic()
     port = _listen_port(coordinator)
-    workdir = Path(directory) if directory else Path(tempfile.mkdtemp(prefix="shardsieve-demo-"))
+    workdir = Path(directory) if directory else Path(tempfile.mkdtemp(prefix="shardsieve-tour-"))
     workdir.mkdir(parents=True, exist_ok=True)
     out = console(stderr=as_json)
     previous_term = signal.signal(signal.SIGTERM, _on_sigterm)
@@ -90,14 +90,14 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
     try:
         out.print(f"[bold]{scenario.BUSINESS}[/] (an invented business): starting a coordinator and {nodes} nodes "
                   f"in {workdir} …")
-        out.print("security: plaintext gRPC on 127.0.0.1, explicitly allowed for this loopback demo "
+        out.print("security: plaintext gRPC on 127.0.0.1, explicitly allowed for this loopback tour "
                   "(allow-plaintext); a real fleet uses TLS, see docs/security.md")
         try:
             cluster.start()
         except (ProcessError, TimeoutError) as exc:
             found = re.search(r"lines of (\S+) ---", str(exc))
             where = f"see {found.group(1)}" if found else f"logs are in {workdir}"
-            raise ClientError(f"the demo fleet did not start ({str(exc).splitlines()[0]}): {where}",
+            raise ClientError(f"the tour fleet did not start ({str(exc).splitlines()[0]}): {where}",
                               EXIT_FAILURE) from None
         settings = CliSettings(coordinator=cluster.coordinator_address, token=token or "", timeout_s=10.0)
         with CoordinatorClient(settings) as client:
@@ -118,7 +118,7 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
                                        ready_timeout_s=30.0, routable_timeout_s=30.0)
                 result = run_loadtest(client, opts, phases)
         report = result.report
-        plot_path = workdir / "demo-report.png"
+        plot_path = workdir / "tour-report.png"
         try:
             from shardsieve.loadtest.plot import draw
             report["plot"] = str(draw(plot_path, report, result.times_s, result.latency_ms))
@@ -144,9 +144,9 @@ def demo(directory: str | None, keep: bool, nodes: int, records: int, duration_s
             _print_next_steps(out, cluster.coordinator_address, workdir, keep, token, recs, elapsed)
         check_false_negatives(report)
     except KeyboardInterrupt:
-        out.print("interrupted: stopping the demo fleet …")
+        out.print("interrupted: stopping the tour fleet …")
         cluster.stop()
-        raise CliFailure("interrupted; every process the demo started has been stopped", 130) from None
+        raise CliFailure("interrupted; every process the tour started has been stopped", 130) from None
     finally:
         if not kept:
             cluster.stop()
@@ -170,7 +170,7 @@ def command_word() -> str:
 def _print_next_steps(out: Console, address: str, workdir: Path, keep: bool, token: str | None,
                       recs: list[scenario.Record], elapsed: float) -> None:
     if not keep:
-        out.print(f"demo finished in {elapsed:.1f}s; every process is stopped. Logs and stores: {workdir} "
+        out.print(f"tour finished in {elapsed:.1f}s; every process is stopped. Logs and stores: {workdir} "
                   f"(rerun with --keep to explore the running fleet)")
         return
     env = f"export SHARDSIEVE_COORDINATOR={address}"
@@ -178,7 +178,7 @@ def _print_next_steps(out: Console, address: str, workdir: Path, keep: bool, tok
         env += f" SHARDSIEVE_TOKEN={shlex.quote(token)}"
     key = shlex.quote(scenario.example_keys(recs, 1)[0])
     cmd = command_word()
-    out.print(f"demo ready in {elapsed:.1f}s; the fleet keeps running. Explore it:\n"
+    out.print(f"tour ready in {elapsed:.1f}s; the fleet keeps running. Explore it:\n"
               f"  {env}\n"
               f"  {cmd} status                       # red rows: sheds over capacity\n"
               f"  {cmd} locate {key}\n"
