@@ -766,34 +766,36 @@ class NodeSync:
             saturated_counters=s.filter.saturated_counters())
 
     def _abandon(self, reason: str) -> None:
-        """End the rebuild without a switch. Only while no peer switched to the new epoch; the
-        old filter stays current and the new epoch's number is never reused."""
+        """End the rebuild without a switch. Only while no peer switched to the new epoch.
+
+        Abandoned while scanning: no message named the new epoch, so its number is burned and the
+        current epoch goes on. Abandoned during the hand-over: coordinators may hold the new epoch
+        already (a lost SnapshotVerified), and a coordinator never takes an epoch older than its
+        replica (docs/sync-protocol.md, "Positions that cannot follow"). So the old filter goes on
+        under a fresh epoch, highest used + 1, whose baseline is that filter now, and every peer
+        gets a snapshot of it: nothing this node sends is ever older than what it sent before."""
         if self._old is not None and any(p.switched for p in self._peers.values()):
             raise RebuildStateError("a coordinator already routes with the new epoch; it cannot be abandoned")
         self._rebuild_event(RebuildEvent.ABANDONED)
+        abandoned = self._highest_epoch + 1 if self._old is None else self._stream.epoch
+        self._highest_epoch += 1   # the scan's number is burned, or the fresh epoch is taken
         if self._old is None:
             self._scan = None
-            self._highest_epoch += 1   # burn the number the rebuild would have used
-            epoch = self._highest_epoch
         else:
-            epoch = self._stream.epoch
-            self._stream, self._old = self._old, None
+            old, self._old = self._old, None
+            self._stream = _EpochStream(self._highest_epoch, old.filter, old.capacity, old.target_fpr, self.config)
             for p in self._peers.values():
-                snap = p.snapshot
-                if snap is not None and snap.restore_epoch is not None:
-                    p.stream_epoch = snap.restore_epoch
-                    p.acked = p.sent = snap.restore_acked
-                    p.in_flight.clear()
-                    p.in_flight_bytes = 0
+                p.stream_epoch = None
+                p.acked = p.sent = -1
+                p.in_flight.clear()
+                p.in_flight_bytes = 0
                 p.snapshot = None
-                if p.wanted is not None and p.wanted[0] == PURPOSE_REBUILD:
-                    p.wanted = None
-                if p.stream_epoch == epoch:
-                    p.stream_epoch = None    # resync with the old (again current) filter
-                    p.wanted = (PURPOSE_RESYNC, "rebuild abandoned")
+                p.switched = False
+                p.rebuild_rejections = 0
+                p.wanted = (PURPOSE_RESYNC, f"rebuild abandoned; continuing under epoch {self._highest_epoch}")
         self._durable_epoch = self._highest_epoch
         self._rebuilds_abandoned += 1
-        self._log("warning", "rebuild abandoned", epoch=epoch, reason=reason)
+        self._log("warning", "rebuild abandoned", epoch=abandoned, current_epoch=self._stream.epoch, reason=reason)
 
     def _peer(self, peer: str) -> _Peer:
         try:
@@ -845,10 +847,9 @@ class NodeSync:
         """Ack and SnapshotVerified: the coordinator's replica is at (epoch, sequence)."""
         snap = p.snapshot
         if self._live(epoch) is None:
-            if p.stream_epoch is not None and epoch > p.stream_epoch and snap is None and p.wanted is None:
-                # the coordinator installed a rebuild we then abandoned: move it back by a snapshot
-                p.wanted = (PURPOSE_RESYNC, f"coordinator follows abandoned epoch {epoch}")
-            return  # otherwise an epoch already retired: a late message
+            # an epoch already retired (a late message), or one a coordinator took before the
+            # rebuild was abandoned: every epoch since is newer, and this peer gets a snapshot
+            return
         if snap is not None and epoch == snap.epoch and sequence >= snap.sequence and (
                 snap.all_sent or verified_id == snap.snapshot_id):
             # the coordinator installed this snapshot (or holds a later state of its epoch)
