@@ -40,6 +40,9 @@ Why the state looks like this (docs/sync-protocol.md has the full argument):
   cut *after* the snapshot are never sent to that peer: a coordinator that applied them
   and then installed the (older) snapshot would lose keys added in between
   (docs/architecture.md#1-no-false-negatives-once-synced).
+- Positions only move forward: a coordinator refuses anything older than its replica
+  (docs/sync-protocol.md, "Positions that cannot follow"), so a hand-over that is given up
+  goes on under a fresh epoch rather than back to the old one.
 """
 
 from __future__ import annotations
@@ -171,8 +174,8 @@ class WriteStamp:
     a 2^-64 coincidence could only make a coordinator drop its hint one push interval
     early. old_position: during a hand-over the change is in the old epoch too; the old
     epoch's position that holds it (same rule), so a coordinator still on the old epoch
-    can drop its hint even if the rebuild is then abandoned
-    (docs/architecture.md#2-read-your-writes-through-a-coordinator).
+    can drop its hint before the rebuild completes or, if it is abandoned, before the fresh
+    epoch reaches it (docs/architecture.md#2-read-your-writes-through-a-coordinator).
     cut_due: about `cut_after_bits` bits changed since the last cut; cut now rather than
     at the next push tick (docs/architecture.md#3-bounded-staleness).
     """
@@ -454,7 +457,8 @@ class NodeSync:
 
     @property
     def highest_epoch(self) -> int:
-        """The largest epoch number used so far (abandoned rebuilds burn one)."""
+        """The largest epoch number used so far (an abandoned rebuild burns its number; one
+        abandoned during the hand-over also takes a fresh one to go on under)."""
         return self._highest_epoch
 
     @property
@@ -733,8 +737,8 @@ class NodeSync:
         self._maybe_retire()
 
     def scan_failed(self, reason: str) -> None:
-        """The daemon could not finish the scan: the rebuild is abandoned (the old filter
-        stays current; the epoch number it would have used is burned)."""
+        """The daemon could not finish the scan: the rebuild is abandoned (the old filter and
+        epoch stay current; the epoch number it would have used is burned)."""
         self._running_scan()
         self._abandon(reason)
 
