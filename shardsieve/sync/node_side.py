@@ -61,6 +61,7 @@ from shardsieve import codec, hashing
 from shardsieve.bloom import CountingBloomFilter
 from shardsieve.geometry import Geometry, GeometryError, geometry_for
 from shardsieve.snapshot import MAX_CHUNK_BYTES, EncodedSnapshot, encode_snapshot
+from shardsieve.sync.bounds import MAX_EPOCH
 from shardsieve.sync.errors import (
     GeometryMismatch,
     MalformedMessage,
@@ -427,6 +428,9 @@ class NodeSync:
             raise ValueError("node_id must be a non-empty string")
         if isinstance(epoch, bool) or not isinstance(epoch, int) or epoch < 0:
             raise ValueError(f"epoch must be a non-negative integer, got {epoch!r}")
+        if epoch > MAX_EPOCH:
+            raise ValueError(f"epoch {epoch} is above {MAX_EPOCH}, the largest a position may carry: coordinators "
+                             "would refuse every message (docs/sync-protocol.md, \"Positions that cannot follow\")")
         self.node_id = node_id
         self.storage_address = storage_address
         self.config = config or NodeSyncConfig()

@@ -20,6 +20,7 @@ from shardsieve.bloom import CountingBloomFilter
 from shardsieve.codec import decode_delta
 from shardsieve.geometry import Geometry, geometry_for
 from shardsieve.snapshot import SnapshotAssembler
+from shardsieve.sync.bounds import MAX_EPOCH
 from shardsieve.sync.errors import (
     GeometryMismatch,
     MalformedMessage,
@@ -302,6 +303,14 @@ def test_unconfirmed_snapshot_is_replaced_by_a_fresh_one() -> None:
 
 
 # ----------------------------------------------------------------------------- refusals
+
+
+def test_a_start_past_the_largest_epoch_is_refused() -> None:
+    # docs/sync-protocol.md, "Positions that cannot follow": coordinators refuse epochs above
+    # MAX_EPOCH, so a node must not start there (a corrupt persisted epoch, say)
+    assert make(epoch=MAX_EPOCH).epoch == MAX_EPOCH
+    with pytest.raises(ValueError, match="largest a position may carry"):
+        make(epoch=MAX_EPOCH + 1)
 
 
 def test_a_message_for_another_node_is_refused_and_changes_nothing() -> None:
