@@ -20,6 +20,7 @@ from shardsieve.coordinator.readings import NodeReading, Readings
 from shardsieve.coordinator.saturation import Decision, saturation_reasons
 from shardsieve.fanout import avoided_fanout
 from shardsieve.intervals import wilson_interval
+from shardsieve.limits import node_id_problem
 from shardsieve.v1 import admin_pb2, admin_pb2_grpc
 
 log = logging.getLogger("shardsieve.coordinator.admin")
@@ -69,6 +70,16 @@ class AdminService(admin_pb2_grpc.AdminServicer):
     def _known(self) -> str:
         return ", ".join(self.readings.node_ids()) or "none"
 
+    @staticmethod
+    def _refuse_bad_ids(node_ids: list[str], context: grpc.ServicerContext) -> None:
+        """INVALID_ARGUMENT, naming the rule, for an id outside the node id alphabet (docs/node.md,
+        "Node ids"): no node can have it, so the request is malformed rather than about an
+        unknown node."""
+        for node_id in node_ids:
+            problem = node_id_problem(node_id)
+            if problem:
+                context.abort(grpc.StatusCode.INVALID_ARGUMENT, f"{problem}; nothing changed")
+
     def FleetStatus(self, request: admin_pb2.FleetStatusRequest, context: grpc.ServicerContext) -> admin_pb2.FleetStatusReply:
         fleet = self.readings.fleet(self.clock())
         totals = fleet.totals
@@ -83,6 +94,7 @@ class AdminService(admin_pb2_grpc.AdminServicer):
             rebuilds_in_progress=fleet.rebuilds_in_progress)
 
     def NodeDetail(self, request: admin_pb2.NodeDetailRequest, context: grpc.ServicerContext) -> admin_pb2.NodeDetailReply:
+        self._refuse_bad_ids([request.node_id], context)
         node = self.readings.node(request.node_id, self.clock())
         if node is None:
             context.abort(grpc.StatusCode.NOT_FOUND, f"no node {request.node_id!r} is known (known: {self._known()})")
@@ -93,6 +105,7 @@ class AdminService(admin_pb2_grpc.AdminServicer):
     def Rebuild(self, request: admin_pb2.RebuildCommand, context: grpc.ServicerContext) -> admin_pb2.RebuildReply:
         if not request.node_ids and not request.flagged:
             context.abort(grpc.StatusCode.INVALID_ARGUMENT, "name at least one node id or set 'flagged'")
+        self._refuse_bad_ids(list(request.node_ids), context)
         if request.target_fpr and not 0.0 < request.target_fpr < 1.0:
             context.abort(grpc.StatusCode.INVALID_ARGUMENT,
                           f"target_fpr {request.target_fpr} must be strictly between 0 and 1 (0: policy target)")
@@ -131,6 +144,7 @@ class AdminService(admin_pb2_grpc.AdminServicer):
         node_id = request.node_id
         if not node_id:
             context.abort(grpc.StatusCode.INVALID_ARGUMENT, "name the node id to unlist")
+        self._refuse_bad_ids([node_id], context)
         try:
             gone = self.operations.unlist(node_id, request.force)
         except KeyError:

@@ -14,8 +14,9 @@ from __future__ import annotations
 
 import logging
 import threading
+import time
 from concurrent import futures
-from typing import Any
+from typing import Any, Callable
 
 import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
@@ -45,7 +46,10 @@ def setup_logging(settings: CoordinatorSettings) -> None:
 class CoordinatorDaemon:
     """One running coordinator. start() returns once SERVING; stop() is idempotent."""
 
-    def __init__(self, settings: CoordinatorSettings) -> None:
+    def __init__(self, settings: CoordinatorSettings, *, clock: Callable[[], float] = time.monotonic,
+                 wall: Callable[[], float] = time.time) -> None:
+        """clock: monotonic seconds, for every duration (freshness, hint ages, rebuild timeout,
+        shrink grace); wall: Unix seconds, only for timestamps shown to people (decisions)."""
         self.settings = settings
         limits = settings.sync_limits()
         # the owners of state and their readers (coordinator/wiring.py)
@@ -62,21 +66,23 @@ class CoordinatorDaemon:
         node_tokens = secrets["node-token"]
         self.node_auth = "certificate" if settings.tls_client_auth else "token" if node_tokens else "open"
         self.node_authorizer = security.NodeAuthorizer(self.node_auth, node_tokens)
-        self.sync = SyncService(shell, delta_bytes=self.metrics.delta_bytes.inc, authorizer=self.node_authorizer,
+        self.sync = SyncService(shell, clock=clock, delta_bytes=self.metrics.delta_bytes.inc,
+                                authorizer=self.node_authorizer,
                                 limiter=security.StreamLimiter(settings.max_streams_per_peer), limits=limits)
         shell.subscribe(self.metrics.on_event)
         shell.subscribe(self.sync.on_event)
         self.operations = Operations(shell, state.readings, state.monitor, state.policy, state.hints,
-                                     state.membership, self.sync.send, hint_max_age_s=settings.hint_max_age_s)
+                                     state.membership, self.sync.send, hint_max_age_s=settings.hint_max_age_s,
+                                     clock=clock, wall=wall)
         self.prober = Prober(settings.probe_threads, credentials=tls.channel_credentials(),
                              metadata=security.auth_metadata(secrets["node-storage-token"]))
         self.router = Router(state.candidates, shell, state.membership, state.hints, state.accounting,
-                             state.policy, self.prober, expire_hints=self.operations.expire_hints,
+                             state.policy, self.prober, expire_hints=self.operations.expire_hints, clock=clock,
                              read_deadline_s=settings.read_deadline_ms / 1000.0,
                              write_deadline_s=settings.write_deadline_ms / 1000.0, metrics=self.metrics,
                              max_key_bytes=settings.max_key_bytes, max_value_bytes=settings.max_value_bytes,
                              max_batch_keys=settings.max_batch_keys)
-        self.admin = AdminService(settings.id, state.readings, self.operations, state.policy)
+        self.admin = AdminService(settings.id, state.readings, self.operations, state.policy, clock=clock)
         # Installed even with no token configured, so a reload (SIGHUP) can start requiring one.
         self.guard = security.TokenGuard(self._token_rules(secrets))
         self.server = grpc.server(futures.ThreadPoolExecutor(max_workers=settings.grpc_workers,

@@ -60,8 +60,8 @@ class Operations:
         self._send = send
         self.hint_max_age_s = hint_max_age_s
         self._decisions: collections.deque[Decision] = collections.deque(maxlen=max_decisions)
-        self._clock = clock
-        self._wall = wall
+        self._clock = clock   # monotonic: every duration (hint ages, rebuild timeout, grace, cooldown)
+        self._wall = wall     # wall-clock: only the decisions' timestamps shown to people
 
     # -- the decision log ---------------------------------------------------------------------------
     def record(self, decisions: Sequence[Decision]) -> None:
@@ -92,19 +92,18 @@ class Operations:
     def rebuild(self, plans: Sequence[RebuildPlan]) -> None:
         """Start an operator's plan: every plan not queued."""
         for plan in plans:
-            if not plan.queued and self.start_rebuild(plan, self._wall()):
+            if not plan.queued and self.start_rebuild(plan, self._clock()):
                 self.record([Decision(self._wall(), plan.node_id, "rebuild",
                                       f"capacity {plan.capacity} at target {plan.target_fpr:g}; "
                                       f"geometry {plan.geometry}: {plan.reason}")])
 
     def start_rebuild(self, plan: RebuildPlan, now: float) -> bool:
         """Ask the node to rebuild over its sync stream and hold a rebuild slot for it until the
-        monitor sees the new epoch (or gives up). False, with a skip decision, when it cannot be
-        asked (not connected, bad sizes)."""
+        monitor sees the new epoch (or gives up; `now` is monotonic, the timeout runs from it).
+        False, with a skip decision, when it cannot be asked (not connected, bad sizes)."""
         with self._shell.lock:
             try:
-                result = self._shell.request_rebuild(plan.node_id, plan.capacity, plan.target_fpr, plan.reason,
-                                                     self._clock())
+                result = self._shell.request_rebuild(plan.node_id, plan.capacity, plan.target_fpr, plan.reason, now)
             except (KeyError, ValueError) as exc:
                 self._monitor.drop_node(plan.node_id)
                 self.record([Decision(self._wall(), plan.node_id, "skip", f"rebuild not sent: {exc}")])
@@ -166,8 +165,7 @@ class Operations:
         with self._shell.lock:
             now = self._clock()
             self.expire_hints(now)
-            wall = self._wall()
-            result = self._monitor.tick(wall, self._readings.filters(now), self._policy.current)
+            result = self._monitor.tick(now, self._readings.filters(now), self._policy.current, at=self._wall())
             self.record(result.decisions)
             for plan in result.rebuilds:
-                self.start_rebuild(plan, self._wall())
+                self.start_rebuild(plan, now)

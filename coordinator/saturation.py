@@ -1,8 +1,11 @@
 """Saturation monitor: decide which node filters to rebuild (grow or shrink), and when.
 
-A plain object driven by ticks: `tick(now, nodes, policy)` takes a reading of every synced
-node's filter and returns the decisions taken (with the numbers behind them) and the rebuilds
-to request. coordinator/operations.py sends the requests over the nodes' sync streams and keeps
+A plain object driven by ticks: `tick(now, nodes, policy, at=...)` takes a reading of every
+synced node's filter and returns the decisions taken (with the numbers behind them) and the
+rebuilds to request. Two clocks, never mixed: `now` is monotonic seconds and every duration
+(rebuild timeout, cooldown, shrink grace) is measured on it, so a wall-clock step (NTP, an
+operator) neither fires nor holds back a timeout; `at` is wall-clock Unix seconds, only
+stamped on the decisions for people. coordinator/operations.py sends the requests over the nodes' sync streams and keeps
 the decisions for the admin API. The monitor subscribes to the sync events only to drop a
 unlisted node. Not thread-safe: the coordinator calls it under its one lock.
 
@@ -47,7 +50,7 @@ class FilterReading:
 
 @dataclass(frozen=True)
 class Decision:
-    at: float
+    at: float                     # wall-clock Unix seconds, for people (Admin.Decisions at_unix); no duration
     node_id: str
     action: str                   # "flag", "rebuild", "shrink", "skip", "done"
     detail: str
@@ -65,7 +68,7 @@ class RebuildPlan:
 
 @dataclass
 class _InFlight:
-    started_at: float
+    started_at: float             # monotonic seconds
     epoch_before: int
     capacity: int
     reason: str
@@ -165,6 +168,7 @@ class SaturationMonitor:
 
     # -- state changes ------------------------------------------------------------------------
     def started(self, plan: RebuildPlan, epoch_before: int, now: float) -> None:
+        """A rebuild was asked for at monotonic time `now`; it holds a slot until done or timed out."""
         self.in_flight[plan.node_id] = _InFlight(now, epoch_before, plan.capacity, plan.reason)
 
     def drop_node(self, node_id: str) -> None:
@@ -176,8 +180,9 @@ class SaturationMonitor:
         if isinstance(event, NodeUnlisted):
             self.drop_node(event.node_id)
 
-    def tick(self, now: float, nodes: list[FilterReading], policy: Policy) -> TickResult:
-        """Assess every node; finish, time out, flag and start rebuilds. Returns what it decided."""
+    def tick(self, now: float, nodes: list[FilterReading], policy: Policy, *, at: float) -> TickResult:
+        """Assess every node; finish, time out, flag and start rebuilds. Returns what it decided.
+        `now`: monotonic seconds (every duration); `at`: wall-clock seconds stamped on decisions."""
         out = TickResult()
         by_id = {n.node_id: n for n in nodes}
         # Rebuilds in flight: done when the node moved to a later epoch; give up after the timeout.
@@ -186,14 +191,14 @@ class SaturationMonitor:
             if node is not None and node.epoch > job.epoch_before:
                 del self.in_flight[node_id]
                 self._last_done[node_id] = now
-                out.decisions.append(Decision(now, node_id, "done",
+                out.decisions.append(Decision(at, node_id, "done",
                                               f"epoch {job.epoch_before} -> {node.epoch}; capacity {node.capacity}, "
                                               f"{node.key_count} keys, predicted FPR {node.predicted_fpr:.4g} "
                                               f"(target {policy.target_fpr:g}) after {now - job.started_at:.1f}s"))
             elif now - job.started_at > self.rebuild_timeout_s:
                 del self.in_flight[node_id]
                 self._last_done[node_id] = now   # retry only after the cooldown
-                out.decisions.append(Decision(now, node_id, "skip",
+                out.decisions.append(Decision(at, node_id, "skip",
                                               f"rebuild to capacity {job.capacity} not verified within "
                                               f"{self.rebuild_timeout_s:g}s; slot released"))
         # Flag transitions.
@@ -202,7 +207,7 @@ class SaturationMonitor:
             reasons = saturation_reasons(node, policy)
             was = node.node_id in self.flagged
             if reasons and not was:
-                out.decisions.append(Decision(now, node.node_id, "flag", "; ".join(reasons)))
+                out.decisions.append(Decision(at, node.node_id, "flag", "; ".join(reasons)))
             if reasons:
                 self.flagged[node.node_id] = reasons
             else:
@@ -229,13 +234,13 @@ class SaturationMonitor:
                 note = (f"queued: {len(self.in_flight)} of {policy.max_concurrent_rebuilds} rebuild slots busy "
                         f"({', '.join(sorted(self.in_flight))})")
                 if self._last_note.get(plan.node_id) != "queued":
-                    out.decisions.append(Decision(now, plan.node_id, "skip", note + "; " + plan.reason))
+                    out.decisions.append(Decision(at, plan.node_id, "skip", note + "; " + plan.reason))
                     self._last_note[plan.node_id] = "queued"
                 continue
             self._last_note.pop(plan.node_id, None)
             action = "shrink" if plan.reason.startswith("shrink") else "rebuild"
             geo = f"; geometry {plan.geometry}" if plan.geometry else ""
-            out.decisions.append(Decision(now, plan.node_id, action,
+            out.decisions.append(Decision(at, plan.node_id, action,
                                           f"capacity {plan.capacity} at target {plan.target_fpr:g}{geo}: {plan.reason}"))
             self.started(plan, by_id[plan.node_id].epoch, now)
             out.rebuilds.append(plan)

@@ -7,6 +7,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from shardsieve.config import ConfigError, check_address, setting
+from shardsieve.limits import node_id_problem
 
 ENV_PREFIX = "SHARDSIEVE_NODE_"
 SECTION = "node"
@@ -16,7 +17,8 @@ SECTION = "node"
 class NodeSettings:
     """Everything a node process needs; `validate` names the first bad setting and why."""
 
-    id: str = setting("", "Stable node id (letters, digits, '-', '_', '.'); required.")
+    id: str = setting("", "Stable node id: 1 to 64 of a-z, 0-9, '.', '_', '-', starting with a letter or digit "
+                          "(docs/node.md, \"Node ids\"); required.")
     listen: str = setting("127.0.0.1:7500", "HOST:PORT the NodeStorage gRPC service listens on (port 0: any free port).")
     advertise: str = setting("", "HOST:PORT coordinators use to reach this node; empty: the listen address.")
     data: Path = setting(Path("./node-data"), "Directory of the node's SQLite store.")
@@ -58,8 +60,9 @@ class NodeSettings:
     def validate(self) -> None:
         if not self.id:
             raise ConfigError("setting 'id' is required (--id, SHARDSIEVE_NODE_ID or id in [node])")
-        if not all(c.isalnum() or c in "-_." for c in self.id) or len(self.id) > 128:
-            raise ConfigError(f"setting 'id': {self.id!r} may hold only letters, digits, '-', '_', '.' (at most 128)")
+        problem = node_id_problem(self.id)
+        if problem:
+            raise ConfigError(f"setting 'id': {problem}")
         check_address("listen", self.listen)
         if self.advertise:
             check_address("advertise", self.advertise)

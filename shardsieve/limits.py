@@ -14,6 +14,7 @@ about its own keys) but flagged in status and metrics.
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass
 
 from shardsieve.geometry import MAX_BITS, MAX_HASHES, MIN_BITS
@@ -22,7 +23,6 @@ from shardsieve.snapshot import MAX_CHUNK_BYTES
 from shardsieve.sync.errors import InvalidHello, MalformedMessage, SyncError
 from shardsieve.v1 import filter_pb2, sync_pb2
 
-MAX_NODE_ID_CHARS = 128
 MAX_ADDRESS_CHARS = 256
 MAX_REASON_CHARS = 1024
 
@@ -55,8 +55,46 @@ class SyncLimits:
         return min((self.max_filter_bits + 7) // 8, self.max_snapshot_chunks * MAX_CHUNK_BYTES)
 
 
-def valid_node_id(node_id: str) -> bool:
-    return 0 < len(node_id) <= MAX_NODE_ID_CHARS and all(c.isalnum() or c in "-_." for c in node_id)
+# --------------------------------------------------------------------------- node ids
+
+#: Longest node id: a node id is the common name of the node's certificate, and X.509 bounds a
+#: common name at 64 characters (RFC 5280, Appendix A.1, ub-common-name).
+MAX_NODE_ID_CHARS = 64
+NODE_ID_PATTERN = re.compile(r"[a-z0-9][a-z0-9._-]{0,63}")
+#: The node id rule in words, for every error message that refuses an id (docs/node.md, "Node ids").
+NODE_ID_RULE = (f"1 to {MAX_NODE_ID_CHARS} characters from a-z, 0-9, '.', '_' and '-', starting with a "
+                "letter or digit")
+
+
+def node_id_problem(node_id: object) -> str:
+    """'' when `node_id` is a valid node id, else what is wrong with it, naming the rule.
+
+    The one statement of the node id alphabet (docs/node.md, "Node ids"). Why so narrow: a node
+    id names a file (certificates, tokens), a certificate's common name, a metrics label and a
+    routing entry, and operators type it. Lower-case ASCII only, so two ids never differ by case
+    alone or by a look-alike letter from another script (Cyrillic 'о' beside Latin 'o'); the
+    first character is a letter or digit, so '.', '..' and '-flag' are not ids; no '/' and no
+    control characters."""
+    if not isinstance(node_id, str):
+        return f"a node id is text, got {type(node_id).__name__}: a node id is {NODE_ID_RULE}"
+    if NODE_ID_PATTERN.fullmatch(node_id):
+        return ""
+    shown = repr(node_id[:MAX_NODE_ID_CHARS]) + ("..." if len(node_id) > MAX_NODE_ID_CHARS else "")
+    if not node_id:
+        what = "is empty"
+    elif len(node_id) > MAX_NODE_ID_CHARS:
+        what = f"has {len(node_id)} characters"
+    else:
+        index, char = next((i, c) for i, c in enumerate(node_id)
+                           if not NODE_ID_PATTERN.fullmatch(c if i == 0 else "a" + c))
+        where = "at the start" if index == 0 else f"at position {index}"
+        what = f"has {char!r} (U+{ord(char):04X}) {where}"
+    return f"node id {shown} {what}: a node id is {NODE_ID_RULE}"
+
+
+def valid_node_id(node_id: object) -> bool:
+    """Whether `node_id` follows the node id alphabet (`node_id_problem` says why not)."""
+    return not node_id_problem(node_id)
 
 
 def _check_geometry(g: filter_pb2.Geometry, limits: SyncLimits, where: str) -> None:
@@ -77,9 +115,9 @@ def check_node_message(msg: sync_pb2.NodeMessage, limits: SyncLimits) -> None:
         raise MalformedMessage("a sync message with no body (or a body this coordinator does not know)")
     if kind == "hello":
         h = msg.hello
-        if not valid_node_id(h.node_id):
-            raise InvalidHello(f"Hello.node_id must be 1..{MAX_NODE_ID_CHARS} letters, digits, '-', '_' or '.', "
-                               f"got {h.node_id[:MAX_NODE_ID_CHARS]!r}{'...' if len(h.node_id) > MAX_NODE_ID_CHARS else ''}")
+        problem = node_id_problem(h.node_id)
+        if problem:
+            raise InvalidHello(f"Hello.node_id: {problem}")
         if len(h.storage_address) > MAX_ADDRESS_CHARS:
             raise InvalidHello(f"Hello.storage_address has {len(h.storage_address)} characters; "
                                f"at most {MAX_ADDRESS_CHARS}")

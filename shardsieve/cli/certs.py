@@ -19,6 +19,8 @@ from typing import Sequence
 
 import click
 
+from shardsieve.limits import node_id_problem
+
 DEFAULT_HOSTS = ("localhost", "127.0.0.1", "::1")
 
 
@@ -42,10 +44,13 @@ RESERVED = frozenset({"ca", "coordinator", "operator", "admin", "node-tokens"})
 
 
 def _check_id(node_id: str) -> None:
+    """A certificate's common name is the node id, and its files are named after it: the id
+    must follow the node id alphabet (docs/node.md, "Node ids") and clash with no other file."""
+    problem = node_id_problem(node_id)
+    if problem:
+        raise click.BadParameter(problem)
     if node_id in RESERVED:
         raise click.BadParameter(f"node id {node_id!r} would clash with a file of the CA, coordinator or tools")
-    if not node_id or len(node_id) > 128 or not all(c.isalnum() or c in "-_." for c in node_id):
-        raise click.BadParameter(f"node id {node_id!r} may hold only letters, digits, '-', '_', '.' (1..128)")
 
 
 def _write(path: Path, data: bytes, private: bool) -> None:

@@ -24,6 +24,7 @@ from rich.table import Table
 from shardsieve.client import (
     EXIT_FAILURE, EXIT_INVALID, EXIT_NOT_FOUND, EXIT_USAGE, ClientError, CoordinatorClient, resolve_settings,
 )
+from shardsieve.limits import node_id_problem
 
 F = TypeVar("F", bound=Callable[..., Any])
 
@@ -228,6 +229,15 @@ def geometry_text(g: Any) -> str:
     return f"m={g.bits:,} k={g.hashes}"
 
 
+def check_node_ids(*node_ids: str) -> None:
+    """Refuse (exit 6, before any call) an id outside the node id alphabet (docs/node.md,
+    "Node ids"): no node can have it, so asking the coordinator could only fail."""
+    for node_id in node_ids:
+        problem = node_id_problem(node_id)
+        if problem:
+            raise CliFailure(f"{problem}: give the node id as `shardsieve status` lists it", EXIT_INVALID)
+
+
 def decode_key(key: str, hex_input: bool) -> bytes:
     """The bytes of KEY/VALUE as typed: UTF-8 text, or in a non-UTF-8 locale the raw bytes
     (surrogateescape restores them, PEP 383), or hexadecimal with --hex."""
@@ -336,6 +346,7 @@ def status(coordinator: str | None, token: str | None, config_file: str | None, 
 def inspect_node(node: str, coordinator: str | None, token: str | None, config_file: str | None,
                  timeout_s: float | None, as_json: bool) -> None:
     """Everything the coordinator knows about NODE, and its recent policy decisions."""
+    check_node_ids(node)
     with open_client(coordinator, token, config_file, timeout_s) as client:
         reply = client.node_detail(node)
     if as_json:
@@ -456,6 +467,7 @@ def rebuild(nodes: tuple[str, ...], flagged: bool, capacity: int | None, fpr: fl
     if dry_run and wait:
         raise ClientError("--dry-run changes nothing, so there is nothing to --wait for: drop one of them",
                           EXIT_USAGE)
+    check_node_ids(*nodes)
     with open_client(coordinator, token, config_file, timeout_s) as client:
         before = {n.node_id: n.epoch for n in client.fleet_status().nodes} if wait else {}
         reply = client.rebuild(list(nodes), flagged=flagged, capacity=capacity or 0, target_fpr=fpr or 0.0,
@@ -570,6 +582,8 @@ def get(key: str, hex_input: bool, coordinator: str | None, token: str | None, c
 def put(key: str, value: str, node_id: str, hex_input: bool, coordinator: str | None, token: str | None,
         config_file: str | None, timeout_s: float | None, as_json: bool) -> None:
     """Store VALUE under KEY through the coordinator (routable at once: read-your-writes)."""
+    if node_id:
+        check_node_ids(node_id)
     k = decode_key(key, hex_input)
     v = decode_key(value, hex_input)
     with open_client(coordinator, token, config_file, timeout_s) as client:
@@ -623,6 +637,7 @@ def unlist(node: str, force: bool, yes: bool, coordinator: str | None, token: st
 
     A node whose sync stream is connected is refused unless --force is given.
     """
+    check_node_ids(node)
     with open_client(coordinator, token, config_file, timeout_s) as client:
         if not yes:
             if not sys.stdin.isatty():

@@ -37,12 +37,17 @@ from shardsieve.bloom import BloomFilter, FilterDivergedError
 from shardsieve.changeset import ChangeSet
 from shardsieve.codec import CodecError, decode_delta
 from shardsieve.geometry import Geometry, GeometryError
+from shardsieve.limits import node_id_problem
 from shardsieve.snapshot import SnapshotAssembler, SnapshotError
+from shardsieve.sync.bounds import MAX_EPOCH, MAX_SEQUENCE
 from shardsieve.sync.errors import (
+    EpochBehindReplica,
+    FloorAboveSequence,
     HelloTwice,
     InvalidHello,
     MalformedMessage,
     NotOpened,
+    PositionOutOfRange,
     StaleStream,
     UnsupportedProtocolVersion,
     WrongNodeId,
@@ -328,6 +333,9 @@ class _Node:
     # the Hello showed the replica is not a state of the node's current history (a node
     # restarted without a new epoch): the next snapshot installs whatever its sequence
     replica_foreign: bool = False
+    # (epoch, sequence) the Hello of the current stream announced: the node's snapshots on this
+    # stream are never older (docs/sync-protocol.md, "Positions that cannot follow")
+    hello_position: Position = (0, 0)
     need_sent_at: float = 0.0
     rebuild: RebuildTracking = field(default_factory=RebuildTracking)
     counters: SyncCounters = field(default_factory=SyncCounters)
@@ -503,14 +511,16 @@ class CoordinatorSync:
 
     # ------------------------------------------------------------------ streams
     def open(self, stream_id: Hashable, hello: sync_pb2.Hello, now: float) -> SyncResult:
-        """A node opened a stream with `hello`. Validates it (InvalidHello /
-        UnsupportedProtocolVersion / HelloTwice, state unchanged), makes this the node's
-        stream (a newer stream takes over an older one) and answers Ack when the replica can
-        be caught up from the node's history, else NeedSnapshot with the reason."""
+        """A node opened a stream with `hello`. Validates it (InvalidHello for a node id outside
+        the alphabet or a bad geometry, UnsupportedProtocolVersion, HelloTwice, and the position
+        rules: PositionOutOfRange, FloorAboveSequence, EpochBehindReplica; state unchanged),
+        makes this the node's stream (a newer stream takes over an older one) and answers Ack
+        when the replica can be caught up from the node's history, else NeedSnapshot."""
         if stream_id in self._streams or stream_id in self._retired_streams:
             raise HelloTwice(f"stream {stream_id!r} already opened (for node {self._streams.get(stream_id)!r})")
-        if not hello.node_id:
-            raise InvalidHello("Hello.node_id is empty; every node needs a stable, non-empty id")
+        problem = node_id_problem(hello.node_id)
+        if problem:
+            raise InvalidHello(f"Hello.node_id: {problem}")
         if hello.protocol_version != PROTOCOL_VERSION:
             raise UnsupportedProtocolVersion(
                 f"Hello.protocol_version is {hello.protocol_version}; this coordinator speaks {PROTOCOL_VERSION}")
@@ -520,6 +530,7 @@ class CoordinatorSync:
             geometry = Geometry.from_proto(hello.geometry)
         except GeometryError as exc:
             raise InvalidHello(f"Hello.geometry is invalid: {exc}") from exc
+        self._refuse_hello_position(hello)
         out = _Outcome()
         node = self._nodes.get(hello.node_id)
         if node is None:
@@ -537,6 +548,7 @@ class CoordinatorSync:
         node.assembly = None
         node.last_snapshot_id = 0
         node.awaiting = None
+        node.hello_position = (int(hello.epoch), int(hello.sequence))
         node.storage_address = hello.storage_address
         node.capacity = int(hello.capacity)
         node.target_fpr = float(hello.target_fpr)
@@ -579,13 +591,16 @@ class CoordinatorSync:
 
     def receive(self, node_id: str, stream_id: Hashable, msg: sync_pb2.NodeMessage, now: float) -> SyncResult:
         """One message on an open stream. Raises (state unchanged) NotOpened / StaleStream /
-        WrongNodeId / HelloTwice / MalformedMessage; otherwise returns replies and events."""
+        WrongNodeId / HelloTwice / MalformedMessage, and for a delta that cannot follow the
+        replica PositionOutOfRange / EpochBehindReplica; otherwise returns replies and events."""
         node = self._check_stream(node_id, stream_id)
         kind = msg.WhichOneof("body")
         if kind == "hello":
             raise HelloTwice(f"a second Hello on the stream of node {node_id!r}")
         if kind is None:
             raise MalformedMessage(f"node {node_id!r} sent a message with no body")
+        if kind == "delta":
+            self._refuse_delta_position(node, msg.delta)
         node.last_heard_at = now
         out = _Outcome()
         if kind == "delta":
@@ -678,6 +693,64 @@ class CoordinatorSync:
         pos = self.position(node_id)
         return pos is not None and holds_write(pos, (epoch, sequence), old)
 
+    # ------------------------------------------------------------------ positions that cannot follow
+    # docs/sync-protocol.md, "Positions that cannot follow": each check runs before anything
+    # changes and names the numbers it compared.
+
+    def _refuse_hello_position(self, hello: sync_pb2.Hello) -> None:
+        """Raise for a Hello whose position no honest node can announce (state unchanged)."""
+        epoch, sequence, floor = int(hello.epoch), int(hello.sequence), int(hello.history_floor)
+        if epoch > MAX_EPOCH or sequence > MAX_SEQUENCE:
+            raise PositionOutOfRange(
+                f"Hello of node {hello.node_id!r} names epoch {epoch}, sequence {sequence}; the largest a position "
+                f"may carry is epoch {MAX_EPOCH}, sequence {MAX_SEQUENCE} (nothing could follow it)",
+                epoch=epoch, sequence=sequence, max_epoch=MAX_EPOCH, max_sequence=MAX_SEQUENCE)
+        if floor > sequence:
+            raise FloorAboveSequence(
+                f"Hello of node {hello.node_id!r} claims history floor {floor} above its sequence {sequence}; the "
+                "floor is at most the sequence (the first held delta - 1, or the sequence when none is held)",
+                history_floor=floor, sequence=sequence)
+        node = self._nodes.get(hello.node_id)
+        if node is not None and node.has_replica and epoch < node.epoch:
+            raise EpochBehindReplica(
+                f"node {hello.node_id!r} says it is at epoch {epoch}, but this coordinator's replica of it is at "
+                f"epoch {node.epoch}: a node never goes back to an epoch it left (did it lose its persisted "
+                f"epoch?). Start it so it takes an epoch above {node.epoch}, or unlist it to start over",
+                epoch=epoch, replica_epoch=node.epoch)
+
+    @staticmethod
+    def _refuse_delta_position(node: _Node, d: filter_pb2.Delta) -> None:
+        """Raise for a delta that cannot follow the replica (state unchanged)."""
+        epoch, sequence = int(d.epoch), int(d.sequence)
+        if epoch > MAX_EPOCH or not 1 <= sequence <= MAX_SEQUENCE:
+            raise PositionOutOfRange(
+                f"delta of node {node.node_id!r} at epoch {epoch}, sequence {sequence}: a delta carries an epoch of "
+                f"at most {MAX_EPOCH} and a sequence from 1 to {MAX_SEQUENCE} (sequence 0 is an epoch's baseline)",
+                epoch=epoch, sequence=sequence, max_epoch=MAX_EPOCH, max_sequence=MAX_SEQUENCE)
+        if node.has_replica and epoch < node.epoch:
+            raise EpochBehindReplica(
+                f"delta {sequence} of node {node.node_id!r} is of epoch {epoch}, older than the replica's epoch "
+                f"{node.epoch}: the node's stream never goes back to an epoch it left",
+                epoch=epoch, replica_epoch=node.epoch)
+
+    @staticmethod
+    def _snapshot_refusal(node: _Node, c: filter_pb2.SnapshotChunk) -> str:
+        """Why the snapshot starting with chunk `c` cannot follow the replica ('' when it can);
+        the reason goes out in a SnapshotRejected."""
+        epoch, sequence = int(c.epoch), int(c.sequence)
+        if epoch > MAX_EPOCH or sequence > MAX_SEQUENCE:
+            return (f"snapshot {c.snapshot_id} at epoch {epoch}, sequence {sequence}: the largest a position may "
+                    f"carry is epoch {MAX_EPOCH}, sequence {MAX_SEQUENCE} (nothing could follow it)")
+        if node.has_replica and epoch < node.epoch:
+            return (f"snapshot {c.snapshot_id} at epoch {epoch}, sequence {sequence} is of an epoch older than the "
+                    f"replica's epoch {node.epoch}: installing it would roll the replica back")
+        hello_epoch, hello_sequence = node.hello_position
+        if (epoch, sequence) < (hello_epoch, hello_sequence):
+            return (f"snapshot {c.snapshot_id} at epoch {epoch}, sequence {sequence} precedes epoch {hello_epoch}, "
+                    f"sequence {hello_sequence} that the node announced in its Hello on this stream: a node cuts "
+                    "snapshots at its current position, which never goes back")
+        return ""
+
     # ------------------------------------------------------------------ internals
     def _check_stream(self, node_id: str, stream_id: Hashable) -> _Node:
         owner = self._streams.get(stream_id)
@@ -715,9 +788,7 @@ class CoordinatorSync:
     def _on_delta(self, node: _Node, d: filter_pb2.Delta, now: float, out: _Outcome) -> None:
         if not node.has_replica:
             return self._need(node, REASON_NO_REPLICA, "no replica to apply deltas to", now, out)
-        if d.epoch != node.epoch:
-            if d.epoch < node.epoch:
-                return None   # a late delta of an epoch we already left
+        if d.epoch != node.epoch:   # a newer epoch (an older one was refused before this)
             return self._need(node, REASON_UNKNOWN_EPOCH, f"delta of epoch {d.epoch}, replica at epoch {node.epoch}",
                               now, out)
         if node.replica_foreign:
@@ -787,6 +858,9 @@ class CoordinatorSync:
         if asm is None or c.snapshot_id != asm.snapshot_id:
             if c.snapshot_id <= node.last_snapshot_id or (asm is not None and c.snapshot_id < asm.snapshot_id):
                 return None   # a late chunk of an attempt already settled or superseded
+            refusal = self._snapshot_refusal(node, c)
+            if refusal:
+                return self._reject(node, c.snapshot_id, refusal, out)
             if self._replica_holds(node, int(c.epoch), int(c.sequence), int(c.checksum)):
                 node.last_snapshot_id = c.snapshot_id
                 return self._already_have(node, c, out)

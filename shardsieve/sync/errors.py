@@ -63,6 +63,40 @@ class SequenceAhead(ProtocolViolation):
     """The coordinator claims to have applied a sequence the node never produced."""
 
 
+class PositionOutOfRange(ProtocolViolation):
+    """A Hello or delta names an epoch or sequence past the largest a position may carry (or a
+    delta at sequence 0, which is a baseline, not a change): nothing could follow it."""
+
+    grpc_status_name = "INVALID_ARGUMENT"
+
+    def __init__(self, message: str, *, epoch: int, sequence: int, max_epoch: int, max_sequence: int) -> None:
+        super().__init__(message)
+        self.epoch = epoch
+        self.sequence = sequence
+        self.max_epoch = max_epoch
+        self.max_sequence = max_sequence
+
+
+class FloorAboveSequence(InvalidHello):
+    """A Hello whose history floor is above its own sequence: no history can look like that."""
+
+    def __init__(self, message: str, *, history_floor: int, sequence: int) -> None:
+        super().__init__(message)
+        self.history_floor = history_floor
+        self.sequence = sequence
+
+
+class EpochBehindReplica(ProtocolViolation):
+    """A Hello or delta from an epoch older than the coordinator's replica of that node: a node
+    never goes back to an epoch it left, so this is a node that lost its persisted epoch (or a
+    forged message). Taking it would roll the replica back."""
+
+    def __init__(self, message: str, *, epoch: int, replica_epoch: int) -> None:
+        super().__init__(message)
+        self.epoch = epoch
+        self.replica_epoch = replica_epoch
+
+
 class MalformedMessage(ProtocolViolation):
     """A message with no body, or a body the receiver does not handle on this side."""
 

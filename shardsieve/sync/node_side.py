@@ -40,6 +40,9 @@ Why the state looks like this (docs/sync-protocol.md has the full argument):
   cut *after* the snapshot are never sent to that peer: a coordinator that applied them
   and then installed the (older) snapshot would lose keys added in between
   (docs/architecture.md#1-no-false-negatives-once-synced).
+- Positions only move forward: a coordinator refuses anything older than its replica
+  (docs/sync-protocol.md, "Positions that cannot follow"), so a hand-over that is given up
+  goes on under a fresh epoch rather than back to the old one.
 """
 
 from __future__ import annotations
@@ -58,6 +61,7 @@ from shardsieve import codec, hashing
 from shardsieve.bloom import CountingBloomFilter
 from shardsieve.geometry import Geometry, GeometryError, geometry_for
 from shardsieve.snapshot import MAX_CHUNK_BYTES, EncodedSnapshot, encode_snapshot
+from shardsieve.sync.bounds import MAX_EPOCH
 from shardsieve.sync.errors import (
     GeometryMismatch,
     MalformedMessage,
@@ -171,8 +175,8 @@ class WriteStamp:
     a 2^-64 coincidence could only make a coordinator drop its hint one push interval
     early. old_position: during a hand-over the change is in the old epoch too; the old
     epoch's position that holds it (same rule), so a coordinator still on the old epoch
-    can drop its hint even if the rebuild is then abandoned
-    (docs/architecture.md#2-read-your-writes-through-a-coordinator).
+    can drop its hint before the rebuild completes or, if it is abandoned, before the fresh
+    epoch reaches it (docs/architecture.md#2-read-your-writes-through-a-coordinator).
     cut_due: about `cut_after_bits` bits changed since the last cut; cut now rather than
     at the next push tick (docs/architecture.md#3-bounded-staleness).
     """
@@ -424,6 +428,9 @@ class NodeSync:
             raise ValueError("node_id must be a non-empty string")
         if isinstance(epoch, bool) or not isinstance(epoch, int) or epoch < 0:
             raise ValueError(f"epoch must be a non-negative integer, got {epoch!r}")
+        if epoch > MAX_EPOCH:
+            raise ValueError(f"epoch {epoch} is above {MAX_EPOCH}, the largest a position may carry: coordinators "
+                             "would refuse every message (docs/sync-protocol.md, \"Positions that cannot follow\")")
         self.node_id = node_id
         self.storage_address = storage_address
         self.config = config or NodeSyncConfig()
@@ -454,7 +461,8 @@ class NodeSync:
 
     @property
     def highest_epoch(self) -> int:
-        """The largest epoch number used so far (abandoned rebuilds burn one)."""
+        """The largest epoch number used so far (an abandoned rebuild burns its number; one
+        abandoned during the hand-over also takes a fresh one to go on under)."""
         return self._highest_epoch
 
     @property
@@ -733,8 +741,8 @@ class NodeSync:
         self._maybe_retire()
 
     def scan_failed(self, reason: str) -> None:
-        """The daemon could not finish the scan: the rebuild is abandoned (the old filter
-        stays current; the epoch number it would have used is burned)."""
+        """The daemon could not finish the scan: the rebuild is abandoned (the old filter and
+        epoch stay current; the epoch number it would have used is burned)."""
         self._running_scan()
         self._abandon(reason)
 
@@ -766,34 +774,36 @@ class NodeSync:
             saturated_counters=s.filter.saturated_counters())
 
     def _abandon(self, reason: str) -> None:
-        """End the rebuild without a switch. Only while no peer switched to the new epoch; the
-        old filter stays current and the new epoch's number is never reused."""
+        """End the rebuild without a switch. Only while no peer switched to the new epoch.
+
+        Abandoned while scanning: no message named the new epoch, so its number is burned and the
+        current epoch goes on. Abandoned during the hand-over: coordinators may hold the new epoch
+        already (a lost SnapshotVerified), and a coordinator never takes an epoch older than its
+        replica (docs/sync-protocol.md, "Positions that cannot follow"). So the old filter goes on
+        under a fresh epoch, highest used + 1, whose baseline is that filter now, and every peer
+        gets a snapshot of it: nothing this node sends is ever older than what it sent before."""
         if self._old is not None and any(p.switched for p in self._peers.values()):
             raise RebuildStateError("a coordinator already routes with the new epoch; it cannot be abandoned")
         self._rebuild_event(RebuildEvent.ABANDONED)
+        abandoned = self._highest_epoch + 1 if self._old is None else self._stream.epoch
+        self._highest_epoch += 1   # the scan's number is burned, or the fresh epoch is taken
         if self._old is None:
             self._scan = None
-            self._highest_epoch += 1   # burn the number the rebuild would have used
-            epoch = self._highest_epoch
         else:
-            epoch = self._stream.epoch
-            self._stream, self._old = self._old, None
+            old, self._old = self._old, None
+            self._stream = _EpochStream(self._highest_epoch, old.filter, old.capacity, old.target_fpr, self.config)
             for p in self._peers.values():
-                snap = p.snapshot
-                if snap is not None and snap.restore_epoch is not None:
-                    p.stream_epoch = snap.restore_epoch
-                    p.acked = p.sent = snap.restore_acked
-                    p.in_flight.clear()
-                    p.in_flight_bytes = 0
+                p.stream_epoch = None
+                p.acked = p.sent = -1
+                p.in_flight.clear()
+                p.in_flight_bytes = 0
                 p.snapshot = None
-                if p.wanted is not None and p.wanted[0] == PURPOSE_REBUILD:
-                    p.wanted = None
-                if p.stream_epoch == epoch:
-                    p.stream_epoch = None    # resync with the old (again current) filter
-                    p.wanted = (PURPOSE_RESYNC, "rebuild abandoned")
+                p.switched = False
+                p.rebuild_rejections = 0
+                p.wanted = (PURPOSE_RESYNC, f"rebuild abandoned; continuing under epoch {self._highest_epoch}")
         self._durable_epoch = self._highest_epoch
         self._rebuilds_abandoned += 1
-        self._log("warning", "rebuild abandoned", epoch=epoch, reason=reason)
+        self._log("warning", "rebuild abandoned", epoch=abandoned, current_epoch=self._stream.epoch, reason=reason)
 
     def _peer(self, peer: str) -> _Peer:
         try:
@@ -845,10 +855,9 @@ class NodeSync:
         """Ack and SnapshotVerified: the coordinator's replica is at (epoch, sequence)."""
         snap = p.snapshot
         if self._live(epoch) is None:
-            if p.stream_epoch is not None and epoch > p.stream_epoch and snap is None and p.wanted is None:
-                # the coordinator installed a rebuild we then abandoned: move it back by a snapshot
-                p.wanted = (PURPOSE_RESYNC, f"coordinator follows abandoned epoch {epoch}")
-            return  # otherwise an epoch already retired: a late message
+            # an epoch already retired (a late message), or one a coordinator took before the
+            # rebuild was abandoned: every epoch since is newer, and this peer gets a snapshot
+            return
         if snap is not None and epoch == snap.epoch and sequence >= snap.sequence and (
                 snap.all_sent or verified_id == snap.snapshot_id):
             # the coordinator installed this snapshot (or holds a later state of its epoch)

@@ -377,3 +377,18 @@ def test_inspect_labels_the_nodes_own_miss_count(fake) -> None:  # type: ignore[
     assert res.exit_code == 0
     assert "misses the node counted" not in res.stdout
     assert "reads the node answered not-found" in res.stdout
+
+
+@pytest.mark.parametrize("args", [
+    ["inspect", "n\u043ede-1"],                  # Cyrillic small letter o (U+043E): a look-alike of node-1
+    ["inspect", ".."],
+    ["rebuild", "n1", "n2/../n3"],
+    ["unlist", "kelp\x1bshed", "--yes"],
+    ["put", "crate-7", "oak", "--node", "Node-1"],
+])
+def test_node_ids_outside_the_alphabet_exit_6_before_any_call(args: list[str]) -> None:
+    # docs/cli.md, exit codes; docs/node.md, "Node ids". The coordinator address answers nothing:
+    # a call would end in exit 3, so exit 6 shows the id was refused locally first.
+    res = run([*args, "--coordinator", f"127.0.0.1:{free_port()}", "--timeout", "1"])
+    assert res.exit_code == EXIT_INVALID, res.output
+    assert "a node id is 1 to 64 characters" in one_line_error(res)

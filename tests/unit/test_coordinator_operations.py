@@ -22,6 +22,7 @@ from shardsieve.coordinator.membership import Membership
 from shardsieve.coordinator.metrics import Metrics
 from shardsieve.coordinator.operations import Operations
 from shardsieve.coordinator.policy import Policy
+from shardsieve.coordinator.saturation import SaturationMonitor
 from shardsieve.coordinator.accounting import ProbeOutcome
 from shardsieve.coordinator.shell import CoordinatorShell
 from shardsieve.coordinator.wiring import CoordinatorState, wire_state
@@ -221,3 +222,25 @@ def test_an_operator_rebuild_is_sent_recorded_and_holds_a_slot() -> None:
     assert [(d.node_id, d.action) for d in ops.decisions()] == [("node-wrack-5", "rebuild")]
     assert ops.decisions(limit=1, node_id="node-wrack-6") == []
     assert state.readings.fleet(T0).rebuilds_in_progress == 1
+
+
+def test_the_monitor_pass_measures_durations_on_the_monotonic_clock_and_stamps_the_wall_clock() -> None:
+    # docs/coordinator.md, "Accounting and saturation": the rebuild timeout is a duration (the
+    # monotonic clock); decisions show people the wall clock (Admin.Decisions at_unix)
+    mono, wall = [T0], [1_700_000_000.0]
+    state = wire_state(POLICY, monitor=SaturationMonitor(rebuild_timeout_s=60.0))
+    ops = Operations(state.shell, state.readings, state.monitor, state.policy, state.hints, state.membership,
+                     Sent(), clock=lambda: mono[0], wall=lambda: wall[0])
+    _full_node(state)
+    ops.tick()
+    assert [(d.action, d.at) for d in ops.decisions()] == [("flag", wall[0]), ("rebuild", wall[0])]
+    wall[0] += 86_400.0                  # the wall clock jumps a day ahead; 5 monotonic seconds pass
+    mono[0] += 5.0
+    ops.tick()
+    assert [d.action for d in ops.decisions()] == ["flag", "rebuild"]          # no timeout
+    assert state.readings.fleet(mono[0]).rebuilds_in_progress == 1
+    wall[0] -= 2 * 86_400.0              # ...then a day behind the start; 61 monotonic seconds have passed
+    mono[0] = T0 + 61.0
+    ops.tick()
+    last = ops.decisions()[-1]
+    assert (last.action, last.at) == ("skip", wall[0]) and "not verified within 60s" in last.detail

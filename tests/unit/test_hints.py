@@ -251,7 +251,10 @@ class Link:
         return self.core.epoch
 
 
-def test_a_write_during_an_abandoned_rebuild_clears_once_the_old_epoch_covers_it() -> None:
+def test_a_write_during_an_abandoned_rebuild_clears_once_the_fresh_epoch_covers_it() -> None:
+    # docs/sync-protocol.md, "The rebuild hand-over" step 6: an abandoned hand-over goes on
+    # under a fresh epoch (highest used + 1), whose snapshot is cut after every write the node
+    # acknowledged, so it covers the abandoned epoch's positions too.
     link = Link()
     old_epoch = link.core.epoch
     assert link.position() is not None and len(link.hints) == 0
@@ -260,8 +263,7 @@ def test_a_write_during_an_abandoned_rebuild_clears_once_the_old_epoch_covers_it
 
     def write_past_the_split_point(chunk: filter_pb2.SnapshotChunk) -> None:
         # the node already cut this rebuild snapshot: the old-epoch delta carrying this write is
-        # not sent before the snapshot's answer; the last attempt's write is covered only after
-        # the rebuild is abandoned
+        # not sent before the snapshot's answer, so no old-epoch position covers it
         key = f"kelp-{chunk.snapshot_id}".encode()
         ack = link.write(key)
         assert ack.epoch == chunk.epoch and link.hints.lookup(key) == [NODE]
@@ -275,20 +277,20 @@ def test_a_write_during_an_abandoned_rebuild_clears_once_the_old_epoch_covers_it
 
     link.pump()
 
-    assert link.core.epoch == old_epoch and len(link.refused) == len(held) == 3   # 3 attempts, then abandoned
+    assert len(link.refused) == len(held) == 3                   # 3 attempts, then abandoned
+    assert link.core.epoch == new_epoch + 1                      # the fresh epoch
     replica = link.position()
-    assert replica is not None and replica[0] == old_epoch     # the replica never reached the new epoch
+    assert replica is not None and replica[0] == new_epoch + 1   # the replica never held the abandoned epoch
     for hint in held:
         assert hint.position[0] == new_epoch and hint.old is not None and hint.old[0] == old_epoch
-        assert replica < hint.position                          # the new-epoch position is never covered...
-        assert replica_holds(link.state, hint.key)
-    assert len(link.hints) == 0                                 # ...yet no hint is left behind
+        assert replica > hint.position                           # passed by the fresh epoch...
+        assert replica_holds(link.state, hint.key)               # ...whose state holds the write
+    assert len(link.hints) == 0                                  # no hint is left behind
     assert link.violations == []
 
 
-def test_without_the_old_position_the_hint_would_stay_until_its_age_runs_out(caplog) -> None:
+def test_after_an_abandon_a_hint_without_the_old_position_clears_too(caplog) -> None:
     link = Link()
-    old_epoch = link.core.epoch
     link.refuse_rebuild = True
     new_epoch = link.start_rebuild()
     result = link.core.put_many([(b"kelp-no-old", b"v")])[0]
@@ -296,18 +298,32 @@ def test_without_the_old_position_the_hint_would_stay_until_its_age_runs_out(cap
     # what a coordinator gets from a node that does not report the old position
     link.router.hold_hint(b"kelp-no-old", NODE, result.epoch, result.sequence, now=link.t)
     link.pump()
-    assert link.core.epoch == old_epoch and link.position()[0] == old_epoch   # type: ignore[index]
-    assert link.hints.lookup(b"kelp-no-old") == [NODE]           # never covered: the leak
+    assert link.core.epoch == new_epoch + 1 and link.position()[0] == new_epoch + 1   # type: ignore[index]
+    assert link.hints.lookup(b"kelp-no-old") == []               # covered without waiting for its age
+    assert replica_holds(link.state, b"kelp-no-old")
+    with caplog.at_level(logging.WARNING, logger="shardsieve.coordinator.operations"):
+        assert link.operations.expire_hints(link.t + 301.0) == []
+    assert link.hints.expired_unapplied == 0 and not [r for r in caplog.records if "expired" in r.getMessage()]
+    assert link.violations == []
+
+
+def test_a_hint_whose_write_never_arrives_expires_after_its_age_with_its_numbers(caplog) -> None:
+    link = Link()
+    result = link.core.put_many([(b"kelp-stalled", b"v")])[0]
+    link.written.append(b"kelp-stalled")
+    replica = link.position()
+    assert replica is not None
+    # the node's sync stalls: the delta carrying the write never reaches the coordinator
+    link.router.hold_hint(b"kelp-stalled", NODE, result.epoch, result.sequence, now=link.t)
     added = link.t
     assert link.operations.expire_hints(added + 299.0) == []     # nothing drops before the bound
     with caplog.at_level(logging.WARNING, logger="shardsieve.coordinator.operations"):
         (gone,) = link.operations.expire_hints(added + 301.0)
-    assert gone.position == (new_epoch, result.sequence)
-    assert link.hints.lookup(b"kelp-no-old") == [] and link.hints.expired_unapplied == 1
+    assert gone.position == (result.epoch, result.sequence) and replica < gone.position
+    assert link.hints.lookup(b"kelp-stalled") == [] and link.hints.expired_unapplied == 1
     (record,) = [r for r in caplog.records if "expired" in r.getMessage()]
-    assert (record.node_id, record.hint_epoch, record.hint_sequence) == (NODE, new_epoch, result.sequence)
-    assert record.replica_epoch == old_epoch and record.age_s >= 300.0
-    assert link.violations == []
+    assert (record.node_id, record.hint_epoch, record.hint_sequence) == (NODE, result.epoch, result.sequence)
+    assert (record.replica_epoch, record.replica_sequence) == replica and record.age_s >= 300.0
 
 
 def test_a_switched_rebuild_clears_hints_by_the_new_epoch_and_nothing_drops_early() -> None:

@@ -8,6 +8,7 @@ click's own test runner and the daemon entry point replaced, so no process start
 from __future__ import annotations
 
 import dataclasses
+import json
 from pathlib import Path
 
 import pytest
@@ -85,6 +86,25 @@ def test_invalid_setting_is_one_line_naming_it(args: list[str], named: str, capt
     lines = [line for line in result.output.splitlines() if line.strip()]
     assert len(lines) == 1, result.output
     assert named in lines[0]
+    assert not captured
+
+
+@pytest.mark.parametrize("node_id", ["n\u043ede-1", ".", "..", "kelp/shed-1", "kelp\x01", "Kelp-1", "-kelp",
+                                     "k" * 65])
+def test_an_id_outside_the_alphabet_stops_the_node_with_one_line(node_id: str, captured: list[NodeSettings],
+                                                                 tmp_path: Path) -> None:
+    # docs/node.md, "Node ids": exit 2, one line naming the setting, the character and the rule
+    for source in ("flag", "environment", "file"):
+        cfg = tmp_path / "node.toml"
+        # a JSON string is a TOML basic string (TOML 1.0, "String": the same escapes)
+        cfg.write_text(f"[node]\nid = {json.dumps(node_id)}\n" if source == "file" else "[node]\n")
+        args = ["--id", node_id] if source == "flag" else []
+        env = {"SHARDSIEVE_NODE_ID": node_id} if source == "environment" else {}
+        result = CliRunner().invoke(node_command, [*args, "--config", str(cfg)], env=env)
+        assert result.exit_code == 2, (source, result.output)
+        lines = [line for line in result.output.splitlines() if line.strip()]
+        assert len(lines) == 1, result.output
+        assert "'id'" in lines[0] and "a node id is 1 to 64 characters" in lines[0], lines[0]
     assert not captured
 
 

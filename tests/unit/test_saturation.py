@@ -12,6 +12,7 @@ from shardsieve.geometry import geometry_for
 from shardsieve.sizing import false_positive_rate
 
 POLICY = Policy(target_fpr=0.01, saturation_ratio=2.0, growth=2.0, min_capacity=100)
+WALL = 1_700_000_000.0        # wall-clock Unix seconds stamped on decisions (never a duration)
 
 
 def _view(node_id: str, keys: int, capacity: int, *, epoch: int = 1, fill: float | None = None,
@@ -46,7 +47,7 @@ def test_flag_reasons_predicted_observed_and_over_capacity() -> None:
 def test_rebuild_at_growth_times_keys_under_concurrency_limit() -> None:
     monitor = SaturationMonitor()
     nodes = [_view("n1", 3000, 1000), _view("n2", 4000, 1000), _view("n3", 100, 1000)]
-    result = monitor.tick(10.0, nodes, POLICY)
+    result = monitor.tick(10.0, nodes, POLICY, at=WALL)
     flags = {d.node_id for d in result.decisions if d.action == "flag"}
     assert flags == {"n1", "n2"}
     assert len(result.rebuilds) == 1            # max_concurrent_rebuilds = 1
@@ -54,11 +55,11 @@ def test_rebuild_at_growth_times_keys_under_concurrency_limit() -> None:
     assert plan.node_id == "n2" and plan.capacity == 8000   # fullest first; 2 x 4000 keys
     assert [d for d in result.decisions if d.action == "skip" and d.node_id == "n1"]
     # The next tick does not repeat the flag or the queued note, and starts nothing new.
-    again = monitor.tick(11.0, nodes, POLICY)
+    again = monitor.tick(11.0, nodes, POLICY, at=WALL)
     assert again.rebuilds == [] and again.decisions == []
     # n2 moves to epoch 2 with the new capacity: done, and n1's turn comes.
     nodes[1] = _view("n2", 4000, 8000, epoch=2)
-    done = monitor.tick(12.0, nodes, POLICY)
+    done = monitor.tick(12.0, nodes, POLICY, at=WALL)
     assert [d.action for d in done.decisions if d.node_id == "n2"] == ["done"]
     assert [p.node_id for p in done.rebuilds] == ["n1"] and done.rebuilds[0].capacity == 6000
 
@@ -66,41 +67,62 @@ def test_rebuild_at_growth_times_keys_under_concurrency_limit() -> None:
 def test_rebuild_times_out_and_releases_the_slot() -> None:
     monitor = SaturationMonitor(rebuild_timeout_s=30.0)
     nodes = [_view("n1", 3000, 1000)]
-    assert monitor.tick(0.0, nodes, POLICY).rebuilds
-    result = monitor.tick(31.0, nodes, POLICY)
+    assert monitor.tick(0.0, nodes, POLICY, at=WALL).rebuilds
+    result = monitor.tick(31.0, nodes, POLICY, at=WALL)
     assert [d.action for d in result.decisions] == ["skip"] and "not verified within 30s" in result.decisions[0].detail
     assert result.rebuilds == []
-    retry = monitor.tick(31.0 + monitor.cooldown_s + 1, nodes, POLICY)   # after the cooldown: tried again
+    retry = monitor.tick(31.0 + monitor.cooldown_s + 1, nodes, POLICY, at=WALL)   # after the cooldown: tried again
     assert [p.node_id for p in retry.rebuilds] == ["n1"]
+
+
+def test_durations_run_on_the_monotonic_clock_whatever_the_wall_clock_does() -> None:
+    # docs/coordinator.md, "Accounting and saturation": the rebuild timeout and the shrink grace
+    # are durations; a wall-clock step (NTP, an operator setting the date) must neither fire
+    # nor hold them back. Decisions carry the wall clock for people.
+    monitor = SaturationMonitor(rebuild_timeout_s=30.0)
+    full = [_view("n1", 3000, 1000)]
+    assert monitor.tick(0.0, full, POLICY, at=WALL).rebuilds
+    jumped = monitor.tick(10.0, full, POLICY, at=WALL + 86_400.0)    # the wall clock jumps a day ahead
+    assert jumped.rebuilds == [] and jumped.decisions == []          # the timeout did not fire
+    back = monitor.tick(31.0, full, POLICY, at=WALL - 3_600.0)       # ...then an hour behind the start
+    assert [(d.node_id, d.action, d.at) for d in back.decisions] == [("n1", "skip", WALL - 3_600.0)]
+    assert "not verified within 30s" in back.decisions[0].detail    # 31 monotonic seconds passed
+    shrinking = SaturationMonitor(shrink_grace_s=60.0)
+    empty = [_view("n2", 0, 100_000)]
+    assert shrinking.tick(0.0, empty, POLICY, at=WALL).rebuilds == []
+    assert shrinking.tick(30.0, empty, POLICY, at=WALL + 86_400.0).rebuilds == []   # a day on the wall: still in grace
+    grace = shrinking.tick(61.0, empty, POLICY, at=WALL - 7_200.0)
+    assert [p.node_id for p in grace.rebuilds] == ["n2"] and grace.rebuilds[0].reason.startswith("shrink")
+    assert {d.at for d in grace.decisions} == {WALL - 7_200.0}
 
 
 def test_shrink_only_when_a_smaller_ladder_step_results() -> None:
     monitor = SaturationMonitor(shrink_grace_s=0.0)
     big = _view("n1", 100, 100_000)
-    result = monitor.tick(0.0, [big], POLICY)
+    result = monitor.tick(0.0, [big], POLICY, at=WALL)
     assert [d.action for d in result.decisions] == ["shrink"]
     plan = result.rebuilds[0]
     assert plan.capacity == 200 and plan.geometry is not None and plan.geometry.bits < big.bits
     # At min capacity there is nothing smaller to go to.
-    assert SaturationMonitor().tick(0.0, [_view("n2", 1, 100)], POLICY).rebuilds == []
+    assert SaturationMonitor().tick(0.0, [_view("n2", 1, 100)], POLICY, at=WALL).rebuilds == []
 
 
 def test_shrink_waits_for_the_grace_period_and_resets_when_keys_return() -> None:
     monitor = SaturationMonitor(shrink_grace_s=60.0)
     empty = _view("n1", 0, 100_000)
-    assert monitor.tick(0.0, [empty], POLICY).rebuilds == []        # just started empty: keep its capacity
-    assert monitor.tick(59.0, [empty], POLICY).rebuilds == []
+    assert monitor.tick(0.0, [empty], POLICY, at=WALL).rebuilds == []        # just started empty: keep its capacity
+    assert monitor.tick(59.0, [empty], POLICY, at=WALL).rebuilds == []
     filled = _view("n1", 50_000, 100_000)
-    assert monitor.tick(61.0, [filled], POLICY).rebuilds == []       # back above the threshold: clock resets
-    assert monitor.tick(62.0, [empty], POLICY).rebuilds == []
-    assert [p.node_id for p in monitor.tick(122.5, [empty], POLICY).rebuilds] == ["n1"]
+    assert monitor.tick(61.0, [filled], POLICY, at=WALL).rebuilds == []       # back above the threshold: clock resets
+    assert monitor.tick(62.0, [empty], POLICY, at=WALL).rebuilds == []
+    assert [p.node_id for p in monitor.tick(122.5, [empty], POLICY, at=WALL).rebuilds] == ["n1"]
 
 
 def test_auto_rebuild_off_only_flags_and_plan_marks_queued() -> None:
     policy = Policy(target_fpr=0.01, auto_rebuild=False, min_capacity=100, max_concurrent_rebuilds=1)
     monitor = SaturationMonitor()
     nodes = [_view("n1", 3000, 1000), _view("n2", 2500, 1000)]
-    result = monitor.tick(0.0, nodes, policy)
+    result = monitor.tick(0.0, nodes, policy, at=WALL)
     assert result.rebuilds == [] and {d.action for d in result.decisions} == {"flag"}
     plans = monitor.plan(nodes, policy, flagged=True)
     assert [(p.node_id, p.queued) for p in plans] == [("n1", False), ("n2", True)]

@@ -169,7 +169,16 @@ def test_certs_command_writes_a_ca_and_node_certificates(tmp_path: Path) -> None
     again = CliRunner().invoke(cli, ["certs", "--out", str(out), "--nodes", "1"])
     assert again.exit_code != 0 and "--force" in again.output              # never overwrites silently
     bad = CliRunner().invoke(cli, ["certs", "--out", str(tmp_path / "x"), "--node-id", "bad id"])
-    assert bad.exit_code != 0 and "letters, digits" in bad.output
+    assert bad.exit_code != 0 and "a node id is 1 to 64 characters" in bad.output
+
+
+@pytest.mark.parametrize("node_id", ["n\u043ede-1", "..", ".", "kelp/shed", "kelp\x07", "Node-1", "k" * 65])
+def test_certs_makes_no_certificate_for_an_id_outside_the_alphabet(tmp_path: Path, node_id: str) -> None:
+    # docs/node.md, "Node ids": the common name of a node certificate is its node id
+    out = tmp_path / "pki"
+    bad = CliRunner().invoke(cli, ["certs", "--out", str(out), "--node-id", "node-1", "--node-id", node_id])
+    assert bad.exit_code == 2 and "a node id is 1 to 64 characters" in bad.output
+    assert not out.exists()                                               # nothing written
 
 
 def test_tls_files_validation_names_the_setting(tmp_path: Path, pki: Path) -> None:

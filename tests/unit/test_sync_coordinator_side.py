@@ -37,6 +37,7 @@ from shardsieve.sync.coordinator_side import (
     holds_write,
 )
 from shardsieve.sync.errors import (
+    EpochBehindReplica,
     HelloTwice,
     InvalidHello,
     MalformedMessage,
@@ -416,7 +417,12 @@ def test_rebuild_snapshot_swaps_in_a_new_geometry_and_is_verified() -> None:
     assert replica.geometry == G2 and all(replica.bits[p] for p in reference_positions("box-2", G2))
     view = sync.node(NODE)
     assert view.rebuild.phase == "switched" and view.geometry == G2 and view.epoch == 2
-    assert send_all(sync, [node.add_key("box-3")]) == []     # late old-epoch deltas are ignored
+    # an old-epoch delta after the switch cannot follow the replica: refused, nothing changes
+    # (docs/sync-protocol.md, "Positions that cannot follow")
+    with pytest.raises(EpochBehindReplica) as refused:
+        send_all(sync, [node.add_key("box-3")])
+    assert (refused.value.epoch, refused.value.replica_epoch) == (1, 2)
+    assert sync.node(NODE).epoch == 2 and sink.replicas[NODE] is replica
 
 
 def test_a_corrupt_snapshot_is_rejected_and_the_replica_stays() -> None:

@@ -20,6 +20,7 @@ from shardsieve.bloom import CountingBloomFilter
 from shardsieve.codec import decode_delta
 from shardsieve.geometry import Geometry, geometry_for
 from shardsieve.snapshot import SnapshotAssembler
+from shardsieve.sync.bounds import MAX_EPOCH
 from shardsieve.sync.errors import (
     GeometryMismatch,
     MalformedMessage,
@@ -304,6 +305,14 @@ def test_unconfirmed_snapshot_is_replaced_by_a_fresh_one() -> None:
 # ----------------------------------------------------------------------------- refusals
 
 
+def test_a_start_past_the_largest_epoch_is_refused() -> None:
+    # docs/sync-protocol.md, "Positions that cannot follow": coordinators refuse epochs above
+    # MAX_EPOCH, so a node must not start there (a corrupt persisted epoch, say)
+    assert make(epoch=MAX_EPOCH).epoch == MAX_EPOCH
+    with pytest.raises(ValueError, match="largest a position may carry"):
+        make(epoch=MAX_EPOCH + 1)
+
+
 def test_a_message_for_another_node_is_refused_and_changes_nothing() -> None:
     sync = make()
     connected(sync)
@@ -485,15 +494,106 @@ def test_rejected_rebuild_snapshot_is_retried_then_abandoned() -> None:
             snapshot_id=first.snapshot_id, detail="checksum differs")), 0.0)
     assert ids[1] > ids[0]                                     # a fresh attempt, not a replay
     ready = settle(sync)
-    assert "rebuild abandoned" in logged(ready) and ready.durable == Durable(highest_epoch=2)
+    # docs/sync-protocol.md, "The rebuild hand-over" step 6: the old filter goes on under a
+    # fresh epoch (highest used + 1 = 3), durable before any message names it
+    assert "rebuild abandoned" in logged(ready) and ready.durable == Durable(highest_epoch=3)
     assert sync.rebuild_phase is RebuildPhase.IDLE
-    assert sync.epoch == 1 and sync.geometry == G and sync.filter.checksum == old_checksum
+    assert sync.epoch == 3 and sync.sequence == 0 and sync.highest_epoch == 3
+    assert sync.geometry == G and sync.filter.checksum == old_checksum
     stamp = sync.record(b("crate-3"))
-    assert stamp.epoch == 1 and stamp.old_position is None     # one filter again: the old one
-    assert sync.cut() == [(1, 1)]                              # the old epoch stays current
-    assert [m.delta.sequence for m in drain(sync)] == [1]
-    assert sync.highest_epoch == 2                             # the abandoned number is never reused
+    assert (stamp.epoch, stamp.sequence) == (3, 1) and stamp.old_position is None   # one filter again
+    assert sync.cut() == [(3, 1)]
+    out = drain(sync)                                           # the peer resyncs to the fresh epoch
+    first, bloom = assemble(out)
+    assert first.purpose == filter_pb2.SNAPSHOT_PURPOSE_RESYNC and (first.epoch, first.sequence) == (3, 1)
+    assert set_bits(bloom.bits) == reference_bits(["crate-1", "crate-3"], G)
     assert sync.report(StoreCounters()).rebuilds_abandoned == 1
+
+
+def test_after_an_abandoned_hand_over_nothing_sent_is_older_than_before() -> None:
+    # docs/sync-protocol.md, "Positions that cannot follow": a coordinator refuses a snapshot
+    # or delta of an epoch older than its replica. coord-b installed the new epoch but its
+    # confirmation was lost; coord-a refused the rebuild, so the node abandons it. What the
+    # node sends each peer afterwards must never name an epoch below one it sent that peer.
+    sync = make(["crate-1"], config=NodeSyncConfig(max_rebuild_attempts=1))
+    connected(sync, "coord-a")
+    connected(sync, "coord-b")
+    start_rebuild(sync, ["crate-1"])
+    sync.scan_done(0.0)
+    sent = {peer: drain(sync, peer) for peer in ("coord-a", "coord-b")}
+    highest_sent = {peer: max(_epochs(messages)) for peer, messages in sent.items()}
+    assert highest_sent == {"coord-a": 2, "coord-b": 2}
+    a_first, _ = assemble(sent["coord-a"])
+    sync.receive("coord-a", sync_pb2.CoordinatorMessage(node_id=NODE, snapshot_rejected=sync_pb2.SnapshotRejected(
+        snapshot_id=a_first.snapshot_id, detail="too large")), 0.0)   # its only attempt: abandoned
+    assert sync.rebuild_phase is RebuildPhase.IDLE and sync.epoch == 3
+    sync.receive("coord-b", ack(2, 0, geometry=G2), 0.0)       # coord-b's late ack of the abandoned epoch
+    sync.record(b("crate-4"))
+    sync.cut()
+    for peer in ("coord-a", "coord-b"):
+        later = drain(sync, peer)
+        assert later and min(_epochs(later)) >= highest_sent[peer] and set(_epochs(later)) == {3}
+
+
+def test_a_coordinator_that_took_the_abandoned_epoch_follows_the_fresh_one_and_keeps_its_hints() -> None:
+    # A real CoordinatorSync installs the rebuild snapshot; its SnapshotVerified and Ack are
+    # lost, the node gives the rebuild up. The coordinator must end with the node's exact filter
+    # (it refuses anything older than epoch 2, so only the fresh epoch 3 can get it there), and a
+    # write acknowledged during the hand-over is covered by the read-your-writes rule
+    # (docs/sync-protocol.md, "Read-your-writes") once the replica holds it.
+    from shardsieve.sync.coordinator_side import CoordinatorSync, DictReplicaSink
+
+    sink = DictReplicaSink()
+    coordinator = CoordinatorSync(sink)
+    sync = make(["crate-1"], config=NodeSyncConfig(max_rebuild_attempts=1))
+
+    def deliver(messages, drop_replies: bool = False) -> None:
+        for m in messages:
+            body = m.WhichOneof("body")
+            replies = (coordinator.open(1, m.hello, 0.0) if body == "hello"
+                       else coordinator.receive(NODE, 1, m, 0.0)).replies
+            if not drop_replies:
+                for reply in replies:
+                    sync.receive("coord-a", reply, 0.0)
+
+    sync.connect("coord-a", 0.0)
+    for _ in range(3):
+        deliver(drain(sync))
+    assert coordinator.position(NODE) == (1, 0)
+    start_rebuild(sync, ["crate-1"])
+    sync.scan_done(0.0)
+    stamp = sync.record(b("crate-2"))                 # acknowledged during the hand-over
+    assert stamp.epoch == 2 and stamp.old_position is not None
+    deliver(drain(sync), drop_replies=True)           # installed; the confirmation is lost
+    assert coordinator.position(NODE)[0] == 2         # type: ignore[index]
+    resent, _ = assemble(drain(sync, now=5.0))       # unconfirmed: cut afresh after the retransmit time...
+    sync.receive("coord-a", sync_pb2.CoordinatorMessage(node_id=NODE, snapshot_rejected=sync_pb2.SnapshotRejected(
+        snapshot_id=resent.snapshot_id, detail="refused by the test")), 5.0)   # ...refused: abandoned
+    assert sync.epoch == 3
+    for _ in range(3):
+        deliver(drain(sync, now=5.0))
+    assert coordinator.position(NODE) == (3, sync.sequence)
+    assert sink.replicas[NODE].bits == sync.filter.bits
+    assert set_bits(sink.replicas[NODE].bits) == reference_bits(["crate-1", "crate-2"], G)
+    assert coordinator.covers(NODE, stamp.epoch, stamp.sequence, stamp.old_position)
+    late = sync.record(b("crate-9"))                  # a write after the abandon: epoch 3 only
+    assert (late.epoch, late.old_position) == (3, None)
+    assert not coordinator.covers(NODE, late.epoch, late.sequence)
+    sync.cut()
+    deliver(drain(sync, now=5.0))
+    assert coordinator.covers(NODE, late.epoch, late.sequence)
+
+
+def _epochs(messages) -> list[int]:
+    """The epoch every delta and snapshot chunk in messages names."""
+    out = []
+    for m in messages:
+        body = m.WhichOneof("body")
+        if body == "delta":
+            out.append(m.delta.epoch)
+        elif body == "snapshot_chunk":
+            out.append(m.snapshot_chunk.epoch)
+    return out
 
 
 def test_a_failed_scan_abandons_the_rebuild_and_burns_its_epoch() -> None:

@@ -185,6 +185,27 @@ def test_unknown_or_empty_ids_change_nothing(world: World, tmp_path: Path, node_
         assert "node-gannet-1, node-gannet-2" in err.value.details
 
 
+@pytest.mark.parametrize("node_id", ["node-gannet-\u0031\u0301", "node-g\u0430nnet-1", "..", "node/gannet-1",
+                                     "node-gannet-1\n", "NODE-GANNET-1"])
+@pytest.mark.parametrize("call", ["unlist", "detail", "rebuild"])
+def test_admin_calls_refuse_ids_outside_the_alphabet_and_change_nothing(world: World, tmp_path: Path, node_id: str,
+                                                                        call: str) -> None:
+    # docs/node.md, "Node ids": no node can have such an id (a look-alike of node-gannet-1
+    # included), so the request is malformed: INVALID_ARGUMENT naming the rule, not NOT_FOUND
+    before = held_state(world.state, tmp_path)
+    decisions = len(world.operations.decisions())
+    with pytest.raises(Aborted) as err:
+        if call == "unlist":
+            world.admin.UnlistNode(admin_pb2.UnlistNodeRequest(node_id=node_id, force=True), FakeContext())
+        elif call == "detail":
+            world.admin.NodeDetail(admin_pb2.NodeDetailRequest(node_id=node_id), FakeContext())
+        else:
+            world.admin.Rebuild(admin_pb2.RebuildCommand(node_ids=["node-gannet-2", node_id]), FakeContext())
+    assert err.value.code == grpc.StatusCode.INVALID_ARGUMENT
+    assert "a node id is 1 to 64 characters" in err.value.details and "nothing changed" in err.value.details
+    assert held_state(world.state, tmp_path) == before and len(world.operations.decisions()) == decisions
+
+
 def test_a_remembered_node_that_never_reconnected_can_be_unlisted(tmp_path: Path) -> None:
     (tmp_path / "nodes.json").write_text(json.dumps({"nodes": {"node-skua-9": "10.0.0.9:7100"}}))
     state = wire_state(Policy(), state_dir=tmp_path)
