@@ -136,7 +136,8 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
             self._open.discard(stream)
             self.admission.release(who.host, pending=stream.node_id is None)
         if not end.ok and end.code != grpc.StatusCode.CANCELLED:
-            if end.code not in (grpc.StatusCode.ABORTED, grpc.StatusCode.DEADLINE_EXCEEDED):
+            if end.code not in (grpc.StatusCode.ABORTED, grpc.StatusCode.DEADLINE_EXCEEDED,
+                                grpc.StatusCode.PERMISSION_DENIED):   # those were logged where decided
                 log.warning("sync stream refused", extra={"node_id": stream.node_id, "peer": who.describe(),
                                                           "error": end.describe()})
             await context.abort(end.code, end.details)

@@ -45,8 +45,11 @@ class GroupWriter:
         loop = asyncio.get_running_loop()
         done: asyncio.Future[PendingWrite] = loop.create_future()
 
-        def resolve(op: PendingWrite) -> None:      # on this thread, after the commit
-            loop.call_soon_threadsafe(_settle, done, op)
+        def resolve(op: PendingWrite) -> None:      # on the writer thread, after the commit
+            try:
+                loop.call_soon_threadsafe(_settle, done, op)
+            except RuntimeError:      # the loop is closed: nobody waits for this answer any more
+                pass
 
         self.core.queue_write(kind, payload, on_done=resolve)
         self._wake.set()
