@@ -28,7 +28,7 @@ import inspect
 import logging
 import threading
 from dataclasses import dataclass
-from typing import Any, Awaitable, Callable, Generic, Iterable, Sequence, TypeVar
+from typing import Any, Awaitable, Callable, Generic, Iterable, Optional, Sequence, TypeVar, Union
 
 import grpc
 
@@ -186,7 +186,8 @@ class Outbox(Generic[Out]):
             await self._ready.wait()
 
 
-Handler = Callable[[In], "Sequence[Out] | Awaitable[Sequence[Out] | None] | None"]
+# a handler returns the replies to send, or an awaitable of them (None: nothing to send)
+Handler = Callable[[In], Union[Sequence[Out], Awaitable[Optional[Sequence[Out]]], None]]
 
 
 async def pump(*, read: Callable[[], Awaitable[Any]], write: Callable[[Out], Awaitable[None]],
