@@ -3,14 +3,16 @@ unlisting a node gone for good (UnlistNode).
 
 A thin adapter: figures come from coordinator/readings.py, actions and the decision log from
 coordinator/operations.py, the policy from its holder. The admin token is checked before a
-call gets here, by the TokenGuard interceptor (shardsieve/security.py).
+call gets here, by the TokenGuard interceptor (shardsieve/security.py). Each call's work runs
+through `CoordinatorShell.call` (on the event loop unless the coordinator lock is taken); a
+refusal is raised as `Refused` there and becomes the call's status here.
 """
 
 from __future__ import annotations
 
 import logging
 import time
-from typing import Callable
+from typing import Awaitable, Callable, TypeVar
 
 import grpc
 
@@ -18,12 +20,27 @@ from shardsieve.coordinator.operations import NodeConnected, Operations
 from shardsieve.coordinator.policy import LivePolicy, Policy, PolicyError
 from shardsieve.coordinator.readings import NodeReading, Readings
 from shardsieve.coordinator.saturation import Decision, saturation_reasons
+from shardsieve.coordinator.shell import CoordinatorShell
 from shardsieve.fanout import avoided_fanout
 from shardsieve.intervals import wilson_interval
 from shardsieve.limits import node_id_problem
 from shardsieve.v1 import admin_pb2, admin_pb2_grpc
 
 log = logging.getLogger("shardsieve.coordinator.admin")
+T = TypeVar("T")
+
+
+class Refused(Exception):
+    """Ends an Admin call with `code` and `details` (nothing changed)."""
+
+    def __init__(self, code: grpc.StatusCode, details: str) -> None:
+        super().__init__(details)
+        self.code = code
+        self.details = details
+
+
+async def _nothing_in_flight(_node_id: str) -> None:
+    return None
 
 
 def node_status(node: NodeReading, policy: Policy) -> admin_pb2.NodeStatus:
@@ -60,27 +77,43 @@ def policy_proto(p: Policy) -> admin_pb2.Policy:
 
 class AdminService(admin_pb2_grpc.AdminServicer):
     def __init__(self, coordinator_id: str, readings: Readings, operations: Operations, policy: LivePolicy,
+                 shell: CoordinatorShell, *, settled: Callable[[str], Awaitable[None]] = _nothing_in_flight,
                  clock: Callable[[], float] = time.monotonic) -> None:
+        """settled(node_id): waits until no snapshot install of that node is in flight (the sync
+        transport's), so an unlisting never overtakes one."""
         self.coordinator_id = coordinator_id
         self.readings = readings
         self.operations = operations
         self.policy = policy
+        self.shell = shell
+        self.settled = settled
         self.clock = clock
+
+    async def _answer(self, context: grpc.aio.ServicerContext, fn: Callable[[], T]) -> T:
+        try:
+            return await self.shell.call(fn)
+        except Refused as exc:
+            await context.abort(exc.code, exc.details)
+        raise AssertionError("unreachable")   # context.abort raises
 
     def _known(self) -> str:
         return ", ".join(self.readings.node_ids()) or "none"
 
     @staticmethod
-    def _refuse_bad_ids(node_ids: list[str], context: grpc.ServicerContext) -> None:
+    def _refuse_bad_ids(node_ids: list[str]) -> None:
         """INVALID_ARGUMENT, naming the rule, for an id outside the node id alphabet (docs/node.md,
         "Node ids"): no node can have it, so the request is malformed rather than about an
         unknown node."""
         for node_id in node_ids:
             problem = node_id_problem(node_id)
             if problem:
-                context.abort(grpc.StatusCode.INVALID_ARGUMENT, f"{problem}; nothing changed")
+                raise Refused(grpc.StatusCode.INVALID_ARGUMENT, f"{problem}; nothing changed")
 
-    def FleetStatus(self, request: admin_pb2.FleetStatusRequest, context: grpc.ServicerContext) -> admin_pb2.FleetStatusReply:
+    async def FleetStatus(self, request: admin_pb2.FleetStatusRequest,
+                          context: grpc.aio.ServicerContext) -> admin_pb2.FleetStatusReply:
+        return await self._answer(context, self.fleet_status)
+
+    def fleet_status(self) -> admin_pb2.FleetStatusReply:
         fleet = self.readings.fleet(self.clock())
         totals = fleet.totals
         low, high = wilson_interval(totals.false_positives, totals.lookups_checked)
@@ -93,31 +126,39 @@ class AdminService(admin_pb2_grpc.AdminServicer):
             observed_fpr_interval=admin_pb2.WilsonInterval(low=low, high=high),
             rebuilds_in_progress=fleet.rebuilds_in_progress)
 
-    def NodeDetail(self, request: admin_pb2.NodeDetailRequest, context: grpc.ServicerContext) -> admin_pb2.NodeDetailReply:
-        self._refuse_bad_ids([request.node_id], context)
-        node = self.readings.node(request.node_id, self.clock())
-        if node is None:
-            context.abort(grpc.StatusCode.NOT_FOUND, f"no node {request.node_id!r} is known (known: {self._known()})")
-        recent = self.operations.decisions(50, node_id=request.node_id)
-        return admin_pb2.NodeDetailReply(status=node_status(node, self.policy.current),  # type: ignore[arg-type]
-                                         recent_decisions=[_decision_proto(d) for d in recent])
+    async def NodeDetail(self, request: admin_pb2.NodeDetailRequest,
+                         context: grpc.aio.ServicerContext) -> admin_pb2.NodeDetailReply:
+        def detail() -> admin_pb2.NodeDetailReply:
+            self._refuse_bad_ids([request.node_id])
+            node = self.readings.node(request.node_id, self.clock())
+            if node is None:
+                raise Refused(grpc.StatusCode.NOT_FOUND, f"no node {request.node_id!r} is known (known: {self._known()})")
+            recent = self.operations.decisions(50, node_id=request.node_id)
+            return admin_pb2.NodeDetailReply(status=node_status(node, self.policy.current),
+                                             recent_decisions=[_decision_proto(d) for d in recent])
+        return await self._answer(context, detail)
 
-    def Rebuild(self, request: admin_pb2.RebuildCommand, context: grpc.ServicerContext) -> admin_pb2.RebuildReply:
+    async def Rebuild(self, request: admin_pb2.RebuildCommand,
+                      context: grpc.aio.ServicerContext) -> admin_pb2.RebuildReply:
+        return await self._answer(context, lambda: self.rebuild(request))
+
+    def rebuild(self, request: admin_pb2.RebuildCommand) -> admin_pb2.RebuildReply:
         if not request.node_ids and not request.flagged:
-            context.abort(grpc.StatusCode.INVALID_ARGUMENT, "name at least one node id or set 'flagged'")
-        self._refuse_bad_ids(list(request.node_ids), context)
+            raise Refused(grpc.StatusCode.INVALID_ARGUMENT, "name at least one node id or set 'flagged'")
+        self._refuse_bad_ids(list(request.node_ids))
         if request.target_fpr and not 0.0 < request.target_fpr < 1.0:
-            context.abort(grpc.StatusCode.INVALID_ARGUMENT,
+            raise Refused(grpc.StatusCode.INVALID_ARGUMENT,
                           f"target_fpr {request.target_fpr} must be strictly between 0 and 1 (0: policy target)")
         try:
             plans = self.operations.plan_rebuilds(list(request.node_ids), request.flagged, request.capacity,
                                                   request.target_fpr)
         except KeyError as exc:
             synced = ", ".join(self.operations.synced_nodes()) or "none"
-            context.abort(grpc.StatusCode.NOT_FOUND, f"no synced node named {exc.args[0]} (synced nodes: {synced})")
+            raise Refused(grpc.StatusCode.NOT_FOUND,
+                          f"no synced node named {exc.args[0]} (synced nodes: {synced})") from None
         bad = next((p for p in plans if p.geometry is None), None)
         if bad is not None:
-            context.abort(grpc.StatusCode.INVALID_ARGUMENT,
+            raise Refused(grpc.StatusCode.INVALID_ARGUMENT,
                           f"capacity {bad.capacity} at target {bad.target_fpr} gives no valid filter geometry")
         if not request.dry_run:
             self.operations.rebuild(plans)
@@ -126,35 +167,48 @@ class AdminService(admin_pb2_grpc.AdminServicer):
                                      geometry=p.geometry.to_proto() if p.geometry else None, reason=p.reason,
                                      queued=p.queued) for p in plans])
 
-    def GetPolicy(self, request: admin_pb2.PolicyGetRequest, context: grpc.ServicerContext) -> admin_pb2.Policy:
+    async def GetPolicy(self, request: admin_pb2.PolicyGetRequest,
+                        context: grpc.aio.ServicerContext) -> admin_pb2.Policy:
         return policy_proto(self.policy.current)
 
-    def SetPolicy(self, request: admin_pb2.PolicySetRequest, context: grpc.ServicerContext) -> admin_pb2.Policy:
-        try:
-            new = self.policy.update(dict(request.values))
-        except PolicyError as exc:
-            context.abort(grpc.StatusCode.INVALID_ARGUMENT, str(exc))
-        log.info("policy changed", extra={"changes": ", ".join(f"{k}={v}" for k, v in sorted(request.values.items()))})
-        return policy_proto(new)
+    async def SetPolicy(self, request: admin_pb2.PolicySetRequest,
+                        context: grpc.aio.ServicerContext) -> admin_pb2.Policy:
+        def update() -> admin_pb2.Policy:
+            try:
+                new = self.policy.update(dict(request.values))
+            except PolicyError as exc:
+                raise Refused(grpc.StatusCode.INVALID_ARGUMENT, str(exc)) from None
+            log.info("policy changed", extra={"changes": ", ".join(f"{k}={v}" for k, v in sorted(request.values.items()))})
+            return policy_proto(new)
+        return await self._answer(context, update)
 
-    def Decisions(self, request: admin_pb2.DecisionsRequest, context: grpc.ServicerContext) -> admin_pb2.DecisionsReply:
-        return admin_pb2.DecisionsReply(decisions=[_decision_proto(d) for d in self.operations.decisions(request.limit)])
+    async def Decisions(self, request: admin_pb2.DecisionsRequest,
+                        context: grpc.aio.ServicerContext) -> admin_pb2.DecisionsReply:
+        return await self._answer(context, lambda: admin_pb2.DecisionsReply(
+            decisions=[_decision_proto(d) for d in self.operations.decisions(request.limit)]))
 
-    def UnlistNode(self, request: admin_pb2.UnlistNodeRequest, context: grpc.ServicerContext) -> admin_pb2.UnlistNodeReply:
+    async def UnlistNode(self, request: admin_pb2.UnlistNodeRequest,
+                         context: grpc.aio.ServicerContext) -> admin_pb2.UnlistNodeReply:
+        if not request.node_id:
+            await context.abort(grpc.StatusCode.INVALID_ARGUMENT, "name the node id to unlist")
+        await self.settled(request.node_id)
+        return await self._answer(context, lambda: self.unlist(request))
+
+    def unlist(self, request: admin_pb2.UnlistNodeRequest) -> admin_pb2.UnlistNodeReply:
         node_id = request.node_id
         if not node_id:
-            context.abort(grpc.StatusCode.INVALID_ARGUMENT, "name the node id to unlist")
-        self._refuse_bad_ids([node_id], context)
+            raise Refused(grpc.StatusCode.INVALID_ARGUMENT, "name the node id to unlist")
+        self._refuse_bad_ids([node_id])
         try:
             gone = self.operations.unlist(node_id, request.force)
         except KeyError:
-            context.abort(grpc.StatusCode.NOT_FOUND,
-                          f"no node {node_id!r} is known (known: {self._known()}); nothing changed")
+            raise Refused(grpc.StatusCode.NOT_FOUND,
+                          f"no node {node_id!r} is known (known: {self._known()}); nothing changed") from None
         except NodeConnected:
-            context.abort(grpc.StatusCode.FAILED_PRECONDITION,
+            raise Refused(grpc.StatusCode.FAILED_PRECONDITION,
                           f"node {node_id!r} is connected (its sync stream is open), so it is not gone; nothing "
                           "changed. Stop it first, or set force (`shardsieve unlist --force`) to unlist it anyway (it "
-                          "comes back as a new node if it reconnects)")
+                          "comes back as a new node if it reconnects)") from None
         return admin_pb2.UnlistNodeReply(node_id=node_id, was_connected=gone.was_connected,
                                          had_replica=gone.had_replica, hints_dropped=gone.hints_dropped,
                                          key_count=gone.key_count, address=gone.address)

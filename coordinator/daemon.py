@@ -7,19 +7,27 @@ to membership, hints, accounting, the saturation monitor, metrics and the stream
 the nodes (each answers the restart's NeedSnapshot with a snapshot). The optional state dir
 remembers which nodes exist so, after a restart, they are listed as stale (safe mode) until
 they resync instead of being unknown.
+
+One asyncio event loop serves every gRPC call (grpc.aio), every sync stream (a stream costs no
+thread), the probes to nodes and the monitor timer; a few worker threads (`WORK_THREADS`) take
+what is heavy: snapshot decodes and index installs, very large deltas, large LocateBatch
+matches (docs/coordinator.md, "Event loop and threads").
 SIGTERM / SIGINT: health NOT_SERVING, sync streams end, the server drains, the process exits.
 """
 
 from __future__ import annotations
 
+import asyncio
 import logging
+import os
 import threading
 import time
-from concurrent import futures
+from concurrent.futures import ThreadPoolExecutor
 from typing import Any, Callable
 
 import grpc
-from grpc_health.v1 import health, health_pb2, health_pb2_grpc
+from grpc_health.v1 import health_pb2, health_pb2_grpc
+from grpc_health.v1.health import aio as health_aio
 
 from shardsieve.coordinator.admin_service import AdminService
 from shardsieve.coordinator.metrics import Metrics
@@ -39,18 +47,33 @@ from shardsieve.v1 import admin_pb2_grpc, sync_pb2_grpc
 log = logging.getLogger("shardsieve.coordinator")
 
 HEALTH_SERVICES = ("", "shardsieve.v1.Router", "shardsieve.v1.Admin", "shardsieve.v1.FilterSync")
+# worker threads for the heavy work taken off the event loop (the index's own locate threads come on top)
+WORK_THREADS = max(2, min(4, os.cpu_count() or 1))
+
+
 def setup_logging(settings: CoordinatorSettings) -> None:
     logs.setup_logging("coordinator", settings.id, settings.log_format, settings.log_level)
 
 
 class CoordinatorDaemon:
-    """One running coordinator. start() returns once SERVING; stop() is idempotent."""
+    """One running coordinator; build it on the event loop that runs it. start() returns once
+    SERVING; stop() is idempotent."""
 
     def __init__(self, settings: CoordinatorSettings, *, clock: Callable[[], float] = time.monotonic,
                  wall: Callable[[], float] = time.time) -> None:
         """clock: monotonic seconds, for every duration (freshness, hint ages, rebuild timeout,
         shrink grace); wall: Unix seconds, only for timestamps shown to people (decisions)."""
         self.settings = settings
+        # The listen address first: a taken port fails the start before anything else is set up.
+        self.server = grpc.aio.server(options=[("grpc.max_receive_message_length", settings.max_message_bytes),
+                                               ("grpc.max_send_message_length", 64 << 20),
+                                               security.EXCLUSIVE_PORT_OPTION],
+                                      interceptors=self._interceptors())
+        tls = settings.tls_files()
+        self.port = security.open_port(self.server, settings.listen, tls, settings.allow_plaintext, log,
+                                       "coordinator")
+        host = settings.listen.rpartition(":")[0]
+        self.address = f"{host}:{self.port}"
         limits = settings.sync_limits()
         # the owners of state and their readers (coordinator/wiring.py)
         self.state = state = wire_state(
@@ -58,61 +81,56 @@ class CoordinatorDaemon:
             max_hints=settings.max_hints, locate_threads=settings.locate_threads,
             monitor=SaturationMonitor(rebuild_timeout_s=settings.rebuild_timeout_s,
                                       shrink_grace_s=settings.shrink_grace_s),
-            sync_config=CoordinatorSyncConfig(max_snapshot_bytes=limits.max_snapshot_bytes))
+            sync_config=CoordinatorSyncConfig(max_snapshot_bytes=limits.max_snapshot_bytes, install_off_call=True))
         shell = state.shell
+        self.work = ThreadPoolExecutor(max_workers=WORK_THREADS, thread_name_prefix="coordinator-work")
+        shell.executor = self.work
         self.metrics = Metrics(state.readings)
-        tls = settings.tls_files()
-        self._secrets = secrets = settings.secrets()
-        node_tokens = secrets["node-token"]
+        node_tokens = self._secrets["node-token"]
         self.node_auth = "certificate" if settings.tls_client_auth else "token" if node_tokens else "open"
         self.node_authorizer = security.NodeAuthorizer(self.node_auth, node_tokens)
-        self.sync = SyncService(shell, clock=clock, delta_bytes=self.metrics.delta_bytes.inc,
-                                authorizer=self.node_authorizer,
-                                limiter=security.StreamLimiter(settings.max_streams_per_peer), limits=limits)
+        self.sync = SyncService(shell, clock=clock, delta_bytes=self.metrics.delta_bytes.inc, authorizer=self.node_authorizer,
+                                admission=security.StreamAdmission(max_streams=settings.max_sync_streams,
+                                                                   max_pending=settings.max_pending_streams,
+                                                                   max_per_peer=settings.max_streams_per_peer),
+                                limits=limits, hello_timeout_s=settings.hello_timeout_ms / 1000.0)
+        self.metrics.watch_streams(self.sync.admission)
         shell.subscribe(self.metrics.on_event)
         shell.subscribe(self.sync.on_event)
         self.operations = Operations(shell, state.readings, state.monitor, state.policy, state.hints,
                                      state.membership, self.sync.send, hint_max_age_s=settings.hint_max_age_s,
                                      clock=clock, wall=wall)
-        self.prober = Prober(settings.probe_threads, credentials=tls.channel_credentials(),
-                             metadata=security.auth_metadata(secrets["node-storage-token"]))
+        self.prober = Prober(credentials=tls.channel_credentials(),
+                             metadata=security.auth_metadata(self._secrets["node-storage-token"]))
         self.router = Router(state.candidates, shell, state.membership, state.hints, state.accounting,
                              state.policy, self.prober, expire_hints=self.operations.expire_hints, clock=clock,
                              read_deadline_s=settings.read_deadline_ms / 1000.0,
                              write_deadline_s=settings.write_deadline_ms / 1000.0, metrics=self.metrics,
                              max_key_bytes=settings.max_key_bytes, max_value_bytes=settings.max_value_bytes,
                              max_batch_keys=settings.max_batch_keys)
-        self.admin = AdminService(settings.id, state.readings, self.operations, state.policy, clock=clock)
-        # Installed even with no token configured, so a reload (SIGHUP) can start requiring one.
-        self.guard = security.TokenGuard(self._token_rules(secrets))
-        self.server = grpc.server(futures.ThreadPoolExecutor(max_workers=settings.grpc_workers,
-                                                             thread_name_prefix="grpc"),
-                                  interceptors=[self.guard, security.DecodeGuard()],
-                                  options=[("grpc.max_receive_message_length", settings.max_message_bytes),
-                                           ("grpc.max_send_message_length", 64 << 20)])
+        self.admin = AdminService(settings.id, state.readings, self.operations, state.policy, shell,
+                                  settled=self.sync.settled, clock=clock)
         add_router_service(RouterService(self.router), self.server)
         admin_pb2_grpc.add_AdminServicer_to_server(self.admin, self.server)
         sync_pb2_grpc.add_FilterSyncServicer_to_server(self.sync, self.server)
-        self.health = health.HealthServicer()
+        self.health = health_aio.HealthServicer()
         health_pb2_grpc.add_HealthServicer_to_server(self.health, self.server)
-        self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
-        self.port = security.open_port(self.server, settings.listen, tls, settings.allow_plaintext, log,
-                                       "coordinator")
         if self.node_auth == "open":
             log.warning("sync streams are not authenticated: any peer can push any node id's filter; configure "
                         "tls-client-auth (mutual TLS) or node-token-file")
-        if self.port == 0:
-            raise OSError(f"cannot listen on {settings.listen} (address in use or not local)")
-        host = settings.listen.rpartition(":")[0]
-        self.address = f"{host}:{self.port}"
         self.metrics_server: Any = None
-        self._stop = threading.Event()
-        self._stopped = threading.Event()
-        self._monitor_thread = threading.Thread(target=self._monitor_loop, name="monitor", daemon=True)
+        self._monitor: asyncio.Task[None] | None = None
+        self._stopped = False
 
-    def _set_health(self, status: int) -> None:
+    def _interceptors(self) -> list[grpc.aio.ServerInterceptor]:
+        # Installed even with no token configured, so a reload (SIGHUP) can start requiring one.
+        self._secrets = self.settings.secrets()
+        self.guard = security.TokenGuard(self._token_rules(self._secrets))
+        return [self.guard, security.DecodeGuard()]
+
+    async def _set_health(self, status: int) -> None:
         for name in HEALTH_SERVICES:
-            self.health.set(name, status)
+            await self.health.set(name, status)
 
     # -- tokens --------------------------------------------------------------------------------------
     @staticmethod
@@ -144,23 +162,25 @@ class CoordinatorDaemon:
         return changed
 
     # -- the monitor timer --------------------------------------------------------------------------
-    def _monitor_loop(self) -> None:
+    async def _monitor_loop(self) -> None:
         interval = self.settings.monitor_interval_s
-        while not self._stop.wait(interval):
+        while True:
+            await asyncio.sleep(interval)
             try:
-                self.operations.tick()
+                await self.state.shell.call(self.operations.tick)
             except Exception:  # noqa: BLE001 - the monitor must keep running
                 log.exception("saturation monitor tick failed")
 
     # -- lifecycle -----------------------------------------------------------------------------------
-    def start(self) -> None:
-        self.server.start()
+    async def start(self) -> None:
+        await self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
+        await self.server.start()
         if self.settings.metrics_port:
             host = self.settings.listen.rpartition(":")[0]
             self.metrics_server = self.metrics.serve(host, self.settings.metrics_port)
             log.info("metrics endpoint", extra={"address": f"{host}:{self.settings.metrics_port}"})
-        self._monitor_thread.start()
-        self._set_health(health_pb2.HealthCheckResponse.SERVING)
+        self._monitor = asyncio.create_task(self._monitor_loop(), name="monitor")
+        await self._set_health(health_pb2.HealthCheckResponse.SERVING)
         log.info("serving", extra={"address": self.address, "mode": self.state.policy.current.mode,
                                    "known_nodes": len(self.state.readings.node_ids()),
                                    "locate_threads": self.state.replicas.workers,
@@ -169,18 +189,22 @@ class CoordinatorDaemon:
                                    "write_token": "configured" if self._secrets["write-token"] else "none",
                                    "tls": "mutual" if self.settings.tls_client_auth else
                                    "server" if self.settings.tls_files().enabled else "off",
-                                   "node_auth": self.node_auth})
+                                   "node_auth": self.node_auth, "max_sync_streams": self.settings.max_sync_streams,
+                                   "max_pending_streams": self.settings.max_pending_streams,
+                                   "hello_timeout_ms": self.settings.hello_timeout_ms})
 
-    def stop(self, grace: float = 3.0) -> None:
-        if self._stopped.is_set():
+    async def stop(self, grace: float = 3.0) -> None:
+        if self._stopped:
             return
-        self._stopped.set()
+        self._stopped = True
         log.info("shutting down")
-        self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
-        self._stop.set()
-        self.sync.stop()
-        self.server.stop(grace).wait(grace + 1)
-        self.prober.close()
+        await self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
+        if self._monitor is not None:
+            self._monitor.cancel()
+        await self.sync.stop()
+        await self.server.stop(grace)
+        await self.prober.close()
+        self.work.shutdown(wait=False, cancel_futures=True)
         if self.metrics_server is not None:
             try:
                 self.metrics_server.shutdown()
@@ -192,6 +216,9 @@ class CoordinatorDaemon:
 def run(settings: CoordinatorSettings) -> int:
     """Run until SIGTERM/SIGINT; returns the process exit code."""
     setup_logging(settings)
-    return run_until_signalled("coordinator", log, lambda: CoordinatorDaemon(settings),
-                               lambda daemon, _stop: daemon.start(),
+
+    async def start(daemon: CoordinatorDaemon, _cancel: threading.Event) -> None:
+        await daemon.start()
+
+    return run_until_signalled("coordinator", log, lambda: CoordinatorDaemon(settings), start,
                                startup_errors=(OSError, RuntimeError, ValueError))

@@ -83,6 +83,31 @@ class FleetCollector(Collector):
         yield expired
 
 
+class StreamCollector(Collector):
+    """Sync streams open and still without a Hello, and the streams the admission caps refused or
+    the Hello deadline closed (read from shardsieve/security.py `StreamAdmission` at scrape time)."""
+
+    def __init__(self, admission: Any) -> None:
+        self.admission = admission
+
+    def collect(self) -> Iterable[Any]:
+        a = self.admission
+        streams = GaugeMetricFamily("shardsieve_coordinator_sync_streams",
+                                    "Sync streams open, by state (pending: no Hello yet)", labels=["state"])
+        streams.add_metric(["open"], a.open)
+        streams.add_metric(["pending"], a.pending)
+        yield streams
+        refused = CounterMetricFamily("shardsieve_coordinator_sync_streams_refused",
+                                      "Sync streams refused at admission, by the limit's setting", labels=["limit"])
+        for limit in ("max-sync-streams", "max-pending-streams", "max-streams-per-peer"):
+            refused.add_metric([limit], a.refused.get(limit, 0))
+        yield refused
+        late = CounterMetricFamily("shardsieve_coordinator_sync_streams_without_hello",
+                                   "Sync streams closed because no Hello came within hello-timeout-ms")
+        late.add_metric([], a.hello_timeouts)
+        yield late
+
+
 class Metrics:
     """Request-path instruments in a private registry (several coordinators per process stay apart)."""
 
@@ -102,6 +127,10 @@ class Metrics:
                                 ["action"], registry=self.registry)
         if readings is not None:
             self.registry.register(FleetCollector(readings))
+
+    def watch_streams(self, admission: Any) -> None:
+        """Export the sync stream admission's counts (coordinator/sync_service.py)."""
+        self.registry.register(StreamCollector(admission))
 
     def on_event(self, event: SyncEvent) -> None:
         """Snapshots installed and rebuild requests sent (by action: rebuild, shrink)."""

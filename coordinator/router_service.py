@@ -7,13 +7,19 @@ UNAVAILABLE naming it (absence is not proven). A write without a node id first a
 candidates whether the key exists (so an overwrite lands where the key lives), else goes to
 placement (the fresh node with the most free capacity); the node's ack becomes a
 read-your-writes hint (docs/architecture.md#2-read-your-writes-through-a-coordinator).
+
+Everything runs on the coordinator's event loop: reads of the coordinator's state go through
+`CoordinatorShell.call`, probes are grpc.aio calls gathered at once (coordinator/probes.py),
+and a LocateBatch of `OFF_LOOP_KEYS` keys or more is matched in a worker thread, so a large
+batch never delays a single-key Locate or a Read (docs/coordinator.md, "Event loop and threads").
 """
 
 from __future__ import annotations
 
+import asyncio
 import logging
 import time
-from typing import Callable, Iterable
+from typing import Any, Awaitable, Callable, Iterable
 
 import grpc
 
@@ -33,6 +39,9 @@ log = logging.getLogger("shardsieve.coordinator.router")
 MAX_BATCH_KEYS = 100_000
 MAX_KEY_BYTES = 64 * 1024
 MAX_VALUE_BYTES = 16 << 20
+# A LocateBatch at least this large is matched in a worker thread (a 256-key batch takes a few
+# hundred microseconds in process: shardsieve bench routing); smaller ones are answered on the loop.
+OFF_LOOP_KEYS = 256
 
 
 class RouterError(Exception):
@@ -87,6 +96,7 @@ class Router:
         self.write_deadline_s = write_deadline_s
         self.clock = clock
         self.metrics = metrics
+        self._background: set[asyncio.Future[Any]] = set()
 
     # -- locate ------------------------------------------------------------------------------------
     def locate(self, keys: list[bytes], kind: str = "locate") -> list[list[Candidate]]:
@@ -118,13 +128,22 @@ class Router:
         return lists
 
     # -- probing with accounting ----------------------------------------------------------------------
-    def _probe_get(self, key: bytes, cands: list[Candidate], deadline_s: float) -> tuple[ProbeResult | None, list[ProbeResult]]:
+    def _indexed(self) -> set[str]:
+        """The nodes whose filter was consulted: every one with a replica."""
+        with self.shell.lock:
+            return {state.node_id for state in self.shell.nodes() if state.has_replica}
+
+    def _record(self, outcomes: list[ProbeOutcome]) -> None:
+        with self.shell.lock:
+            self.accounting.record_read(outcomes)
+
+    async def _probe_get(self, key: bytes, cands: list[Candidate],
+                         deadline_s: float) -> tuple[ProbeResult | None, list[ProbeResult]]:
         """Ask every candidate for key; return (first hit or None, results known so far)."""
-        with self.shell.lock:   # the nodes whose filter was consulted: every one with a replica
-            indexed = {state.node_id for state in self.shell.nodes() if state.has_replica}
+        indexed = await self.shell.call(self._indexed)
         listed = {c.node_id: c for c in cands}
 
-        def account(results: list[ProbeResult]) -> None:
+        def account(results: list[ProbeResult]) -> None:     # once every probe finished, hit or not
             outcomes = []
             by_node = {r.node_id: r for r in results}
             for node_id, cand in listed.items():
@@ -135,25 +154,30 @@ class Router:
                                              reached=r is not None and r.reached))
             for node_id in indexed - listed.keys():
                 outcomes.append(ProbeOutcome(node_id, consulted=True, listed_by_filter=False, probed=False))
-            with self.shell.lock:
-                self.accounting.record_read(outcomes)
+            self._spawn(self.shell.call(self._record, outcomes))
             if self.metrics is not None:
                 self.metrics.observe_probes(results)  # type: ignore[attr-defined]
 
         targets = [(c.node_id, c.address) for c in cands]
         seen: list[ProbeResult] = []
-        for result in self.prober.ask_all(targets, "Get", storage_pb2.GetRequest(key=key), deadline_s, account):
+        for arriving in self.prober.ask_all(targets, "Get", storage_pb2.GetRequest(key=key), deadline_s, account):
+            result = await arriving
             seen.append(result)
             if result.reached and result.reply.found:
                 return result, seen
         return None, seen
 
+    def _spawn(self, work: Awaitable[Any]) -> None:
+        task = asyncio.ensure_future(work)
+        self._background.add(task)
+        task.add_done_callback(self._background.discard)
+
     # -- read / write / remove ------------------------------------------------------------------------
-    def read(self, key: bytes, deadline_ms: int = 0) -> routing_pb2.ReadReply:
+    async def read(self, key: bytes, deadline_ms: int = 0) -> routing_pb2.ReadReply:
         _check_key(key, limit=self.max_key_bytes)
-        cands = self.locate([key], kind="read")[0]
+        cands = (await self.shell.call(self.locate, [key], "read"))[0]
         deadline_s = deadline_ms / 1000.0 if deadline_ms else self.read_deadline_s
-        hit, seen = self._probe_get(key, cands, deadline_s)
+        hit, seen = await self._probe_get(key, cands, deadline_s)
         wasted = sum(1 for r in seen if r.reached and not r.reply.found)
         if hit is not None:
             return routing_pb2.ReadReply(found=True, value=hit.reply.value, node_id=hit.node_id, probes=len(cands),
@@ -163,44 +187,46 @@ class Router:
             raise self._unreachable("read", key, failed)
         return routing_pb2.ReadReply(found=False, probes=len(cands), wasted_probes=wasted, candidates=len(cands))
 
-    def write(self, key: bytes, value: bytes, node_id: str = "") -> routing_pb2.WriteReply:
+    def _address(self, node_id: str) -> tuple[str | None, str]:
+        """(node_id's storage address or None when unknown, the known node ids for an error)."""
+        with self.shell.lock:
+            return self.membership.address(node_id), ", ".join(self.membership.node_ids()) or "none"
+
+    async def write(self, key: bytes, value: bytes, node_id: str = "") -> routing_pb2.WriteReply:
         _check_key(key, limit=self.max_key_bytes)
         if len(value) > self.max_value_bytes:
             raise RouterError(grpc.StatusCode.INVALID_ARGUMENT,
                               f"value has {len(value)} bytes; the largest accepted is {self.max_value_bytes} "
                               "(setting max-value-bytes)")
         if node_id:
-            with self.shell.lock:
-                address = self.membership.address(node_id)
-                known = ", ".join(self.membership.node_ids()) or "none"
+            address, known = await self.shell.call(self._address, node_id)
             if address is None:
                 raise RouterError(grpc.StatusCode.INVALID_ARGUMENT, f"unknown node id {node_id!r} (known: {known})")
             target = node_id
         else:
-            cands = self.locate([key], kind="write")[0]
-            hit, seen = self._probe_get(key, cands, self.read_deadline_s)
+            cands = (await self.shell.call(self.locate, [key], "write"))[0]
+            hit, seen = await self._probe_get(key, cands, self.read_deadline_s)
             if hit is not None:
                 target = hit.node_id
             else:
                 failed = [r for r in seen if not r.reached]
                 if failed:
                     raise self._unreachable("write (the key may exist there)", key, failed)
-                picked = self._place()
+                picked = await self.shell.call(self._place)
                 if picked is None:
                     raise RouterError(grpc.StatusCode.UNAVAILABLE, "no node is connected; nowhere to place the write")
                 target = picked
-            with self.shell.lock:
-                address = self.membership.address(target) or ""
-        result = self.prober.call(target, address, "Put", storage_pb2.PutRequest(key=key, value=value),
-                                  self.write_deadline_s)
+            address = (await self.shell.call(self._address, target))[0] or ""
+        result = await self.prober.call(target, address, "Put", storage_pb2.PutRequest(key=key, value=value),
+                                        self.write_deadline_s)
         if not result.reached:
             raise self._node_error("write", target, result)
         ack = result.reply
         old = (ack.old_position.epoch, ack.old_position.sequence) if ack.HasField("old_position") else None
         now = self.clock()
         if self.expire_hints is not None:
-            self.expire_hints(now)
-        self.hold_hint(key, target, ack.epoch, ack.sequence, now, old=old)
+            await self.shell.call(self.expire_hints, now)
+        await self.shell.call(lambda: self.hold_hint(key, target, ack.epoch, ack.sequence, now, old=old))
         return routing_pb2.WriteReply(node_id=target, created=ack.created, epoch=ack.epoch, sequence=ack.sequence)
 
     def hold_hint(self, key: bytes, node_id: str, epoch: int, sequence: int, now: float,
@@ -219,12 +245,14 @@ class Router:
             return most_free_capacity(((n, self.shell.node(n)) for n in self.membership.node_ids()),
                                       self.policy.current, self.clock())
 
-    def remove(self, key: bytes) -> routing_pb2.RemoveReply:
+    async def remove(self, key: bytes) -> routing_pb2.RemoveReply:
         _check_key(key, limit=self.max_key_bytes)
-        cands = self.locate([key], kind="remove")[0]
+        cands = (await self.shell.call(self.locate, [key], "remove"))[0]
         targets = [(c.node_id, c.address) for c in cands]
         removed, failed = [], []
-        for r in self.prober.ask_all(targets, "Delete", storage_pb2.DeleteRequest(key=key), self.write_deadline_s):
+        for arriving in self.prober.ask_all(targets, "Delete", storage_pb2.DeleteRequest(key=key),
+                                            self.write_deadline_s):
+            r = await arriving
             if not r.reached:
                 failed.append(r)
             elif r.reply.created:
@@ -256,13 +284,13 @@ class RouterService:
         self.router = router
         self.encoder = encoder or ReplyEncoder()
 
-    def _run(self, context: grpc.ServicerContext, fn: Callable[[], object]) -> object:
+    async def _run(self, context: grpc.aio.ServicerContext, fn: Callable[[], Awaitable[object]]) -> object:
         try:
-            return fn()
+            return await fn()
         except RouterError as exc:
-            context.abort(exc.code, exc.message)
+            await context.abort(exc.code, exc.message)
         except OverflowError as exc:
-            context.abort(grpc.StatusCode.RESOURCE_EXHAUSTED, str(exc))
+            await context.abort(grpc.StatusCode.RESOURCE_EXHAUSTED, str(exc))
         raise AssertionError("unreachable")
 
     # Locate and LocateBatch answer with LocateReply / LocateBatchReply already in protobuf wire
@@ -274,20 +302,26 @@ class RouterService:
     def locate_batch_reply(self, keys: list[bytes]) -> bytes:
         return self.encoder.locate_batch_reply(self.router.locate_lists(keys))
 
-    def Locate(self, request: routing_pb2.LocateRequest, context: grpc.ServicerContext) -> bytes:
-        return self._run(context, lambda: self.locate_reply(request.key))  # type: ignore[return-value]
+    async def Locate(self, request: routing_pb2.LocateRequest, context: grpc.aio.ServicerContext) -> bytes:
+        return await self._run(context, lambda: self.router.shell.call(  # type: ignore[return-value]
+            self.locate_reply, request.key))
 
-    def LocateBatch(self, request: routing_pb2.LocateBatchRequest, context: grpc.ServicerContext) -> bytes:
-        return self._run(context, lambda: self.locate_batch_reply(list(request.keys)))  # type: ignore[return-value]
+    async def LocateBatch(self, request: routing_pb2.LocateBatchRequest, context: grpc.aio.ServicerContext) -> bytes:
+        keys = list(request.keys)
+        return await self._run(context, lambda: self.router.shell.call(  # type: ignore[return-value]
+            self.locate_batch_reply, keys, off_loop=len(keys) >= OFF_LOOP_KEYS))
 
-    def Read(self, request: routing_pb2.ReadRequest, context: grpc.ServicerContext) -> routing_pb2.ReadReply:
-        return self._run(context, lambda: self.router.read(request.key, request.deadline_ms))  # type: ignore[return-value]
+    async def Read(self, request: routing_pb2.ReadRequest, context: grpc.aio.ServicerContext) -> routing_pb2.ReadReply:
+        return await self._run(context, lambda: self.router.read(request.key, request.deadline_ms))  # type: ignore[return-value]
 
-    def Write(self, request: routing_pb2.WriteRequest, context: grpc.ServicerContext) -> routing_pb2.WriteReply:
-        return self._run(context, lambda: self.router.write(request.key, request.value, request.node_id))  # type: ignore[return-value]
+    async def Write(self, request: routing_pb2.WriteRequest,
+                    context: grpc.aio.ServicerContext) -> routing_pb2.WriteReply:
+        return await self._run(context, lambda: self.router.write(  # type: ignore[return-value]
+            request.key, request.value, request.node_id))
 
-    def Remove(self, request: routing_pb2.RemoveRequest, context: grpc.ServicerContext) -> routing_pb2.RemoveReply:
-        return self._run(context, lambda: self.router.remove(request.key))  # type: ignore[return-value]
+    async def Remove(self, request: routing_pb2.RemoveRequest,
+                     context: grpc.aio.ServicerContext) -> routing_pb2.RemoveReply:
+        return await self._run(context, lambda: self.router.remove(request.key))  # type: ignore[return-value]
 
 
 def _passthrough(serialize: Callable[[object], bytes]) -> Callable[[object], bytes]:
@@ -296,7 +330,7 @@ def _passthrough(serialize: Callable[[object], bytes]) -> Callable[[object], byt
     return serializer
 
 
-def add_router_service(service: RouterService, server: grpc.Server) -> None:
+def add_router_service(service: RouterService, server: grpc.aio.Server) -> None:
     """Register the Router service (like the generated add_RouterServicer_to_server, except that
     Locate/LocateBatch may return pre-encoded bytes)."""
     def handler(method: Callable[..., object], request_cls: type, reply_cls: type) -> grpc.RpcMethodHandler:

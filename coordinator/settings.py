@@ -45,6 +45,12 @@ class CoordinatorSettings:
     node_storage_token_file: Path | None = setting(None, "File holding node-storage-token (first line).")
     max_message_bytes: int = setting(64 << 20, "Largest gRPC message received (bytes).")
     max_streams_per_peer: int = setting(64, "Sync streams open at once from one peer host.")
+    max_sync_streams: int = setting(4096, "Sync streams open at once in all (one per node is the normal load); "
+                                          "past it a new stream is refused RESOURCE_EXHAUSTED.")
+    max_pending_streams: int = setting(256, "Sync streams open at once that have not completed their Hello (and "
+                                            "authentication); past it a new stream is refused RESOURCE_EXHAUSTED.")
+    hello_timeout_ms: int = setting(5000, "A sync stream that has not completed its Hello (and authentication) "
+                                          "this long after opening is closed (ms).")
     max_filter_bits: int = setting(1 << 34, "Largest node filter (bits) accepted on a sync stream.")
     max_snapshot_chunks: int = setting(4096, "Most chunks one snapshot may declare.")
     max_delta_bytes: int = setting(16 << 20, "Largest delta payload accepted (bytes).")
@@ -66,8 +72,6 @@ class CoordinatorSettings:
     rebuild_timeout_s: float = setting(120.0, "Give up waiting for a requested rebuild after this long (s).")
     read_deadline_ms: int = setting(2000, "Default deadline of a Read's probes (ms).")
     write_deadline_ms: int = setting(5000, "Deadline of a write or delete sent to a node (ms).")
-    probe_threads: int = setting(32, "Threads probing nodes concurrently.")
-    grpc_workers: int = setting(32, "Threads serving gRPC requests.")
     locate_threads: int = setting(0, "Threads one large LocateBatch (16,384 keys or more) is split across; "
                                      "0: one per core, at most 4.")
     max_hints: int = setting(1_000_000, "Most read-your-writes hints held before writes are refused.")
@@ -96,7 +100,7 @@ class CoordinatorSettings:
             value = getattr(self, name)
             if not (value > 0 and math.isfinite(value)):
                 raise ConfigError(f"setting '{name.replace('_', '-')}': must be above 0, got {value}")
-        for name in ("read_deadline_ms", "write_deadline_ms", "probe_threads", "grpc_workers", "max_hints"):
+        for name in ("read_deadline_ms", "write_deadline_ms", "max_hints"):
             if getattr(self, name) < 1:
                 raise ConfigError(f"setting '{name.replace('_', '-')}': must be at least 1, got {getattr(self, name)}")
         if self.locate_threads < 0:
@@ -123,8 +127,8 @@ class CoordinatorSettings:
         read_token(self.write_token, self.write_token_file, "write-token")
         read_token(self.node_storage_token, self.node_storage_token_file, "node-storage-token")
         parse_node_tokens(self.node_token, self.node_token_file)
-        for name in ("max_message_bytes", "max_streams_per_peer", "max_key_bytes", "max_value_bytes",
-                     "max_batch_keys"):
+        for name in ("max_message_bytes", "max_streams_per_peer", "max_sync_streams", "max_pending_streams",
+                     "hello_timeout_ms", "max_key_bytes", "max_value_bytes", "max_batch_keys"):
             if getattr(self, name) < 1:
                 raise ConfigError(f"setting '{name.replace('_', '-')}': must be at least 1, got {getattr(self, name)}")
         try:

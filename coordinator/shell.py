@@ -7,32 +7,65 @@ transport), each event to every subscriber in the order given, before the lock i
 (docs/architecture.md#how-events-flow). The replies are the caller's to send.
 
 Readers (candidates, status, metrics, operations) take the same lock and read the live
-per-node state through `node` / `nodes` (read-only `NodeState`). Nothing reads coordinator
-state from another thread without this lock, so it can later become a single event loop.
+per-node state through `node` / `nodes` (read-only `NodeState`).
+
+The coordinator runs on one asyncio event loop, and almost every call into the shell comes
+from it; the lock stays as a cheap guard for the few that do not: work heavy enough to run in
+a worker thread (a very large delta, a large LocateBatch's candidate merge) and the metrics
+endpoint's thread. `call` is how the loop's code uses the shell: on the loop while the lock is
+free (holds are short, so it nearly always is), in a worker thread otherwise, so the event
+loop never waits for the lock (docs/coordinator.md, "Event loop and threads").
+
+A snapshot install is split (shardsieve/sync/coordinator_side.py, `install_off_call`): the
+decode and the index install run in a worker thread (`run_install`, no lock: it touches only
+its job and the index, which has its own), the state commit under the lock (`finish_install`).
 """
 
 from __future__ import annotations
 
+import asyncio
 import logging
 import threading
 from collections.abc import Hashable
-from typing import Callable, Mapping, Sequence
+from concurrent.futures import Executor
+from typing import Any, Callable, Mapping, Sequence, TypeVar
 
-from shardsieve.sync.coordinator_side import CoordinatorSync, NodeState, Position, SyncEvent, SyncResult
+from shardsieve.sync.coordinator_side import (
+    CoordinatorSync,
+    NodeState,
+    Position,
+    SnapshotInstall,
+    SyncEvent,
+    SyncResult,
+)
 from shardsieve.v1 import sync_pb2
 
 log = logging.getLogger("shardsieve.coordinator.shell")
 
 Subscriber = Callable[[SyncEvent], None]
+T = TypeVar("T")
 
 
 class CoordinatorShell:
     """CoordinatorSync behind the coordinator's lock, with its events dispatched in order."""
 
-    def __init__(self, sync: CoordinatorSync, subscribers: Sequence[Subscriber] = ()) -> None:
+    def __init__(self, sync: CoordinatorSync, subscribers: Sequence[Subscriber] = (),
+                 executor: Executor | None = None) -> None:
         self.lock = threading.RLock()
         self._sync = sync
         self._subscribers: list[Subscriber] = list(subscribers)
+        self.executor = executor   # where `call` runs what is heavy or finds the lock taken (None: the loop's default)
+
+    async def call(self, fn: Callable[..., T], *args: Any, off_loop: bool = False) -> T:
+        """fn(*args) from the event loop: run at once, holding the lock, when the lock is free and
+        the work is light; else (off_loop: heavy work) in `executor`. `fn` takes the lock itself
+        for what it reads or changes, so it is correct either way."""
+        if not off_loop and self.lock.acquire(blocking=False):
+            try:
+                return fn(*args)
+            finally:
+                self.lock.release()
+        return await asyncio.get_running_loop().run_in_executor(self.executor, lambda: fn(*args))
 
     def subscribe(self, subscriber: Subscriber) -> None:
         """Add a subscriber after the others (wiring time, before any stream opens)."""
@@ -61,6 +94,14 @@ class CoordinatorShell:
     def close(self, node_id: str, stream_id: Hashable, now: float) -> SyncResult:
         with self.lock:
             return self._dispatch(self._sync.close(node_id, stream_id, now))
+
+    def run_install(self, job: SnapshotInstall) -> None:
+        """The heavy half of a snapshot install (a worker thread; no lock: see the module docstring)."""
+        self._sync.run_install(job)
+
+    def finish_install(self, job: SnapshotInstall, now: float) -> SyncResult:
+        with self.lock:
+            return self._dispatch(self._sync.finish_install(job, now))
 
     def unlist(self, node_id: str) -> SyncResult:
         with self.lock:

@@ -70,7 +70,7 @@ def _help(name: str) -> str:
 @click.option("--reconnect-max-ms", default=None, metavar="N", help=_help("reconnect_max_ms"))
 @click.option("--log-level", default=None, metavar="LEVEL", help=_help("log_level"))
 @click.option("--log-format", default=None, metavar="json|text", help=_help("log_format"))
-@click.option("--grpc-workers", default=None, metavar="N", help=_help("grpc_workers"))
+@click.option("--read-threads", default=None, metavar="N", help=_help("read_threads"))
 @click.option("--tls-cert", default=None, metavar="FILE", help=_help("tls_cert"))
 @click.option("--tls-key", default=None, metavar="FILE", help=_help("tls_key"))
 @click.option("--tls-ca", default=None, metavar="FILE", help=_help("tls_ca"))

@@ -12,10 +12,18 @@ NodeSync out for one step under the lock and then carries the Ready out, in orde
 writes to the store's meta table, messages to each coordinator stream's outbox, actions
 (start a rebuild scan, log lines), then `ack` (docs/architecture.md#how-events-flow).
 
+Writes: every write is queued (`queue_write`) and committed by whoever commits next
+(`commit_queued`, under the lock): the daemon's one writer thread (node/writer.py) or, for
+in-process callers, the caller of `put_many` / `delete_many` itself. Either way every queued
+write goes out in one store transaction (one fsync) and is acknowledged only after it.
+
 Rebuild: NodeSync asks for a store scan (StartScan). A scan thread reads the store in key
 order, one batch per lock hold (so writes wait at most one batch), hands each batch to
 `NodeSync.scan_batch` and reports the end of the store with `scan_done`. Which filters a
 write reaches meanwhile is NodeSync's rule, not this module's.
+
+Nothing here knows about the event loop: the daemon runs these calls in worker threads
+(docs/node.md, "Threads and the event loop").
 """
 
 from __future__ import annotations
@@ -98,13 +106,25 @@ class _Counters:
 
 
 @dataclass
-class _PendingWrite:
+class PendingWrite:
+    """One queued write: its result, stamp or error once `done` (then `on_done` is called,
+    from the thread that committed it)."""
+
     kind: str                 # "put" (payload: [(key, value)]) or "delete" (payload: [key])
     payload: list
+    on_done: Callable[[PendingWrite], None] | None = None
     done: bool = False
     result: list[bool] = field(default_factory=list)
     error: BaseException | None = None
     stamp: WriteStamp | None = None
+
+    def results(self) -> list[WriteResult]:
+        """The per-item results (raises the commit's error)."""
+        if self.error is not None:
+            raise self.error
+        assert self.stamp is not None
+        stamp = self.stamp
+        return [WriteResult(flag, stamp.epoch, stamp.sequence, stamp.old_position) for flag in self.result]
 
 
 class NodeCore:
@@ -125,7 +145,7 @@ class NodeCore:
         self.background_rebuild = background_rebuild   # False: the caller drives rebuild_step() (unit tests)
         self.lock = threading.RLock()
         self._queue_lock = threading.Lock()
-        self._queue: list[_PendingWrite] = []
+        self._queue: list[PendingWrite] = []
         self._counter_lock = threading.Lock()
         self._counters = _Counters()
         self.ready = False
@@ -143,9 +163,10 @@ class NodeCore:
         self.sync: NodeSync | None = None
         self._outboxes: dict[str, Outbox] = {}
         self._scan_keys: Iterator[list[bytes]] | None = None   # the store read of a rebuild scan
-        self._push_now = threading.Event()
+        # Called (from any thread) when a cut is due before the next push interval: the size
+        # threshold was reached, or a rebuild scan ended. The pusher (node/pusher.py) sets it.
+        self.wake_pusher: Callable[[], None] = lambda: None
         self._stop = threading.Event()
-        self._pusher: threading.Thread | None = None
         self._scan_threads: list[threading.Thread] = []
 
     # ------------------------------------------------------------------ views (logs and tests)
@@ -240,8 +261,8 @@ class NodeCore:
             return StoreCounters(reads=c.reads, reads_missed=c.reads_missed, writes=c.writes, deletes=c.deletes)
 
     # ------------------------------------------------------------------ writes
-    def put_many(self, items: Sequence[tuple[bytes, bytes]]) -> list[WriteResult]:
-        """Validate all items, then one store transaction + filter update; results in item order."""
+    def check_put(self, items: Sequence[tuple[bytes, bytes]]) -> list[tuple[bytes, bytes]]:
+        """The items as bytes, once every key and value is within the limits (else InvalidInput)."""
         self._require_ready()
         items = [(bytes(k), bytes(v)) for k, v in items]
         self._check_keys([k for k, _ in items])
@@ -249,65 +270,86 @@ class NodeCore:
             if len(value) > self.limits.max_value_bytes:
                 raise InvalidInput(f"item {i}: value of {len(value)} bytes is above max-value-bytes "
                                    f"({self.limits.max_value_bytes})")
-        if not items:
-            return []
-        created, stamp = self._write("put", items)
-        return [WriteResult(c, stamp.epoch, stamp.sequence, stamp.old_position) for c in created]
+        return items
 
-    def delete_many(self, keys: Sequence[bytes]) -> list[WriteResult]:
-        """Validate, delete in one transaction, uncount only keys that existed."""
+    def check_delete(self, keys: Sequence[bytes]) -> list[bytes]:
+        """The keys as bytes, once every one is within the limits (else InvalidInput)."""
         self._require_ready()
         keys = [bytes(k) for k in keys]
         self._check_keys(keys)
-        if not keys:
-            return []
-        existed, stamp = self._write("delete", keys)
-        return [WriteResult(e, stamp.epoch, stamp.sequence, stamp.old_position) for e in existed]
+        return keys
 
-    def _write(self, kind: str, payload: list) -> tuple[list[bool], WriteStamp]:
-        """Group commit: queue the op; whoever holds the write lock next commits every queued op
-        in one transaction (one fsync), records them in NodeSync in queue order and gives them
-        all the stamp taken after the last one. Concurrent writers thus share a sync instead of
-        paying one each; a lone writer commits alone at once. A failed commit fails every op of
-        its group (none was applied)."""
-        op = _PendingWrite(kind, payload)
-        with self._queue_lock:
-            self._queue.append(op)
+    def put_many(self, items: Sequence[tuple[bytes, bytes]]) -> list[WriteResult]:
+        """Validate all items, then one store transaction + filter update; results in item order."""
+        items = self.check_put(items)
+        return self._write("put", items) if items else []
+
+    def delete_many(self, keys: Sequence[bytes]) -> list[WriteResult]:
+        """Validate, delete in one transaction, uncount only keys that existed."""
+        keys = self.check_delete(keys)
+        return self._write("delete", keys) if keys else []
+
+    def _write(self, kind: str, payload: list) -> list[WriteResult]:
+        """Queue the op and commit the queue unless a commit already took it (group commit:
+        writers that queued behind a commit in progress share the next one)."""
+        op = self.queue_write(kind, payload)
         with self.lock:
             if not op.done:
-                with self._queue_lock:
-                    ops, self._queue = self._queue, []
-                try:
-                    results = self.store.write_batch([(o.kind, o.payload) for o in ops])
-                    sync = self._sync()
-                    stamp: WriteStamp | None = None
-                    writes = deletes = 0
-                    for o, flags in zip(ops, results):      # the commit returned: durable
-                        if o.kind == "put":
-                            stamp = sync.record(added=[k for (k, _), c in zip(o.payload, flags) if c])
-                            writes += len(o.payload)
-                        else:
-                            stamp = sync.record(removed=[k for k, e in zip(o.payload, flags) if e])
-                            deletes += len(o.payload)
-                        o.result = flags
-                    assert stamp is not None    # the group holds at least this op
-                    for o in ops:
-                        o.stamp, o.done = stamp, True
-                    if stamp.cut_due:
-                        self._push_now.set()
-                    with self._counter_lock:
-                        self._counters.writes += writes
-                        self._counters.deletes += deletes
-                except BaseException as exc:
-                    if not isinstance(exc, StoreError):
-                        log.exception("write failed after the store call", extra={"ops": len(ops)})
-                    for o in ops:   # every op of the group gets the error (a StoreError: nothing applied)
-                        if not o.done:
-                            o.error, o.done = exc, True
-        if op.error is not None:
-            raise op.error
-        assert op.stamp is not None
-        return op.result, op.stamp
+                self.commit_queued()
+        return op.results()
+
+    def queue_write(self, kind: str, payload: list,
+                    on_done: Callable[[PendingWrite], None] | None = None) -> PendingWrite:
+        """Queue a checked write ("put": [(key, value)], "delete": [key]) for the next commit."""
+        op = PendingWrite(kind, payload, on_done)
+        with self._queue_lock:
+            self._queue.append(op)
+        return op
+
+    def has_queued_writes(self) -> bool:
+        with self._queue_lock:
+            return bool(self._queue)
+
+    def commit_queued(self) -> int:
+        """Commit every queued op in one transaction (one fsync), record them in NodeSync in queue
+        order and give them all the stamp taken after the last one; call with `lock` held.
+        Concurrent writers thus share a sync instead of paying one each. A failed commit fails
+        every op of its group (none was applied). Returns the number of ops committed."""
+        with self._queue_lock:
+            ops, self._queue = self._queue, []
+        if not ops:
+            return 0
+        try:
+            results = self.store.write_batch([(o.kind, o.payload) for o in ops])
+            sync = self._sync()
+            stamp: WriteStamp | None = None
+            writes = deletes = 0
+            for o, flags in zip(ops, results):      # the commit returned: durable
+                if o.kind == "put":
+                    stamp = sync.record(added=[k for (k, _), c in zip(o.payload, flags) if c])
+                    writes += len(o.payload)
+                else:
+                    stamp = sync.record(removed=[k for k, e in zip(o.payload, flags) if e])
+                    deletes += len(o.payload)
+                o.result = flags
+            assert stamp is not None    # the group holds at least one op
+            for o in ops:
+                o.stamp, o.done = stamp, True
+            if stamp.cut_due:
+                self.wake_pusher()
+            with self._counter_lock:
+                self._counters.writes += writes
+                self._counters.deletes += deletes
+        except BaseException as exc:
+            if not isinstance(exc, StoreError):
+                log.exception("write failed after the store call", extra={"ops": len(ops)})
+            for o in ops:   # every op of the group gets the error (a StoreError: nothing applied)
+                if not o.done:
+                    o.error, o.done = exc, True
+        for o in ops:
+            if o.on_done is not None:
+                o.on_done(o)
+        return len(ops)
 
     # ------------------------------------------------------------------ one NodeSync step
     @contextmanager
@@ -348,42 +390,16 @@ class NodeCore:
 
     # ------------------------------------------------------------------ change stream
     def cut(self, now: float | None = None) -> list[tuple[int, int]]:
-        """Cut pending changes into deltas and hand them to every stream (normally the pusher
-        thread does this every push interval). Returns the (epoch, sequence) of each delta."""
+        """Cut pending changes into deltas and hand them to every stream (normally the pusher,
+        node/pusher.py, does this every push interval). Returns the (epoch, sequence) of each delta."""
         with self.sync_step(now) as sync:
             return sync.cut()
 
-    def start_pusher(self, interval: float | None = None) -> None:
-        if interval is not None:
-            self.push_interval = interval
-        self._pusher = threading.Thread(target=self._push_loop, name="pusher", daemon=True)
-        self._pusher.start()
-
-    def stop_pusher(self) -> None:
+    def stop(self) -> None:
+        """Refuse new requests and wait for a running rebuild scan to stop (shutdown)."""
         self._stop.set()
-        self._push_now.set()
-        if self._pusher is not None:
-            self._pusher.join(5.0)
         for thread in self._scan_threads:
             thread.join(5.0)
-
-    def _push_loop(self) -> None:
-        """Cut on a fixed cadence of push_interval, plus extra cuts when the size threshold fires."""
-        next_cut = time.monotonic() + self.push_interval
-        while not self._stop.is_set():
-            early = self._push_now.wait(max(0.0, next_cut - time.monotonic()))
-            self._push_now.clear()
-            if self._stop.is_set():
-                return
-            try:
-                self.cut()
-            except Exception:  # noqa: BLE001 - keep pushing; the error is logged with its trace
-                log.exception("cutting a delta failed")
-            now = time.monotonic()
-            if not early or now >= next_cut:
-                next_cut += self.push_interval
-                if next_cut <= now:          # fell behind (a long lock hold): restart the cadence
-                    next_cut = now + self.push_interval
 
     # ------------------------------------------------------------------ coordinator streams (driver calls)
     def open_stream(self, peer: str, outbox: Outbox, now: float) -> None:
@@ -465,7 +481,7 @@ class NodeCore:
                     sync.scan_failed(f"scan failed: {exc}")
             except Exception:  # noqa: BLE001 - logged; the node keeps serving with the old filter
                 log.exception("could not abandon the failed rebuild")
-        self._push_now.set()
+        self.wake_pusher()
 
     # ------------------------------------------------------------------ stats
     def stats(self) -> dict[str, object]:

@@ -1,28 +1,38 @@
 """Wiring of a node process: store, core, gRPC server + health, sync drivers, metrics, logs, shutdown.
 
+One asyncio event loop serves gRPC (grpc.aio), runs the push timer, the heartbeats and one
+stream per coordinator (docs/node.md, "Threads and the event loop"). What may block runs in
+threads: store commits on the writer thread (node/writer.py), reads on the read threads,
+NodeSync steps on the sync thread (they take the node lock, which a commit holds during its
+fsync), the filter load and the rebuild scan on their own threads.
+
 Start order (why): the gRPC server starts first with health NOT_SERVING so probes get an
 answer at once; the filter is then rebuilt from the store (progress logged), the new epoch
 persisted, health flips to SERVING, and only then do sync drivers open their streams.
-SIGTERM / SIGINT: health NOT_SERVING, sync drivers stop, the server drains in-flight calls
-(a grace period), the store closes. Nothing acknowledged is pending at that point: acks are
-sent only after the store commit returned.
+SIGTERM / SIGINT: health NOT_SERVING, sync streams end, the server drains in-flight calls
+(a grace period), the writer commits what is queued, the store closes. Nothing acknowledged is
+pending at that point: acks are sent only after the store commit returned.
 """
 
 from __future__ import annotations
 
+import asyncio
 import logging
 import threading
-from concurrent import futures
+from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import grpc
-from grpc_health.v1 import health, health_pb2, health_pb2_grpc
+from grpc_health.v1 import health_pb2, health_pb2_grpc
+from grpc_health.v1.health import aio as health_aio
 
 from shardsieve.node.core import Limits, LoadCancelled, NodeCore
+from shardsieve.node.pusher import Pusher
 from shardsieve.node.service import NodeStorageService
 from shardsieve.node.settings import NodeSettings
 from shardsieve.node.store import StoreError, open_store
 from shardsieve.node.sync_driver import SyncDriver
+from shardsieve.node.writer import GroupWriter
 from shardsieve import logs, security
 from shardsieve.daemon_runner import run_until_signalled
 from shardsieve.v1 import storage_pb2_grpc
@@ -30,15 +40,30 @@ from shardsieve.v1 import storage_pb2_grpc
 log = logging.getLogger("shardsieve.node")
 
 HEALTH_SERVICES = ("", "shardsieve.v1.NodeStorage")
+
+
 def setup_logging(settings: NodeSettings) -> None:
     logs.setup_logging("node", settings.id, settings.log_format, settings.log_level)
 
 
 class NodeDaemon:
-    """One running node. start() returns once SERVING; stop() is idempotent."""
+    """One running node; build it on the event loop that runs it. start() returns once SERVING;
+    stop() is idempotent."""
 
     def __init__(self, settings: NodeSettings) -> None:
         self.settings = settings
+        # The listen address first: a taken port fails the start before anything else is opened.
+        self._secrets = settings.secrets()
+        # Installed even with no token configured, so a reload (SIGHUP) can start requiring one.
+        self.guard = security.TokenGuard({"/shardsieve.v1.NodeStorage/": self._secrets["token"]})
+        self.server = grpc.aio.server(interceptors=[self.guard, security.DecodeGuard()],
+                                      options=[("grpc.max_receive_message_length", 64 << 20),
+                                               ("grpc.max_send_message_length", 64 << 20),
+                                               security.EXCLUSIVE_PORT_OPTION])
+        self.port = security.open_port(self.server, settings.listen, settings.tls_files(), settings.allow_plaintext,
+                                       log, "node storage")
+        host = settings.listen.rpartition(":")[0]
+        self.address = f"{host}:{self.port}"
         self.store = open_store(settings.store, settings.data, settings.sync_level)
         self.core = NodeCore(settings.id, self.store, capacity=settings.capacity, target_fpr=settings.fpr,
                              seed=settings.seed, history_limit=settings.history_limit,
@@ -46,37 +71,30 @@ class NodeDaemon:
                              push_interval=settings.push_interval_ms / 1000.0,
                              limits=Limits(settings.max_key_bytes, settings.max_value_bytes, settings.max_batch),
                              scan_batch=settings.scan_batch)
-        self._secrets = settings.secrets()
-        # Installed even with no token configured, so a reload (SIGHUP) can start requiring one.
-        self.guard = security.TokenGuard({"/shardsieve.v1.NodeStorage/": self._secrets["token"]})
-        self.server = grpc.server(futures.ThreadPoolExecutor(max_workers=settings.grpc_workers,
-                                                             thread_name_prefix="grpc"),
-                                  interceptors=[self.guard, security.DecodeGuard()],
-                                  options=[("grpc.max_receive_message_length", 64 << 20),
-                                           ("grpc.max_send_message_length", 64 << 20)])
-        self.health = health.HealthServicer()
-        storage_pb2_grpc.add_NodeStorageServicer_to_server(NodeStorageService(self.core), self.server)
-        health_pb2_grpc.add_HealthServicer_to_server(self.health, self.server)
-        self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
-        self.port = security.open_port(self.server, settings.listen, settings.tls_files(), settings.allow_plaintext,
-                                       log, "node storage")
-        if self.port == 0:
-            raise StoreError(f"cannot listen on {settings.listen} (address in use or not local)")
-        host = settings.listen.rpartition(":")[0]
-        self.address = f"{host}:{self.port}"
         self.core.storage_address = settings.advertise or self.address
+        self.writer = GroupWriter(self.core)
+        self.readers = ThreadPoolExecutor(max_workers=settings.read_threads, thread_name_prefix="node-read")
+        # NodeSync steps, one at a time and in order (stream open/close, messages, cuts, ticks)
+        self.sync_thread = ThreadPoolExecutor(max_workers=1, thread_name_prefix="node-sync")
+        self.health = health_aio.HealthServicer()
+        storage_pb2_grpc.add_NodeStorageServicer_to_server(NodeStorageService(self.core, self.writer, self.readers),
+                                                           self.server)
+        health_pb2_grpc.add_HealthServicer_to_server(self.health, self.server)
+        self.pusher = Pusher(self.core, settings.push_interval_ms / 1000.0, self.sync_thread)
         self.drivers: list[SyncDriver] = []
         self.metrics_server: Any = None
-        self._stopped = threading.Event()
+        self._stopped = False
 
-    def _set_health(self, status: int) -> None:
+    async def _set_health(self, status: int) -> None:
         for name in HEALTH_SERVICES:
-            self.health.set(name, status)
+            await self.health.set(name, status)
 
-    def start(self, cancel: threading.Event | None = None) -> None:
+    async def start(self, cancel: threading.Event | None = None) -> None:
         """Serve health at once, load the filter (abandoned with LoadCancelled if cancel is set),
         then SERVING and sync streams."""
-        self.server.start()
+        await self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
+        await self.server.start()
+        self.writer.start()
         log.info("listening", extra={"address": self.address, "data": str(self.settings.data),
                                      "sync_level": self.settings.sync_level, "store": self.settings.store})
         if self.settings.metrics_port:
@@ -90,18 +108,19 @@ class NodeDaemon:
         def progress(keys: int, seconds: float) -> None:
             log.info("loading filter from store", extra={"keys_scanned": keys, "seconds": round(seconds, 2)})
 
-        self.core.load(progress, cancel)
-        self._set_health(health_pb2.HealthCheckResponse.SERVING)
+        await asyncio.get_running_loop().run_in_executor(None, self.core.load, progress, cancel)
+        await self._set_health(health_pb2.HealthCheckResponse.SERVING)
         log.info("serving", extra={"address": self.address, "epoch": self.core.epoch,
                                    "keys": self.core.key_count, "geometry": str(self.core.geometry)})
-        self.core.start_pusher(self.settings.push_interval_ms / 1000.0)
+        self.pusher.start()
         for addr in self.settings.coordinator:
             driver = SyncDriver(self.core, addr, push_interval=self.settings.push_interval_ms / 1000.0,
                                 heartbeat_interval=self.settings.heartbeat_ms / 1000.0,
                                 backoff_min=self.settings.reconnect_min_ms / 1000.0,
                                 backoff_max=self.settings.reconnect_max_ms / 1000.0,
                                 credentials=self.settings.tls_files().channel_credentials(),
-                                metadata=security.auth_metadata(self._secrets["sync-token"]))
+                                metadata=security.auth_metadata(self._secrets["sync-token"]),
+                                executor=self.sync_thread)
             driver.start()
             self.drivers.append(driver)
 
@@ -118,18 +137,20 @@ class NodeDaemon:
         self._secrets = new
         return changed
 
-    def stop(self, grace: float = 5.0) -> None:
-        if self._stopped.is_set():
+    async def stop(self, grace: float = 5.0) -> None:
+        if self._stopped:
             return
-        self._stopped.set()
+        self._stopped = True
         log.info("shutting down")
-        self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
-        self.core.stop_pusher()
-        for driver in self.drivers:
-            driver.stop()
-        self.server.stop(grace).wait(grace + 1)
-        for driver in self.drivers:
-            driver.join(2.0)
+        await self._set_health(health_pb2.HealthCheckResponse.NOT_SERVING)
+        await self.pusher.stop()
+        await asyncio.gather(*(driver.stop() for driver in self.drivers))
+        await self.server.stop(grace)
+        loop = asyncio.get_running_loop()
+        await loop.run_in_executor(None, self.core.stop)         # a rebuild scan ends
+        await loop.run_in_executor(None, self.writer.stop)       # what is queued commits
+        self.readers.shutdown(wait=True)
+        self.sync_thread.shutdown(wait=True)
         if self.metrics_server is not None:
             try:
                 self.metrics_server.shutdown()
@@ -142,6 +163,10 @@ class NodeDaemon:
 def run(settings: NodeSettings) -> int:
     """Run until SIGTERM/SIGINT; returns the process exit code."""
     setup_logging(settings)
-    return run_until_signalled("node", log, lambda: NodeDaemon(settings), lambda daemon, stop: daemon.start(stop),
+
+    async def start(daemon: NodeDaemon, cancel: threading.Event) -> None:
+        await daemon.start(cancel)
+
+    return run_until_signalled("node", log, lambda: NodeDaemon(settings), start,
                                startup_errors=(StoreError, OSError, RuntimeError, ValueError),
                                quiet_stops=(LoadCancelled,))

@@ -1,19 +1,25 @@
-"""NodeStorage gRPC servicer: a thin adapter from wire messages to NodeCore calls.
+"""NodeStorage gRPC servicer on grpc.aio: a thin adapter from wire messages to NodeCore calls.
 
 All validation lives in NodeCore (so in-process writers get the same checks); this module
 only maps InvalidInput to INVALID_ARGUMENT, a not-yet-loaded node to UNAVAILABLE and store
-failures to INTERNAL, each with the core's message.
+failures to INTERNAL, each with the core's message. Nothing here blocks the event loop:
+writes are checked on the loop and committed by the writer thread (node/writer.py); reads,
+scans and stats (which take the node lock a commit holds during its fsync) run on the read
+threads (`readers`).
 """
 
 from __future__ import annotations
 
+import asyncio
 import logging
-from typing import Callable, TypeVar
+from concurrent.futures import Executor
+from typing import Awaitable, Callable, TypeVar
 
 import grpc
 
 from shardsieve.node.core import InvalidInput, NodeCore, NotReady, WriteResult
 from shardsieve.node.store import StoreError
+from shardsieve.node.writer import GroupWriter
 from shardsieve.v1 import storage_pb2, storage_pb2_grpc
 
 log = logging.getLogger("shardsieve.node.service")
@@ -33,63 +39,85 @@ def _ack(result: WriteResult) -> storage_pb2.WriteAck:
 class NodeStorageService(storage_pb2_grpc.NodeStorageServicer):
     """Serves put/get/delete (single and batched), stats and key scans from one NodeCore."""
 
-    def __init__(self, core: NodeCore) -> None:
+    def __init__(self, core: NodeCore, writer: GroupWriter, readers: Executor | None = None) -> None:
         self.core = core
+        self.writer = writer
+        self.readers = readers
 
-    def _call(self, context: grpc.ServicerContext, fn: Callable[[], R]) -> R:
+    async def _call(self, context: grpc.aio.ServicerContext, fn: Callable[[], Awaitable[R]]) -> R:
         try:
-            return fn()
+            return await fn()
         except InvalidInput as exc:
-            context.abort(grpc.StatusCode.INVALID_ARGUMENT, str(exc))
+            await context.abort(grpc.StatusCode.INVALID_ARGUMENT, str(exc))
         except NotReady as exc:
-            context.abort(grpc.StatusCode.UNAVAILABLE, str(exc))
+            await context.abort(grpc.StatusCode.UNAVAILABLE, str(exc))
         except StoreError as exc:
             log.error("store failure", extra={"error": str(exc)})
-            context.abort(grpc.StatusCode.INTERNAL, str(exc))
+            await context.abort(grpc.StatusCode.INTERNAL, str(exc))
         raise AssertionError("unreachable")  # context.abort raises
 
-    def Put(self, request: storage_pb2.PutRequest, context: grpc.ServicerContext) -> storage_pb2.WriteAck:
-        return self._call(context, lambda: _ack(self.core.put_many([(request.key, request.value)])[0]))
+    async def _read(self, fn: Callable[..., R], *args: object) -> R:
+        return await asyncio.get_running_loop().run_in_executor(self.readers, fn, *args)
 
-    def Get(self, request: storage_pb2.GetRequest, context: grpc.ServicerContext) -> storage_pb2.GetReply:
-        def run() -> storage_pb2.GetReply:
-            value = self.core.get_many([request.key])[0]
+    async def _put(self, items: list[tuple[bytes, bytes]]) -> list[WriteResult]:
+        return await self.writer.write("put", self.core.check_put(items))
+
+    async def _delete(self, keys: list[bytes]) -> list[WriteResult]:
+        return await self.writer.write("delete", self.core.check_delete(keys))
+
+    async def Put(self, request: storage_pb2.PutRequest, context: grpc.aio.ServicerContext) -> storage_pb2.WriteAck:
+        async def run() -> storage_pb2.WriteAck:
+            return _ack((await self._put([(request.key, request.value)]))[0])
+        return await self._call(context, run)
+
+    async def Get(self, request: storage_pb2.GetRequest, context: grpc.aio.ServicerContext) -> storage_pb2.GetReply:
+        async def run() -> storage_pb2.GetReply:
+            value = (await self._read(self.core.get_many, [request.key]))[0]
             return storage_pb2.GetReply(found=value is not None, value=value or b"")
-        return self._call(context, run)
+        return await self._call(context, run)
 
-    def Delete(self, request: storage_pb2.DeleteRequest, context: grpc.ServicerContext) -> storage_pb2.WriteAck:
-        return self._call(context, lambda: _ack(self.core.delete_many([request.key])[0]))
+    async def Delete(self, request: storage_pb2.DeleteRequest,
+                     context: grpc.aio.ServicerContext) -> storage_pb2.WriteAck:
+        async def run() -> storage_pb2.WriteAck:
+            return _ack((await self._delete([request.key]))[0])
+        return await self._call(context, run)
 
-    def BatchPut(self, request: storage_pb2.BatchPutRequest, context: grpc.ServicerContext) -> storage_pb2.BatchWriteAck:
-        def run() -> storage_pb2.BatchWriteAck:
-            results = self.core.put_many([(item.key, item.value) for item in request.items])
+    async def BatchPut(self, request: storage_pb2.BatchPutRequest,
+                       context: grpc.aio.ServicerContext) -> storage_pb2.BatchWriteAck:
+        async def run() -> storage_pb2.BatchWriteAck:
+            results = await self._put([(item.key, item.value) for item in request.items])
             return storage_pb2.BatchWriteAck(acks=[_ack(r) for r in results])
-        return self._call(context, run)
+        return await self._call(context, run)
 
-    def BatchGet(self, request: storage_pb2.BatchGetRequest, context: grpc.ServicerContext) -> storage_pb2.BatchGetReply:
-        def run() -> storage_pb2.BatchGetReply:
-            values = self.core.get_many(list(request.keys))
+    async def BatchGet(self, request: storage_pb2.BatchGetRequest,
+                       context: grpc.aio.ServicerContext) -> storage_pb2.BatchGetReply:
+        async def run() -> storage_pb2.BatchGetReply:
+            values = await self._read(self.core.get_many, list(request.keys))
             return storage_pb2.BatchGetReply(items=[
                 storage_pb2.GetReply(found=v is not None, value=v or b"") for v in values])
-        return self._call(context, run)
+        return await self._call(context, run)
 
-    def BatchDelete(self, request: storage_pb2.BatchDeleteRequest,
-                    context: grpc.ServicerContext) -> storage_pb2.BatchWriteAck:
-        def run() -> storage_pb2.BatchWriteAck:
-            results = self.core.delete_many(list(request.keys))
+    async def BatchDelete(self, request: storage_pb2.BatchDeleteRequest,
+                          context: grpc.aio.ServicerContext) -> storage_pb2.BatchWriteAck:
+        async def run() -> storage_pb2.BatchWriteAck:
+            results = await self._delete(list(request.keys))
             return storage_pb2.BatchWriteAck(acks=[_ack(r) for r in results])
-        return self._call(context, run)
+        return await self._call(context, run)
 
-    def Stats(self, request: storage_pb2.NodeStatsRequest, context: grpc.ServicerContext) -> storage_pb2.NodeStatsReply:
-        return self._call(context, lambda: storage_pb2.NodeStatsReply(
-            node_id=self.core.node_id, stats=self.core.stats_proto()))
+    async def Stats(self, request: storage_pb2.NodeStatsRequest,
+                    context: grpc.aio.ServicerContext) -> storage_pb2.NodeStatsReply:
+        async def run() -> storage_pb2.NodeStatsReply:
+            stats = await self._read(self.core.stats_proto)
+            return storage_pb2.NodeStatsReply(node_id=self.core.node_id, stats=stats)
+        return await self._call(context, run)
 
-    def ScanKeys(self, request: storage_pb2.ScanKeysRequest, context: grpc.ServicerContext) -> storage_pb2.ScanKeysReply:
-        def run() -> storage_pb2.ScanKeysReply:
+    async def ScanKeys(self, request: storage_pb2.ScanKeysRequest,
+                       context: grpc.aio.ServicerContext) -> storage_pb2.ScanKeysReply:
+        async def run() -> storage_pb2.ScanKeysReply:
             limit = request.limit or SCAN_DEFAULT
             if limit > SCAN_MAX:
                 raise InvalidInput(f"scan limit {limit} is above the maximum of {SCAN_MAX} keys per call")
-            keys = self.core.scan_keys(request.after if request.after else None, limit + 1)
+            keys = await self._read(self.core.scan_keys, request.after if request.after else None, limit + 1)
             done = len(keys) <= limit
             return storage_pb2.ScanKeysReply(keys=keys[:limit], done=done)
-        return self._call(context, run)
+        return await self._call(context, run)

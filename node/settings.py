@@ -42,7 +42,8 @@ class NodeSettings:
     reconnect_max_ms: int = setting(5000, "Largest reconnect delay to a coordinator (ms).")
     log_level: str = setting("info", "Log level: debug, info, warning, error.")
     log_format: str = setting("json", "Log format: 'json' (one object per line) or 'text'.")
-    grpc_workers: int = setting(16, "Threads serving gRPC requests.")
+    read_threads: int = setting(4, "Threads serving reads, key scans and stats from the store (gRPC itself runs "
+                                   "on one event loop; writes commit on one writer thread).")
     tls_cert: Path | None = setting(None, "PEM certificate of this node (TLS server; client certificate on sync "
                                           "streams, whose common name must equal the node id under mutual TLS).")
     tls_key: Path | None = setting(None, "PEM private key of tls-cert.")
@@ -79,7 +80,7 @@ class NodeSettings:
         if not 0 <= self.metrics_port <= 65535:
             raise ConfigError(f"setting 'metrics-port': must be in 0..65535, got {self.metrics_port}")
         positive = ("push_interval_ms", "push_threshold", "heartbeat_ms", "max_key_bytes", "max_value_bytes",
-                    "max_batch", "scan_batch", "history_limit", "reconnect_min_ms", "reconnect_max_ms", "grpc_workers")
+                    "max_batch", "scan_batch", "history_limit", "reconnect_min_ms", "reconnect_max_ms", "read_threads")
         for name in positive:
             if getattr(self, name) < 1:
                 raise ConfigError(f"setting '{name.replace('_', '-')}': must be at least 1, got {getattr(self, name)}")

@@ -1,13 +1,14 @@
-"""One long-lived FilterSync.Stream per coordinator: the thin I/O driver around the node's NodeSync.
+"""One long-lived FilterSync.Stream per coordinator: the thin asyncio driver around the node's NodeSync.
 
-Each coordinator gets its own thread, channel, outbound queue and backoff, so a slow or dead
-coordinator never holds back another, and writes never wait on any of them. The driver feeds
-NodeSync its inputs (stream opened, each coordinator message, heartbeat and retransmit
-ticks, stream closed) through `NodeCore.sync_step`, which holds the node lock and then
-carries out NodeSync's Ready; this stream's messages land in its outbound queue (its
-`Outbox`). The queue is bounded in effect: NodeSync is given a send budget for this stream
-only while fewer than `MAX_QUEUED` messages wait to be sent; it bounds the history it keeps
-for a lagging coordinator and switches it to a snapshot beyond that.
+Each coordinator gets its own task, grpc.aio channel, outbox and backoff, so a slow or dead
+coordinator never holds back another, and writes never wait on any of them. The stream runs
+in the shared pump (shardsieve/stream_pump.py). The driver feeds NodeSync its inputs (stream
+opened, each coordinator message, heartbeat and retransmit ticks, stream closed) through
+`NodeCore.sync_step` in a worker thread (`executor`: the node lock may be held by a commit's
+fsync, which the event loop must never wait for); NodeSync's Ready puts this stream's messages
+in its outbox. The outbox is bounded in effect: NodeSync is given a send budget for this
+stream only while fewer than `MAX_QUEUED` messages wait to be written; it bounds the history
+it keeps for a lagging coordinator and switches it to a snapshot beyond that.
 
 Reconnects use jittered exponential backoff (after the n-th failure in a row sleep
 uniform(min/2, min(max, min*2^n)): "full jitter" of AWS Architecture Blog, "Exponential
@@ -17,16 +18,17 @@ stream that worked (an ack arrived).
 
 from __future__ import annotations
 
+import asyncio
 import logging
-import queue
 import random
-import threading
 import time
-from typing import Any, Callable, Iterator, Sequence
+from concurrent.futures import Executor
+from typing import Any, Callable, Sequence
 
 import grpc
 
-from shardsieve.security import make_channel
+from shardsieve.security import make_aio_channel
+from shardsieve.stream_pump import Outbox, StreamEnd, pump
 from shardsieve.sync.errors import SyncError
 from shardsieve.sync.node_side import SEND_BUDGET_BYTES
 from shardsieve.v1 import sync_pb2, sync_pb2_grpc
@@ -34,21 +36,26 @@ from shardsieve.v1 import sync_pb2, sync_pb2_grpc
 log = logging.getLogger("shardsieve.node.sync")
 
 MAX_QUEUED = 64
-_CLOSE = object()
 
 
-class _QueueOutbox:
-    """NodeCore's Outbox for one stream: the queue the gRPC request iterator reads."""
+def backoff_delay(failures: int, lo: float, hi: float, rng: random.Random) -> float:
+    """The wait before the next attempt after `failures` failed streams in a row (module docstring)."""
+    ceiling = min(hi, lo * (2 ** min(failures, 20)))
+    return rng.uniform(lo / 2, ceiling)
 
-    def __init__(self, q: queue.Queue[Any]) -> None:
-        self.queue = q
+
+class StreamOutbox:
+    """NodeCore's Outbox for one stream (node/core.py): NodeSync's send budget is open while the
+    pump's outbox has room; sends may come from any thread."""
+
+    def __init__(self, outbox: Outbox[sync_pb2.NodeMessage]) -> None:
+        self.outbox = outbox
 
     def room(self) -> int:
-        return SEND_BUDGET_BYTES if self.queue.qsize() < MAX_QUEUED else 0
+        return SEND_BUDGET_BYTES if self.outbox.room() > 0 else 0
 
     def send(self, messages: Sequence[sync_pb2.NodeMessage]) -> None:
-        for msg in messages:
-            self.queue.put(msg)
+        self.outbox.send(messages)
 
 
 class SyncDriver:
@@ -58,7 +65,7 @@ class SyncDriver:
                  backoff_min: float = 0.1, backoff_max: float = 5.0, rng: random.Random | None = None,
                  on_sent: Callable[[sync_pb2.NodeMessage, float], None] | None = None,
                  credentials: grpc.ChannelCredentials | None = None,
-                 metadata: tuple[tuple[str, str], ...] = ()) -> None:
+                 metadata: tuple[tuple[str, str], ...] = (), executor: Executor | None = None) -> None:
         self.core = core
         self.credentials = credentials   # TLS (None: plaintext) and the sync token: shardsieve/security.py
         self.metadata = metadata
@@ -70,9 +77,9 @@ class SyncDriver:
         self.backoff_max = backoff_max
         self.rng = rng or random.Random()
         self.on_sent = on_sent          # timestamp hook: (message, time.monotonic() when handed to gRPC)
-        self._stop = threading.Event()
-        self._wake = threading.Event()
-        self._thread = threading.Thread(target=self._run, name=f"sync-{address}", daemon=True)
+        self.executor = executor        # where NodeSync steps run (None: the loop's default executor)
+        self._stopping: asyncio.Event | None = None
+        self._task: asyncio.Task[None] | None = None
         self.connected = False
         self.connects = 0
         self.acks = 0
@@ -80,69 +87,101 @@ class SyncDriver:
 
     # ------------------------------------------------------------------ lifecycle
     def start(self) -> None:
-        self._thread.start()
+        """Start the driver's task on the running loop."""
+        self._stopping = asyncio.Event()
+        self._task = asyncio.create_task(self._run(), name=f"sync-{self.address}")
 
-    def stop(self) -> None:
-        self._stop.set()
-        self._wake.set()
-
-    def join(self, timeout: float | None = None) -> None:
-        self._thread.join(timeout)
+    async def stop(self, timeout: float = 5.0) -> None:
+        """End the stream (the coordinator sees it close) and the reconnect loop."""
+        if self._stopping is not None:
+            self._stopping.set()
+        if self._task is not None:
+            self._task.cancel()
+            await asyncio.wait([self._task], timeout=timeout)
 
     def status(self) -> dict[str, Any]:
         return {"address": self.address, "connected": self.connected, "connects": self.connects,
                 "acks": self.acks, "lag": self.core.peer_lag(self.peer), "last_error": self.last_error}
 
     # ------------------------------------------------------------------ loop
-    def _run(self) -> None:
+    async def _run(self) -> None:
         failures = 0
-        while not self._stop.is_set():
+        while not self._stopped():
             try:
-                worked = self._one_stream()
+                worked = await self._one_stream()
+            except asyncio.CancelledError:
+                raise
             except Exception as exc:  # noqa: BLE001 - a driver bug must not end syncing for good
                 self.last_error = f"{type(exc).__name__}: {exc}"
                 log.exception("sync driver error", extra={"coordinator": self.address})
                 worked = False
-            if self._stop.is_set():
+            if self._stopped():
                 break
             failures = 0 if worked else failures + 1
-            ceiling = min(self.backoff_max, self.backoff_min * (2 ** min(failures, 20)))
-            delay = self.rng.uniform(self.backoff_min / 2, ceiling)
+            delay = backoff_delay(failures, self.backoff_min, self.backoff_max, self.rng)
             log.info("sync stream down, reconnecting", extra={"coordinator": self.address,
                                                               "delay_s": round(delay, 3),
                                                               "error": self.last_error})
-            self._stop.wait(delay)
+            if await self._pause(delay):
+                break
 
-    def _one_stream(self) -> bool:
+    def _stopped(self) -> bool:
+        return self._stopping is not None and self._stopping.is_set()
+
+    async def _pause(self, delay: float) -> bool:
+        """Wait `delay` seconds or until stop(); True when stopping."""
+        assert self._stopping is not None
+        try:
+            await asyncio.wait_for(self._stopping.wait(), delay)
+        except asyncio.TimeoutError:
+            pass
+        return self._stopped()
+
+    async def _one_stream(self) -> bool:
         """Open, run and close one stream; True if the coordinator acknowledged something on it."""
-        outq: queue.Queue[Any] = queue.Queue()
-        got_ack = threading.Event()
-        reader_done = threading.Event()
-        channel = make_channel(self.address, self.credentials, options=[
+        loop = asyncio.get_running_loop()
+        outbox: Outbox[sync_pb2.NodeMessage] = Outbox(MAX_QUEUED)
+        acked = [False]
+        channel = make_aio_channel(self.address, self.credentials, options=[
             ("grpc.max_send_message_length", 64 << 20), ("grpc.max_receive_message_length", 64 << 20),
             ("grpc.keepalive_time_ms", 10_000), ("grpc.keepalive_timeout_ms", 5_000)])
-        call = None
+        call: Any = None
+        ticker: asyncio.Task[None] | None = None
+        closing: list[asyncio.Future[None]] = []
         opened = False
         try:
-            self.core.open_stream(self.peer, _QueueOutbox(outq), time.monotonic())   # queues the Hello
+            # queues the Hello in the outbox
+            await loop.run_in_executor(self.executor, self.core.open_stream, self.peer, StreamOutbox(outbox),
+                                       time.monotonic())
             opened = True
-            stub = sync_pb2_grpc.FilterSyncStub(channel)
-            call = stub.Stream(self._requests(outq), metadata=self.metadata)
+            call = sync_pb2_grpc.FilterSyncStub(channel).Stream(metadata=self.metadata)
             self.connects += 1
-            reader = threading.Thread(target=self._read, args=(call, got_ack, reader_done),
-                                      name=f"sync-read-{self.address}", daemon=True)
-            reader.start()
-            last_heartbeat = 0.0
-            while not self._stop.is_set() and not reader_done.is_set():
-                self._wake.wait(self.push_interval)
-                self._wake.clear()
-                now = time.monotonic()
-                # a tick: retransmit timers run, and the queue may have room again
-                with self.core.sync_step(now) as sync:
-                    if now - last_heartbeat >= self.heartbeat_interval:
-                        sync.heartbeat(self.peer, self.core.counters())
-                        last_heartbeat = now
-            return got_ack.is_set()
+            ticker = asyncio.create_task(self._tick(), name=f"sync-tick-{self.address}")
+
+            async def handle(reply: sync_pb2.CoordinatorMessage) -> None:
+                self.connected = True
+                if reply.WhichOneof("body") == "ack":
+                    self.acks += 1
+                    acked[0] = True
+                try:
+                    await loop.run_in_executor(self.executor, self._receive, reply)
+                except SyncError as exc:
+                    log.warning("coordinator message refused, resetting stream",
+                                extra={"coordinator": self.address, "error": f"{type(exc).__name__}: {exc}"})
+                    raise
+
+            async def write(msg: sync_pb2.NodeMessage) -> None:
+                if self.on_sent is not None:
+                    self.on_sent(msg, time.monotonic())
+                await call.write(msg)
+
+            def on_close(_end: StreamEnd) -> None:   # once; the node lock is taken off the loop
+                closing.append(loop.run_in_executor(self.executor, self.core.close_stream, self.peer))
+
+            end = await pump(read=call.read, write=write, handle=handle, outbox=outbox, on_close=on_close,
+                             name=f"sync-{self.address}")
+            self._note_end(end)
+            return acked[0]
         except SyncError as exc:
             self.last_error = f"{type(exc).__name__}: {exc}"
             log.warning("sync protocol error, resetting stream", extra={"coordinator": self.address,
@@ -150,45 +189,48 @@ class SyncDriver:
             return False
         finally:
             self.connected = False
-            outq.put(_CLOSE)
+            if ticker is not None:
+                ticker.cancel()
             if call is not None:
                 call.cancel()
-            if opened:
-                self.core.close_stream(self.peer)
-            channel.close()
+            if not closing and opened:      # the pump never ran: close what open_stream opened
+                closing.append(loop.run_in_executor(self.executor, self.core.close_stream, self.peer))
+            if closing:
+                await asyncio.shield(closing[0])
+            await channel.close()
 
-    def _requests(self, outq: queue.Queue[Any]) -> Iterator[sync_pb2.NodeMessage]:
+    def _note_end(self, end: StreamEnd) -> None:
+        if end.ok or end.code == grpc.StatusCode.CANCELLED and self._stopped():
+            return
+        self.last_error = end.describe()
+        if end.code == grpc.StatusCode.ABORTED:
+            # e.g. another stream for this node id took over at the coordinator; the detail names its peer
+            log.warning("the coordinator ended this sync stream", extra={"coordinator": self.address,
+                                                                         "detail": end.details})
+
+    def _receive(self, reply: sync_pb2.CoordinatorMessage) -> None:
+        now = time.monotonic()
+        with self.core.sync_step(now) as sync:
+            sync.receive(self.peer, reply, now)
+
+    async def _tick(self) -> None:
+        """Every push interval: retransmit timers run and the outbox may have room again; a
+        heartbeat with the node's stats every heartbeat interval."""
+        loop = asyncio.get_running_loop()
+        last_heartbeat = 0.0
         while True:
-            msg = outq.get()
-            if msg is _CLOSE:
-                return
-            if self.on_sent is not None:
-                self.on_sent(msg, time.monotonic())
-            yield msg
+            await asyncio.sleep(self.push_interval)
+            now = time.monotonic()
+            beat = now - last_heartbeat >= self.heartbeat_interval
+            if beat:
+                last_heartbeat = now
+            try:
+                await loop.run_in_executor(self.executor, self._step, now, beat)
+            except Exception as exc:  # noqa: BLE001 - logged; the stream's own errors end it elsewhere
+                log.warning("sync tick failed", extra={"coordinator": self.address,
+                                                       "error": f"{type(exc).__name__}: {exc}"})
 
-    def _read(self, call: Any, got_ack: threading.Event, done: threading.Event) -> None:
-        try:
-            for reply in call:
-                self.connected = True
-                if reply.WhichOneof("body") == "ack":
-                    self.acks += 1
-                    got_ack.set()
-                now = time.monotonic()
-                try:
-                    with self.core.sync_step(now) as sync:
-                        sync.receive(self.peer, reply, now)
-                except SyncError as exc:
-                    self.last_error = f"{type(exc).__name__}: {exc}"
-                    log.warning("coordinator message refused, resetting stream",
-                                extra={"coordinator": self.address, "error": self.last_error})
-                    return
-        except grpc.RpcError as exc:
-            code = exc.code() if hasattr(exc, "code") else None
-            if code != grpc.StatusCode.CANCELLED:
-                self.last_error = f"{code.name if code else 'error'}: {exc.details() if hasattr(exc, 'details') else exc}"
-        except Exception as exc:  # noqa: BLE001 - end this stream, keep the driver alive
-            self.last_error = f"{type(exc).__name__}: {exc}"
-            log.exception("sync stream reader failed", extra={"coordinator": self.address})
-        finally:
-            done.set()
-            self._wake.set()
+    def _step(self, now: float, heartbeat: bool) -> None:
+        with self.core.sync_step(now) as sync:
+            if heartbeat:
+                sync.heartbeat(self.peer, self.core.counters())

@@ -4,16 +4,20 @@ Why one module: the two daemons and the clients must agree on how TLS files are 
 plaintext listener is allowed (only when explicitly configured, always with a warning), how a
 bearer token is compared (constant time, never logged) and who the peer of a sync stream is.
 The daemons call into it with one or two lines; the decisions (`NodeAuthorizer`,
-`StreamLimiter`, `tokens_equal`) are plain objects and functions, testable without sockets.
+`StreamAdmission`, `tokens_equal`) are plain objects and functions, testable without sockets.
+Both daemons serve on grpc.aio, so the interceptors here are asyncio interceptors
+(`grpc.aio.ServerInterceptor`, gRPC Python's asyncio API docs).
 """
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import hmac
+import inspect
 import ipaddress
 import logging
-import threading
+import socket
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterable, Mapping, Sequence
@@ -30,6 +34,17 @@ MAX_TOKEN_BYTES = 4096
 
 class SecurityError(RuntimeError):
     """A listener or channel cannot be set up as configured; the message says what to change."""
+
+
+class AddressInUse(RuntimeError):
+    """The listen address cannot be bound: another process listens there, or it is not an
+    address of this host. The daemons exit with their own code for it (shardsieve/daemon_runner.py)."""
+
+
+# A listen address belongs to one process: without this gRPC sets SO_REUSEPORT, so a second
+# daemon started on a taken port would also log "serving" and the kernel would split the
+# connections between the two (socket(7), SO_REUSEPORT). Both daemons pass it to their server.
+EXCLUSIVE_PORT_OPTION = ("grpc.so_reuseport", 0)
 
 
 # --------------------------------------------------------------------------- TLS files
@@ -100,27 +115,65 @@ def channel_credentials(ca: Path | None, cert: Path | None = None,
         certificate_chain=cert.read_bytes() if cert is not None and key is not None else None)
 
 
-def open_port(server: grpc.Server, address: str, tls: TlsFiles, allow_plaintext: bool,
+def open_port(server: grpc.aio.Server, address: str, tls: TlsFiles, allow_plaintext: bool,
               logger: logging.Logger, what: str) -> int:
     """Bind `address` with TLS when configured; plaintext only when allowed, with a warning.
 
-    Returns the bound port (0: not bound). Raises SecurityError when neither is configured.
+    Returns the bound port. Raises SecurityError when neither is configured, AddressInUse when
+    the address cannot be bound (gRPC raises RuntimeError for that: grpc.aio.Server docs).
     """
-    if tls.enabled:
-        port = server.add_secure_port(address, tls.server_credentials())
-        logger.info("listening with TLS", extra={"service": what, "address": address,
-                                                 "client_certificates": "required" if tls.client_auth else "not asked"})
-        return port
-    if not allow_plaintext:
+    if not tls.enabled and not allow_plaintext:
         raise SecurityError(
             f"{what} would listen in plaintext on {address}: configure tls-cert and tls-key (development "
             "files: `shardsieve certs --out DIR`), or set allow-plaintext for a trusted loopback setup")
-    port = server.add_insecure_port(address)
+    problem = bind_problem(address)
+    if problem is not None:       # said here in one line; gRPC would also log its own error first
+        raise AddressInUse(f"cannot listen on {address}: {problem} (setting listen)")
+    try:
+        port = (server.add_secure_port(address, tls.server_credentials()) if tls.enabled
+                else server.add_insecure_port(address))
+    except RuntimeError:
+        raise AddressInUse(f"cannot listen on {address}: another process listens there, or it is not an address "
+                           "of this host (setting listen)") from None
+    if tls.enabled:
+        logger.info("listening with TLS", extra={"service": what, "address": address,
+                                                 "client_certificates": "required" if tls.client_auth else "not asked"})
+        return port
     where = "loopback" if is_loopback(address) else "a NON-LOOPBACK address"
     logger.warning(f"listening in PLAINTEXT on {where} (allow-plaintext is set): anyone who can reach this "
                    "address can read and forge its traffic; use TLS outside a trusted loopback setup",
                    extra={"service": what, "address": address})
     return port
+
+
+def bind_problem(address: str) -> str | None:
+    """Why no socket can listen on HOST:PORT now (None: one can, or the name does not resolve and
+    gRPC will say so). Probes every address the host resolves to, with SO_REUSEADDR as gRPC sets
+    it, so a port left in TIME_WAIT by a previous run is not taken for a live listener (socket(7))."""
+    host, _, port = address.rpartition(":")
+    host = host.strip("[]")
+    try:
+        infos = socket.getaddrinfo(host or None, int(port), type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)
+    except (OSError, ValueError):
+        return None
+    errors: list[OSError] = []
+    for family, kind, proto, _, sockaddr in infos:
+        with socket.socket(family, kind, proto) as probe:
+            probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+            try:
+                probe.bind(sockaddr)
+                probe.listen(1)
+                return None
+            except OSError as exc:
+                errors.append(exc)
+    if not errors:
+        return None
+    first = errors[0]
+    if first.errno == errno.EADDRINUSE:
+        return "another process listens there"
+    if first.errno == errno.EADDRNOTAVAIL:
+        return f"{host} is not an address of this host"
+    return first.strerror or str(first)
 
 
 def make_channel(address: str, credentials: grpc.ChannelCredentials | None,
@@ -129,6 +182,14 @@ def make_channel(address: str, credentials: grpc.ChannelCredentials | None,
     if credentials is None:
         return grpc.insecure_channel(address, options=list(options))
     return grpc.secure_channel(address, credentials, options=list(options))
+
+
+def make_aio_channel(address: str, credentials: grpc.ChannelCredentials | None,
+                     options: Sequence[tuple[str, Any]] = ()) -> grpc.aio.Channel:
+    """make_channel for the asyncio API (create and close it on the same event loop)."""
+    if credentials is None:
+        return grpc.aio.insecure_channel(address, options=list(options))
+    return grpc.aio.secure_channel(address, credentials, options=list(options))
 
 
 # --------------------------------------------------------------------------- tokens
@@ -225,6 +286,12 @@ def peer_host(peer: str) -> str:
     return peer
 
 
+def peer_address(peer: str) -> str:
+    """HOST:PORT of a gRPC peer string ('ipv4:10.0.0.5:4711' -> '10.0.0.5:4711'), for logs."""
+    kind, sep, rest = peer.partition(":")
+    return rest if sep and kind in ("ipv4", "ipv6") else peer
+
+
 def is_loopback(address: str) -> bool:
     """True when HOST of HOST:PORT is a loopback address or 'localhost'."""
     host = address.rpartition(":")[0].strip("[]")
@@ -255,8 +322,8 @@ def _names(auth: Mapping[str, Sequence[bytes]], key: str) -> list[str]:
     return [v.decode("utf-8", "replace") if isinstance(v, bytes) else str(v) for v in auth.get(key, ())]
 
 
-def peer_identity(context: grpc.ServicerContext) -> PeerIdentity:
-    """Read the identity of a call's peer from its gRPC context (call from the handler thread)."""
+def peer_identity(context: grpc.aio.ServicerContext) -> PeerIdentity:
+    """Read the identity of a call's peer from its gRPC context (call from the handler)."""
     auth = context.auth_context() or {}
     names = _names(auth, "x509_common_name")
     return PeerIdentity(host=peer_host(context.peer() or ""), cert_names=tuple(names),
@@ -316,41 +383,74 @@ class NodeAuthorizer:
         return "host:" + who.host
 
 
-class StreamLimiter:
-    """At most `limit` open streams per peer host (thread-safe)."""
+class StreamAdmission:
+    """Which sync streams may open (no I/O; the coordinator's event loop is its only caller).
 
-    def __init__(self, limit: int) -> None:
-        self.limit = limit
-        self._open: dict[str, int] = {}
-        self._lock = threading.Lock()
+    Three caps, each refused stream told which one and its setting: all open streams
+    (`max_streams`), streams that have not completed their Hello (`max_pending`: a peer that
+    opens streams and never speaks holds no more than that), and open streams per peer host
+    (`max_per_peer`). A stream counts as pending from `admit` until `hello_done` or `release`.
+    """
 
-    def acquire(self, host: str) -> bool:
-        with self._lock:
-            n = self._open.get(host, 0)
-            if n >= self.limit:
-                return False
-            self._open[host] = n + 1
-            return True
+    def __init__(self, *, max_streams: int = 1 << 30, max_pending: int = 1 << 30, max_per_peer: int = 1 << 30) -> None:
+        self.max_streams = max_streams
+        self.max_pending = max_pending
+        self.max_per_peer = max_per_peer
+        self.open = 0
+        self.pending = 0
+        self.refused: dict[str, int] = {}     # setting name -> streams refused by it
+        self.hello_timeouts = 0               # streams closed for want of a Hello in time
+        self._per_host: dict[str, int] = {}
 
-    def release(self, host: str) -> None:
-        with self._lock:
-            n = self._open.get(host, 0) - 1
-            if n <= 0:
-                self._open.pop(host, None)
-            else:
-                self._open[host] = n
+    def admit(self, host: str) -> str | None:
+        """Count a new stream from `host` as open and pending, or say why it is refused."""
+        if self.open >= self.max_streams:
+            return self._refuse("max-sync-streams", f"this coordinator has {self.open} sync streams open, its "
+                                                    "limit (setting max-sync-streams)")
+        if self.pending >= self.max_pending:
+            return self._refuse("max-pending-streams", f"{self.pending} sync streams have not sent their Hello "
+                                                       "yet, the limit (setting max-pending-streams); retry shortly")
+        if self._per_host.get(host, 0) >= self.max_per_peer:
+            return self._refuse("max-streams-per-peer", f"{host} already has {self.max_per_peer} sync streams "
+                                                        "open here (setting max-streams-per-peer)")
+        self.open += 1
+        self.pending += 1
+        self._per_host[host] = self._per_host.get(host, 0) + 1
+        return None
+
+    def _refuse(self, setting: str, reason: str) -> str:
+        self.refused[setting] = self.refused.get(setting, 0) + 1
+        return reason
+
+    def hello_done(self) -> None:
+        """An admitted stream completed its Hello (and authentication): no longer pending."""
+        self.pending -= 1
+
+    def hello_timed_out(self) -> None:
+        """An admitted stream is being closed: no Hello in time (it is released when it ends)."""
+        self.hello_timeouts += 1
+
+    def release(self, host: str, pending: bool) -> None:
+        """An admitted stream ended (`pending`: before completing its Hello)."""
+        self.open -= 1
+        if pending:
+            self.pending -= 1
+        n = self._per_host.get(host, 0) - 1
+        if n <= 0:
+            self._per_host.pop(host, None)
+        else:
+            self._per_host[host] = n
 
     def count(self, host: str) -> int:
-        with self._lock:
-            return self._open.get(host, 0)
+        return self._per_host.get(host, 0)
 
 
 # --------------------------------------------------------------------------- token interceptor
 
 
 def _denying_handler(handler: grpc.RpcMethodHandler, code: grpc.StatusCode, message: str) -> grpc.RpcMethodHandler:
-    def deny(request: Any, context: grpc.ServicerContext) -> Any:
-        context.abort(code, message)
+    async def deny(request: Any, context: grpc.aio.ServicerContext) -> Any:
+        await context.abort(code, message)
 
     kw = {"request_deserializer": handler.request_deserializer, "response_serializer": handler.response_serializer}
     if handler.unary_unary is not None:
@@ -362,7 +462,7 @@ def _denying_handler(handler: grpc.RpcMethodHandler, code: grpc.StatusCode, mess
     return grpc.stream_stream_rpc_method_handler(deny, **kw)
 
 
-class TokenGuard(grpc.ServerInterceptor):
+class TokenGuard(grpc.aio.ServerInterceptor):
     """Requires a bearer token on the methods it names; others pass untouched.
 
     `rules` maps a full method name ("/shardsieve.v1.Router/Write") or a service prefix
@@ -381,7 +481,7 @@ class TokenGuard(grpc.ServerInterceptor):
 
     @property
     def active(self) -> bool:
-        """False when no method needs a token (the daemons then leave the interceptor out)."""
+        """False when no method needs a token."""
         return bool(self._rules)
 
     def required(self, method: str) -> str:
@@ -391,8 +491,8 @@ class TokenGuard(grpc.ServerInterceptor):
             token = self._rules.get(service, "")
         return token
 
-    def intercept_service(self, continuation: Callable[[Any], Any], handler_call_details: Any) -> Any:
-        handler = continuation(handler_call_details)
+    async def intercept_service(self, continuation: Callable[[Any], Any], handler_call_details: Any) -> Any:
+        handler = await continuation(handler_call_details)
         method = handler_call_details.method
         expected = self.required(method)
         if not expected or handler is None:
@@ -429,7 +529,7 @@ def _safe(deserializer: Callable[[bytes], Any] | None) -> Callable[[bytes], Any]
     return decode
 
 
-class DecodeGuard(grpc.ServerInterceptor):
+class DecodeGuard(grpc.aio.ServerInterceptor):
     """Undecodable request bytes end a unary call INVALID_ARGUMENT (gRPC's own answer would be
     INTERNAL, which reads like a server bug); streaming handlers receive an `Undecodable`
     in place of the message and refuse it themselves."""
@@ -437,8 +537,8 @@ class DecodeGuard(grpc.ServerInterceptor):
     def __init__(self) -> None:
         self._wrapped: dict[int, tuple[Any, Any]] = {}     # id(handler) -> (handler, wrapped): handlers are static
 
-    def intercept_service(self, continuation: Callable[[Any], Any], handler_call_details: Any) -> Any:
-        handler = continuation(handler_call_details)
+    async def intercept_service(self, continuation: Callable[[Any], Any], handler_call_details: Any) -> Any:
+        handler = await continuation(handler_call_details)
         if handler is None or handler.request_deserializer is None:
             return handler
         cached = self._wrapped.get(id(handler))
@@ -451,12 +551,26 @@ class DecodeGuard(grpc.ServerInterceptor):
     @staticmethod
     def _wrap(handler: grpc.RpcMethodHandler, method: str) -> grpc.RpcMethodHandler:
 
-        def unary(behavior: Callable[[Any, grpc.ServicerContext], Any]) -> Callable[[Any, grpc.ServicerContext], Any]:
-            def run(request: Any, context: grpc.ServicerContext) -> Any:
-                if isinstance(request, Undecodable):
-                    context.abort(grpc.StatusCode.INVALID_ARGUMENT,
-                                  f"the request to {method} is not a valid message ({request.error[:200]})")
-                return behavior(request, context)
+        async def refuse_undecodable(request: Any, context: grpc.aio.ServicerContext) -> None:
+            if isinstance(request, Undecodable):
+                await context.abort(grpc.StatusCode.INVALID_ARGUMENT,
+                                    f"the request to {method} is not a valid message ({request.error[:200]})")
+
+        def unary(behavior: Callable[..., Any]) -> Callable[..., Any]:
+            async def run(request: Any, context: grpc.aio.ServicerContext) -> Any:
+                await refuse_undecodable(request, context)
+                return await behavior(request, context)
+            return run
+
+        def unary_stream(behavior: Callable[..., Any]) -> Callable[..., Any]:
+            async def run(request: Any, context: grpc.aio.ServicerContext) -> None:
+                await refuse_undecodable(request, context)
+                replies = behavior(request, context)
+                if inspect.isasyncgen(replies):      # an async generator handler: write what it yields
+                    async for reply in replies:
+                        await context.write(reply)
+                else:                                # a coroutine handler writes with context.write itself
+                    await replies
             return run
 
         kw = {"request_deserializer": _safe(handler.request_deserializer),
@@ -464,7 +578,7 @@ class DecodeGuard(grpc.ServerInterceptor):
         if handler.unary_unary is not None:
             return grpc.unary_unary_rpc_method_handler(unary(handler.unary_unary), **kw)
         if handler.unary_stream is not None:
-            return grpc.unary_stream_rpc_method_handler(unary(handler.unary_stream), **kw)
+            return grpc.unary_stream_rpc_method_handler(unary_stream(handler.unary_stream), **kw)
         if handler.stream_unary is not None:
             return grpc.stream_unary_rpc_method_handler(handler.stream_unary, **kw)
         return grpc.stream_stream_rpc_method_handler(handler.stream_stream, **kw)

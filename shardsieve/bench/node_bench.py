@@ -62,6 +62,7 @@ def measure(puts: int = 2000, clients: int = 8, sync_level: str = "full", push_i
     import grpc
 
     from shardsieve.node.core import NodeCore
+    from shardsieve.node.pusher import ThreadedPusher
     from shardsieve.node.store import SqliteStore
     from shardsieve.testing.procs import free_port, shardsieve_argv, start_daemon
     from shardsieve.testing.sync_peer import TestCoordinator
@@ -77,7 +78,7 @@ def measure(puts: int = 2000, clients: int = 8, sync_level: str = "full", push_i
             "node", "--id", "bench-node", "--listen", address, "--data", str(Path(tmp) / "grpc-node"),
             "--coordinator", coord.address, "--capacity", str(capacity), "--fpr", "0.01",
             "--push-interval-ms", str(push_interval_ms), "--sync-level", sync_level,
-            "--grpc-workers", str(max(16, 2 * clients)), "--log-format", "text"),
+            "--log-format", "text"),
             Path(tmp) / "node.log", health_address=address)
         # The baseline: the same node code (NodeCore: store commit + filter + stamp, group commit,
         # pusher running) on its own SQLite store with the same settings, called in-process.
@@ -85,7 +86,7 @@ def measure(puts: int = 2000, clients: int = 8, sync_level: str = "full", push_i
         core = NodeCore("bench-direct", direct_store, capacity=capacity, target_fpr=0.01,
                         push_interval=push_interval_ms / 1000.0)
         core.load()
-        core.start_pusher()
+        pusher = ThreadedPusher(core, push_interval_ms / 1000.0).start()
         try:
             per_client = max(1, puts // (2 * clients))
             # --- throughput, alternating rounds ---------------------------------------------
@@ -137,7 +138,7 @@ def measure(puts: int = 2000, clients: int = 8, sync_level: str = "full", push_i
                 lat = [max(0.0, arrived[(e, s)] - t) * 1000.0 for e, s, t in acks if (e, s) in arrived]
             missing = len(acks) - len(lat)
         finally:
-            core.stop_pusher()
+            pusher.stop()
             direct_store.close()
             proc.stop()
     arr = np.asarray(lat) if lat else np.asarray([float("nan")])

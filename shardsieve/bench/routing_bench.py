@@ -176,6 +176,7 @@ def measure_grpc(index: Any, keys: list[bytes], log: Callable[[str], None]) -> d
     from shardsieve.coordinator.probes import Prober
     from shardsieve.coordinator.router_service import Router, RouterService, add_router_service
     from shardsieve.coordinator.wiring import wire_state
+    from shardsieve.testing.event_loop import LoopThread
     from shardsieve.testing.replica_feed import NodeFeed
     from shardsieve.v1 import routing_pb2, routing_pb2_grpc
 
@@ -185,16 +186,24 @@ def measure_grpc(index: Any, keys: list[bytes], log: Callable[[str], None]) -> d
         column = np.packbits(index.column(nid), bitorder="little").tobytes()
         bloom = BloomFilter.from_bytes(index.geometry_of(nid), column)
         NodeFeed(state.shell, nid, bloom, address="127.0.0.1:1").connect(time.monotonic())
-    prober = Prober(2)
-    router = Router(state.candidates, state.shell, state.membership, state.hints, state.accounting, state.policy,
-                    prober)
-    service = RouterService(router)
-    server = grpc.server(futures.ThreadPoolExecutor(max_workers=8),
-                         options=[("grpc.max_receive_message_length", 64 << 20),
-                                  ("grpc.max_send_message_length", 64 << 20)])
-    add_router_service(service, server)
-    port = server.add_insecure_port("127.0.0.1:0")
-    server.start()
+    # The coordinator's transport: a grpc.aio server on one event loop (here on a thread of its own)
+    loop = LoopThread("bench-router")
+    work = futures.ThreadPoolExecutor(max_workers=4, thread_name_prefix="bench-work")
+    state.shell.executor = work
+
+    async def serve() -> tuple[Any, Any, Any, int]:
+        prober = Prober()
+        router = Router(state.candidates, state.shell, state.membership, state.hints, state.accounting,
+                        state.policy, prober)
+        service = RouterService(router)
+        server = grpc.aio.server(options=[("grpc.max_receive_message_length", 64 << 20),
+                                          ("grpc.max_send_message_length", 64 << 20)])
+        add_router_service(service, server)
+        port = server.add_insecure_port("127.0.0.1:0")
+        await server.start()
+        return prober, service, server, port
+
+    prober, service, server, port = loop.run(serve())
     out: dict[str, Any] = {}
     try:
         channel = grpc.insecure_channel(f"127.0.0.1:{port}", options=[("grpc.max_receive_message_length", 64 << 20)])
@@ -233,8 +242,10 @@ def measure_grpc(index: Any, keys: list[bytes], log: Callable[[str], None]) -> d
         log(f"  single-key Locate over gRPC: p50 {out['locate_p50_ms']:.3f} ms, p99 {out['locate_p99_ms']:.3f} ms")
         channel.close()
     finally:
-        server.stop(0)
-        prober.close()
+        loop.run(server.stop(0))
+        loop.run(prober.close())
+        loop.close()
+        work.shutdown()
     return out
 
 

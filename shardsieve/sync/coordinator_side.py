@@ -19,6 +19,13 @@ hands the events to its subscribers:
 `stream_id` is any hashable the driver picks per stream (unique for the process life).
 `now` is a float in seconds from a monotonic clock; the object only stores/compares it.
 
+Installing a complete snapshot is the one heavy step (decode the chunks, verify the checksum,
+install megabytes in the sink). With `CoordinatorSyncConfig.install_off_call` the call that
+completes a snapshot does not do it: its result carries a `SnapshotInstall`, the caller runs
+`run_install(job)` wherever it likes (a worker thread; it touches only the job and the sink)
+and then hands the job to `finish_install(job, now)` for the state commit, making no other
+call for that node in between (coordinator/sync_service.py).
+
 The replica bits live in a `ReplicaSink` (the routing index implements it). A delta is
 applied only when it moves the replica from exactly its sequence to the next and the checksum
 computed *before* touching the sink matches, so the sink only ever holds a state the node
@@ -226,6 +233,7 @@ class SyncResult:
 
     replies: tuple[sync_pb2.CoordinatorMessage, ...] = ()
     events: tuple[SyncEvent, ...] = ()
+    install: SnapshotInstall | None = None    # with install_off_call: a snapshot to install (module docstring)
 
 
 NOTHING = SyncResult()
@@ -234,14 +242,15 @@ NOTHING = SyncResult()
 class _Outcome:
     """Collects one call's replies and events."""
 
-    __slots__ = ("replies", "events")
+    __slots__ = ("replies", "events", "install")
 
     def __init__(self) -> None:
         self.replies: list[sync_pb2.CoordinatorMessage] = []
         self.events: list[SyncEvent] = []
+        self.install: SnapshotInstall | None = None
 
     def result(self) -> SyncResult:
-        return SyncResult(tuple(self.replies), tuple(self.events))
+        return SyncResult(tuple(self.replies), tuple(self.events), self.install)
 
 
 # --------------------------------------------------------------------------- settings and state
@@ -254,6 +263,7 @@ class CoordinatorSyncConfig:
     need_snapshot_retry_s: float = 2.0        # repeat an unanswered NeedSnapshot after this long
     max_snapshot_bytes: int | None = None     # refuse larger encoded snapshots (None: geometry bound)
     max_delta_positions: int | None = None    # refuse deltas with more positions (None: m)
+    install_off_call: bool = False            # hand complete snapshots out as SnapshotInstall jobs
 
     def __post_init__(self) -> None:
         if not self.need_snapshot_retry_s > 0:
@@ -305,6 +315,21 @@ class _Assembly:
     capacity: int
     assembler: SnapshotAssembler
     last_chunk_at: float
+
+
+@dataclass(eq=False)
+class SnapshotInstall:
+    """A complete snapshot of one node, to decode and install outside the call that completed
+    it (`run_install`), then to commit (`finish_install`)."""
+
+    node_id: str
+    assembly: _Assembly
+    bloom: BloomFilter | None = None    # set by run_install once decoded and verified
+    error: str = ""                     # set by run_install when the snapshot does not decode
+
+    @property
+    def total_bytes(self) -> int:
+        return self.assembly.assembler.total_bytes
 
 
 @dataclass(eq=False)
@@ -894,11 +919,45 @@ class CoordinatorSync:
             node.assembly = None
             node.last_snapshot_id = asm.snapshot_id
             return self._already_have(node, c, out)
+        if self.config.install_off_call:
+            out.install = SnapshotInstall(node.node_id, asm)
+            return None
         try:
             bloom = asm.assembler.finish()
         except SnapshotError as exc:
             return self._reject(node, c.snapshot_id, f"snapshot {c.snapshot_id}: {exc}", out)
         self.sink.install(node.node_id, bloom)
+        self._installed(node, asm, bloom, now, out)
+        return None
+
+    def run_install(self, job: SnapshotInstall) -> None:
+        """Decode a job's snapshot into a verified filter and install it in the sink. Touches only
+        the job and the sink, so it may run in a worker thread."""
+        try:
+            job.bloom = job.assembly.assembler.finish()
+        except SnapshotError as exc:
+            job.error = f"snapshot {job.assembly.snapshot_id}: {exc}"
+            return
+        self.sink.install(job.node_id, job.bloom)
+
+    def finish_install(self, job: SnapshotInstall, now: float) -> SyncResult:
+        """The state commit of a job `run_install` ran: the replica now is the snapshot (or the
+        snapshot is rejected, if it did not decode)."""
+        node = self._nodes.get(job.node_id)
+        if node is None:    # unlisted meanwhile: the sink must not keep what run_install put there
+            if job.bloom is not None:
+                self.sink.remove(job.node_id)
+            return NOTHING
+        out = _Outcome()
+        if job.bloom is None:
+            self._reject(node, job.assembly.snapshot_id, job.error, out)
+        else:
+            self._installed(node, job.assembly, job.bloom, now, out)
+        self._note(node)
+        return out.result()
+
+    def _installed(self, node: _Node, asm: _Assembly, bloom: BloomFilter, now: float, out: _Outcome) -> None:
+        """The sink holds the snapshot's filter: the replica's position is the snapshot's."""
         node.assembly = None
         node.last_snapshot_id = asm.snapshot_id
         node.has_replica = True

@@ -10,21 +10,36 @@ coordinator's shell, which also dispatches the events). Replies are returned, no
     feed.add([b"crate-9"], now)        # one delta adding the key
     feed.heartbeat(now)                # heard from again
     feed.close(now)                    # stream down (stale)
+
+`StreamedFeed` plays the same messages over a real FilterSync stream (grpc.aio, in the shared
+stream pump of shardsieve/stream_pump.py), so one process can be many nodes towards a real
+coordinator process:
+
+    feed = StreamedFeed(channel, "node-kelp-1", bloom, address="127.0.0.1:7101")   # on the loop
+    feed.connect()                     # Hello + snapshot on a new stream
+    await feed.acked.wait()            # the coordinator installed the snapshot
+    feed.heartbeat()
+    end = await feed.close()           # how the stream ended
 """
 
 from __future__ import annotations
 
+import asyncio
 import itertools
+import time
 from collections.abc import Hashable
-from typing import Protocol, Sequence
+from typing import Any, Protocol, Sequence
+
+import grpc
 
 from shardsieve.bloom import BloomFilter
 from shardsieve.changeset import ChangeSet
 from shardsieve.codec import encode_delta
 from shardsieve.hashing import positions
 from shardsieve.snapshot import encode_snapshot
-from shardsieve.sync.coordinator_side import SyncResult
-from shardsieve.v1 import filter_pb2, sync_pb2
+from shardsieve.stream_pump import Outbox, StreamEnd, pump
+from shardsieve.sync.coordinator_side import NOTHING, SyncResult
+from shardsieve.v1 import filter_pb2, sync_pb2, sync_pb2_grpc
 
 _STREAMS = itertools.count(1_000_000)   # stream ids of their own, apart from the caller's
 
@@ -112,3 +127,81 @@ class NodeFeed:
         if self.stream_id is not None:
             self.target.close(self.node_id, self.stream_id, now)
             self.stream_id = None
+
+
+class _Outgoing:
+    """A SyncTarget that keeps what a NodeFeed sends, for a real stream to carry (it answers nothing)."""
+
+    def __init__(self) -> None:
+        self.messages: list[sync_pb2.NodeMessage] = []
+
+    def open(self, stream_id: Hashable, hello: sync_pb2.Hello, now: float) -> SyncResult:
+        self.messages.append(sync_pb2.NodeMessage(hello=hello))
+        return NOTHING
+
+    def receive(self, node_id: str, stream_id: Hashable, msg: sync_pb2.NodeMessage, now: float) -> SyncResult:
+        self.messages.append(msg)
+        return NOTHING
+
+    def close(self, node_id: str, stream_id: Hashable, now: float) -> SyncResult:
+        return NOTHING
+
+    def take(self) -> list[sync_pb2.NodeMessage]:
+        out, self.messages = self.messages, []
+        return out
+
+
+class StreamedFeed:
+    """A NodeFeed whose messages travel on a real FilterSync stream; make and use it on one event loop."""
+
+    def __init__(self, channel: grpc.aio.Channel, node_id: str, bloom: BloomFilter, *, address: str = "",
+                 capacity: int = 1000, key_count: int = 0, epoch: int = 1,
+                 metadata: tuple[tuple[str, str], ...] = ()) -> None:
+        self._outgoing = _Outgoing()
+        self.feed = NodeFeed(self._outgoing, node_id, bloom, address=address, capacity=capacity,
+                             key_count=key_count, epoch=epoch)
+        self.node_id = node_id
+        self._stub = sync_pb2_grpc.FilterSyncStub(channel)
+        self.metadata = metadata
+        self.replies: list[sync_pb2.CoordinatorMessage] = []
+        self.acked = asyncio.Event()           # set by the first Ack
+        self.ended: StreamEnd | None = None
+        self._call: Any = None
+        self._outbox: Outbox[sync_pb2.NodeMessage] | None = None
+        self._pump: asyncio.Future[StreamEnd] | None = None
+
+    def connect(self) -> None:
+        """Open a stream and queue the Hello and a snapshot of the filter."""
+        self._call = self._stub.Stream(metadata=self.metadata)
+        self._outbox = Outbox(1 << 12)
+        self.feed.connect(time.monotonic())
+        self._outbox.send(self._outgoing.take())
+        self._pump = asyncio.ensure_future(pump(read=self._call.read, write=self._call.write, handle=self._on_reply,
+                                                outbox=self._outbox, name=f"feed-{self.node_id}"))
+        self._pump.add_done_callback(lambda done: setattr(self, "ended", None if done.cancelled() else done.result()))
+
+    def _on_reply(self, msg: sync_pb2.CoordinatorMessage) -> None:
+        self.replies.append(msg)
+        if msg.WhichOneof("body") == "ack":
+            self.acked.set()
+
+    def _flush(self) -> None:
+        assert self._outbox is not None, "connect() first"
+        self._outbox.send(self._outgoing.take())
+
+    def heartbeat(self) -> None:
+        self.feed.heartbeat(time.monotonic())
+        self._flush()
+
+    def add(self, keys: Sequence[bytes]) -> None:
+        """Add keys to the filter and queue the delta that carries them."""
+        self.feed.add(keys, time.monotonic())
+        self._flush()
+
+    async def close(self) -> StreamEnd:
+        """End the stream from this side; returns how it ended (its first end wins)."""
+        assert self._outbox is not None and self._pump is not None, "connect() first"
+        self._outbox.end(StreamEnd(grpc.StatusCode.OK, "the simulated node stopped"), now=True)
+        end = await self._pump
+        self._call.cancel()
+        return end

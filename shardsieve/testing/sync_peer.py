@@ -1,10 +1,12 @@
 """An in-process test coordinator that speaks the real FilterSync gRPC API.
 
-It runs the real coordinator protocol object (`CoordinatorSync`) behind a small grpc.server
+It runs the real coordinator protocol object (`CoordinatorSync`) behind a grpc.aio server on
+an event loop of its own thread, each stream in the shared pump (shardsieve/stream_pump.py),
 and keeps replicas in a `DictReplicaSink` (one BloomFilter per node id), so tests and
 benchmarks can compare a node's filter with the coordinator's copy bit for bit, inject
 coordinator messages (rebuild requests, deliberately wrong messages) into a node's stream,
-and timestamp every node message as it arrives.
+and timestamp every node message as it arrives. Its methods are plain calls, usable from any
+thread.
 
     with TestCoordinator() as coord:              # listens on 127.0.0.1:<free port>
         ... start a node with --coordinator coord.address ...
@@ -16,88 +18,41 @@ and timestamp every node message as it arrives.
 from __future__ import annotations
 
 import itertools
-import queue
 import threading
 import time
-from concurrent import futures
-from typing import Callable
+from typing import Any, Callable
 
 import grpc
 
 from shardsieve.bloom import BloomFilter
+from shardsieve.security import EXCLUSIVE_PORT_OPTION
+from shardsieve.stream_pump import Outbox, StreamRefused, pump
 from shardsieve.sync.coordinator_side import CoordinatorSync, DictReplicaSink, NodeState
-from shardsieve.sync.errors import SyncError
+from shardsieve.testing.event_loop import LoopThread
 from shardsieve.v1 import sync_pb2, sync_pb2_grpc
 
-_END = object()
+
+class _Stream:
+    """One node's stream at the test coordinator: its outbox, and its node once the Hello came."""
+
+    def __init__(self, stream_id: int) -> None:
+        self.stream_id = stream_id
+        self.outbox: Outbox[sync_pb2.CoordinatorMessage] = Outbox(1 << 16)
+        self.node_id: str | None = None
 
 
 class _Servicer(sync_pb2_grpc.FilterSyncServicer):
     def __init__(self, owner: TestCoordinator) -> None:
         self.owner = owner
 
-    def Stream(self, request_iterator, context):  # noqa: N802 - gRPC method name
+    async def Stream(self, request_iterator: Any, context: grpc.aio.ServicerContext) -> None:  # noqa: N802
         owner = self.owner
-        stream_id = next(owner._stream_ids)
-        outq: queue.Queue[object] = queue.Queue()
-        try:
-            first = next(request_iterator)
-        except StopIteration:
-            return
-        arrived = time.monotonic()
-        owner._record(first, arrived)
-        if first.WhichOneof("body") != "hello":
-            context.abort(grpc.StatusCode.INVALID_ARGUMENT, "the first message on a stream must be a Hello")
-        node_id = first.hello.node_id
-        try:
-            with owner.lock:
-                replies = owner.sync.open(stream_id, first.hello, arrived).replies
-        except SyncError as exc:
-            context.abort(getattr(grpc.StatusCode, exc.grpc_status_name), str(exc))
-        with owner.lock:
-            owner._queues[node_id] = outq
-        for reply in replies:
-            outq.put(reply)
-        error: list[SyncError] = []
-
-        def read() -> None:
-            try:
-                for msg in request_iterator:
-                    now = time.monotonic()
-                    owner._record(msg, now)
-                    if owner.drop_messages:
-                        continue
-                    try:
-                        with owner.lock:
-                            out = owner.sync.receive(node_id, stream_id, msg, now).replies
-                    except SyncError as exc:
-                        error.append(exc)
-                        return
-                    for reply in out:
-                        outq.put(reply)
-            except grpc.RpcError:
-                pass
-            finally:
-                outq.put(_END)
-
-        reader = threading.Thread(target=read, daemon=True, name=f"test-coord-read-{stream_id}")
-        reader.start()
-        try:
-            while context.is_active():
-                try:
-                    item = outq.get(timeout=0.2)
-                except queue.Empty:
-                    continue
-                if item is _END:
-                    break
-                yield item
-            if error:
-                context.abort(getattr(grpc.StatusCode, error[0].grpc_status_name), str(error[0]))
-        finally:
-            with owner.lock:
-                owner.sync.close(node_id, stream_id, time.monotonic())
-                if owner._queues.get(node_id) is outq:
-                    del owner._queues[node_id]
+        stream = _Stream(next(owner._stream_ids))
+        end = await pump(read=context.read, write=context.write, handle=lambda msg: owner._handle(stream, msg),
+                         outbox=stream.outbox, on_close=lambda _end: owner._closed(stream),
+                         name=f"test-coord-{stream.stream_id}")
+        if not end.ok and end.code != grpc.StatusCode.CANCELLED:
+            await context.abort(end.code, end.details)
 
 
 class TestCoordinator:
@@ -108,25 +63,32 @@ class TestCoordinator:
     def __init__(self, host: str = "127.0.0.1", port: int = 0) -> None:
         self.sink = DictReplicaSink()
         self.sync = CoordinatorSync(self.sink)
-        self.lock = threading.RLock()
+        self.lock = threading.RLock()      # the protocol object is read from the caller's thread too
         self.arrivals: list[tuple[float, sync_pb2.NodeMessage]] = []
         self.on_message: Callable[[sync_pb2.NodeMessage, float], None] | None = None
         self.keep_arrivals = False
         self.drop_messages = False
-        self._queues: dict[str, queue.Queue[object]] = {}
+        self._streams: dict[str, _Stream] = {}       # node id -> its current stream
         self._stream_ids = itertools.count(1)
-        self.server = grpc.server(futures.ThreadPoolExecutor(max_workers=16, thread_name_prefix="test-coord"),
-                                  options=[("grpc.max_receive_message_length", 64 << 20)])
-        sync_pb2_grpc.add_FilterSyncServicer_to_server(_Servicer(self), self.server)
-        self.port = self.server.add_insecure_port(f"{host}:{port}")
+        self._loop = LoopThread("test-coordinator")
+
+        async def build() -> tuple[grpc.aio.Server, int]:
+            server = grpc.aio.server(options=[("grpc.max_receive_message_length", 64 << 20), EXCLUSIVE_PORT_OPTION])
+            sync_pb2_grpc.add_FilterSyncServicer_to_server(_Servicer(self), server)
+            return server, server.add_insecure_port(f"{host}:{port}")
+
+        self.server, self.port = self._loop.run(build())
         self.address = f"{host}:{self.port}"
 
     def start(self) -> TestCoordinator:
-        self.server.start()
+        self._loop.run(self.server.start())
         return self
 
     def stop(self) -> None:
-        self.server.stop(0.5).wait(2)
+        if self._loop.loop.is_closed():
+            return
+        self._loop.run(self.server.stop(0.5))
+        self._loop.close()
 
     def __enter__(self) -> TestCoordinator:
         return self.start()
@@ -134,12 +96,34 @@ class TestCoordinator:
     def __exit__(self, *exc: object) -> None:
         self.stop()
 
-    def _record(self, msg: sync_pb2.NodeMessage, now: float) -> None:
+    # ------------------------------------------------------------------ the streams (event loop)
+    def _handle(self, stream: _Stream, msg: sync_pb2.NodeMessage) -> list[sync_pb2.CoordinatorMessage]:
+        now = time.monotonic()
         if self.on_message is not None:
             self.on_message(msg, now)
         if self.keep_arrivals:
             with self.lock:
                 self.arrivals.append((now, msg))
+        with self.lock:
+            if stream.node_id is None:
+                if msg.WhichOneof("body") != "hello":
+                    raise StreamRefused(grpc.StatusCode.INVALID_ARGUMENT,
+                                        "the first message on a stream must be a Hello")
+                replies = list(self.sync.open(stream.stream_id, msg.hello, now).replies)   # SyncError ends it
+                stream.node_id = msg.hello.node_id
+                self._streams[stream.node_id] = stream
+                return replies
+            if self.drop_messages:
+                return []
+            return list(self.sync.receive(stream.node_id, stream.stream_id, msg, now).replies)
+
+    def _closed(self, stream: _Stream) -> None:
+        if stream.node_id is None:
+            return
+        with self.lock:
+            self.sync.close(stream.node_id, stream.stream_id, time.monotonic())
+            if self._streams.get(stream.node_id) is stream:
+                del self._streams[stream.node_id]
 
     # ------------------------------------------------------------------ inspection
     def replica(self, node_id: str) -> BloomFilter | None:
@@ -156,7 +140,7 @@ class TestCoordinator:
 
     def connected(self, node_id: str) -> bool:
         with self.lock:
-            return self.sync.is_connected(node_id) and node_id in self._queues
+            return self.sync.is_connected(node_id) and node_id in self._streams
 
     def wait_for_node(self, node_id: str, timeout: float = 15.0) -> NodeState:
         """Wait until node_id is connected and has a replica."""
@@ -171,10 +155,9 @@ class TestCoordinator:
     def send(self, node_id: str, msg: sync_pb2.CoordinatorMessage) -> None:
         """Put a message into node_id's current stream (KeyError when not connected)."""
         with self.lock:
-            self._queues[node_id].put(msg)
+            self._streams[node_id].outbox.send([msg])
 
     def request_rebuild(self, node_id: str, capacity: int, target_fpr: float, reason: str = "test") -> None:
         with self.lock:
             result = self.sync.request_rebuild(node_id, capacity, target_fpr, reason, time.monotonic())
-            for msg in result.replies:
-                self._queues[node_id].put(msg)
+            self._streams[node_id].outbox.send(result.replies)

@@ -231,7 +231,8 @@ def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[LocalCluster]:
     coordinator_args = ["--node-token", f"node-1={NODE_TOKEN}", "--node-token", f"spare={SPARE_TOKEN}",
                         "--node-token", f"spare2={SPARE_TOKEN}", "--read-token", READ_TOKEN,
                         "--write-token", WRITE_TOKEN,
-                        "--max-streams-per-peer", "4", "--max-message-bytes", str(1 << 20),
+                        "--max-streams-per-peer", "4", "--hello-timeout-ms", "60000",
+                        "--max-message-bytes", str(1 << 20),
                         "--max-filter-bits", str(1 << 20), "--max-snapshot-chunks", "4", "--mode", "fast",
                         "--max-value-bytes", str(MAX_VALUE), "--max-batch-keys", str(MAX_BATCH_KEYS),
                         "--auto-rebuild", "false", "--node-storage-token", STORAGE_TOKEN]
@@ -412,22 +413,21 @@ def test_fuzzed_deltas_and_snapshots_change_nothing(cluster: LocalCluster) -> No
 
 
 def test_streams_per_peer_are_limited(cluster: LocalCluster) -> None:
+    """node-1 holds one stream from 127.0.0.1 and the limit is 4 (max-streams-per-peer): of six
+    more streams from here, three are refused RESOURCE_EXHAUSTED naming the setting. The six send
+    no Hello: a stream counts from the moment it opens (docs/security.md, "Limits")."""
     md = (("authorization", f"Bearer {SPARE_TOKEN}"),)
-    held: list[FakeNode] = []
+    wait_until(lambda: cluster.all_fresh(), 20, message="node-1 synced")
+    held = [FakeNode(cluster.coordinator_address, md) for _ in range(6)]
     try:
-        # node-1 holds one stream from 127.0.0.1; the limit is 4
-
-        def refused() -> bool:
-            probe = FakeNode(cluster.coordinator_address, md)
-            probe.send(hello("spare2", GEOMETRY))
-            first = probe.recv()
-            if isinstance(first, grpc.RpcError):
-                probe.close()
-                return first.code() == grpc.StatusCode.RESOURCE_EXHAUSTED
-            held.append(probe)                     # accepted: keep it open, try again
-            return False
-        wait_until(refused, 20, interval=0.05, message="a stream past max-streams-per-peer to be refused")
-        assert 1 <= len(held) <= 3
+        def ended() -> list[Any]:
+            return [f for f in held if not f.replies.empty()]
+        wait_until(lambda: len(ended()) >= 3, 20, interval=0.05, message="three streams past the limit refused")
+        refusals = [f.recv(0) for f in ended()]
+        assert len(refusals) == 3
+        for refusal in refusals:
+            assert isinstance(refusal, grpc.RpcError) and refusal.code() == grpc.StatusCode.RESOURCE_EXHAUSTED
+            assert "max-streams-per-peer" in (refusal.details() or "")
     finally:
         for f in held:
             f.close()

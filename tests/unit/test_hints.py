@@ -18,6 +18,7 @@ mmh3 is the reference MurmurHash3 library) and a Bloom filter holds a key iff al
 
 from __future__ import annotations
 
+import asyncio
 import logging
 from collections import deque
 from typing import Any
@@ -145,7 +146,7 @@ class CoreProber:
     def __init__(self, core: NodeCore) -> None:
         self.core = core
 
-    def call(self, node_id: str, address: str, method: str, request: Any, timeout: float) -> ProbeResult:
+    async def call(self, node_id: str, address: str, method: str, request: Any, timeout: float) -> ProbeResult:
         assert method == "Put"
         return ProbeResult(node_id, reply=_ack(self.core.put_many([(request.key, request.value)])[0]))
 
@@ -215,7 +216,7 @@ class Link:
 
     def write(self, key: bytes) -> storage_pb2.WriteAck:
         self.written.append(key)
-        reply = self.router.write(key, b"fresh", node_id=NODE)
+        reply = asyncio.run(self.router.write(key, b"fresh", node_id=NODE))
         return storage_pb2.WriteAck(epoch=reply.epoch, sequence=reply.sequence)
 
     def pump(self, rounds: int = 200) -> None:

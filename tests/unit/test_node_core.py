@@ -294,21 +294,26 @@ def test_size_threshold_pushes_before_the_interval() -> None:
     """Changes are pushed every push interval, or sooner once the size threshold is reached
     (docs/architecture.md#3-bounded-staleness; docs/node.md, "Sync"). With a 60 s interval,
     only the threshold can explain a cut."""
+    from shardsieve.node.pusher import ThreadedPusher
     from shardsieve.testing.procs import wait_until
 
     core = make_core(push_threshold=20)                 # k = 7 at fpr 0.01: 3 keys pass 20 bits
     assert core.geometry.hashes == 7
-    core.start_pusher(interval=60.0)
+    pusher = ThreadedPusher(core, interval=60.0).start()
+    wakes: list[int] = []
+    wake = core.wake_pusher
+    core.wake_pusher = lambda: (wakes.append(1), wake())[1]      # count the wake-ups, pass them on
     try:
         small = core.put_many([(b"t-small", b"v")])[0]  # 7 changed bits: below the threshold
-        assert not core._push_now.is_set() and core.stats()["sequence"] == 0
+        assert not wakes and core.stats()["sequence"] == 0
         core.put_many([(f"t-{i}".encode(), b"v") for i in range(3)])   # 21 more: threshold reached
+        assert wakes == [1]
         wait_until(lambda: core.stats()["sequence"] >= small.sequence, 10,
                    message="a cut triggered by the size threshold")
         again = core.put_many([(b"t-small", b"new value")])[0]        # an overwrite: nothing pending
         assert (again.epoch, again.sequence) == (core.epoch, core.stats()["sequence"])   # the cut took it all
     finally:
-        core.stop_pusher()
+        pusher.stop()
 
 
 def test_rebuild_progress_is_visible_in_stats_and_log(caplog: pytest.LogCaptureFixture) -> None:
@@ -387,7 +392,7 @@ def test_a_failed_rebuild_scan_is_abandoned_and_its_epoch_burned() -> None:
     try:
         wait_until(lambda: core.stats()["rebuilds_abandoned"] == 1, 10, message="the rebuild abandoned")
     finally:
-        core.stop_pusher()
+        core.stop()
     assert core.stats()["rebuild_phase"] == "" and core.epoch == epoch
     assert store.get_meta(META_EPOCH) == str(epoch + 1)       # the burned number
     assert current(core).contains(b"before")

@@ -11,8 +11,8 @@ recorded instead of slept.
 
 from __future__ import annotations
 
+import asyncio
 import random
-import threading
 
 from shardsieve.node.sync_driver import SyncDriver
 
@@ -22,30 +22,28 @@ class _Core:
     attempt is scripted below)."""
 
 
-class _RecordingStop(threading.Event):
-    """Records every backoff wait instead of sleeping; stops the loop after `limit` waits."""
-
-    def __init__(self, limit: int) -> None:
-        super().__init__()
-        self.limit = limit
-        self.waits: list[float] = []
-
-    def wait(self, timeout: float | None = None) -> bool:
-        assert timeout is not None
-        self.waits.append(timeout)
-        if len(self.waits) >= self.limit:
-            self.set()
-        return self.is_set()
-
-
 def _run(outcomes: list[bool], seed: int, lo: float = 0.1, hi: float = 3.0) -> list[float]:
+    """The driver's reconnect loop over scripted stream outcomes; the backoff waits it asked
+    for, recorded instead of slept (the loop stops after the last outcome's wait)."""
     driver = SyncDriver(_Core(), "127.0.0.1:9", backoff_min=lo, backoff_max=hi, rng=random.Random(seed))
-    stop = _RecordingStop(len(outcomes))
-    driver._stop = stop
     script = iter(outcomes)
-    driver._one_stream = lambda: next(script)  # type: ignore[method-assign]
-    driver._run()
-    return stop.waits
+    waits: list[float] = []
+
+    async def one_stream() -> bool:
+        return next(script)
+
+    async def pause(delay: float) -> bool:
+        waits.append(delay)
+        return len(waits) >= len(outcomes)     # True: stopping
+
+    async def main() -> None:
+        driver._stopping = asyncio.Event()
+        driver._one_stream = one_stream  # type: ignore[method-assign]
+        driver._pause = pause  # type: ignore[method-assign]
+        await driver._run()
+
+    asyncio.run(main())
+    return waits
 
 
 def test_ceiling_doubles_per_failure_up_to_the_cap() -> None:
@@ -83,18 +81,21 @@ def test_a_full_send_queue_gets_no_send_budget() -> None:
     # the driver's bound on its queue (module docstring): NodeSync is given room for this
     # stream only while fewer than MAX_QUEUED messages wait, so a stalled coordinator costs
     # at most that many queued messages, never an unbounded pile
-    import queue
-
-    from shardsieve.node.sync_driver import MAX_QUEUED, _QueueOutbox
+    from shardsieve.node.sync_driver import MAX_QUEUED, StreamOutbox
+    from shardsieve.stream_pump import Outbox
     from shardsieve.sync.node_side import SEND_BUDGET_BYTES
     from shardsieve.v1 import sync_pb2
 
-    q: queue.Queue = queue.Queue()
-    outbox = _QueueOutbox(q)
-    assert outbox.room() == SEND_BUDGET_BYTES
-    outbox.send([sync_pb2.NodeMessage()] * (MAX_QUEUED - 1))
-    assert outbox.room() == SEND_BUDGET_BYTES and q.qsize() == MAX_QUEUED - 1
-    outbox.send([sync_pb2.NodeMessage()])
-    assert outbox.room() == 0
-    q.get()
-    assert outbox.room() == SEND_BUDGET_BYTES
+    async def check() -> None:
+        queued: Outbox[sync_pb2.NodeMessage] = Outbox(MAX_QUEUED)
+        queued.bind(asyncio.get_running_loop())
+        outbox = StreamOutbox(queued)
+        assert outbox.room() == SEND_BUDGET_BYTES
+        outbox.send([sync_pb2.NodeMessage()] * (MAX_QUEUED - 1))
+        assert outbox.room() == SEND_BUDGET_BYTES and len(queued) == MAX_QUEUED - 1
+        outbox.send([sync_pb2.NodeMessage()])
+        assert outbox.room() == 0
+        await queued.next()                 # the writer took one
+        assert outbox.room() == SEND_BUDGET_BYTES
+
+    asyncio.run(check())

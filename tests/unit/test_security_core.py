@@ -1,32 +1,36 @@
 """shardsieve.security and `shardsieve certs`: tokens, node identity, TLS files, interceptors.
 
-The TLS checks run a real in-process gRPC server on loopback with certificates made by
-`make_dev_pki`; the outside reference is gRPC's own TLS stack (BoringSSL) deciding the
-handshake, and the `cryptography` package reading the issued certificates back.
+The TLS checks run a real in-process gRPC server (grpc.aio, as the daemons serve) on loopback
+with certificates made by `make_dev_pki`; the outside reference is gRPC's own TLS stack
+(BoringSSL) deciding the handshake, and the `cryptography` package reading the issued
+certificates back.
 """
 
 from __future__ import annotations
 
-from concurrent import futures
+import logging
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any, Iterator, Sequence
 
 import grpc
 import pytest
 from click.testing import CliRunner
 from cryptography import x509
 from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
-from grpc_health.v1 import health, health_pb2, health_pb2_grpc
+from grpc_health.v1 import health_pb2, health_pb2_grpc
+from grpc_health.v1.health import aio as health_aio
 
 from shardsieve.cli.certs import make_dev_pki
 from shardsieve.cli.main import cli
 from shardsieve.config import ConfigError
 from shardsieve.security import (
+    EXCLUSIVE_PORT_OPTION,
+    AddressInUse,
     DecodeGuard,
     NodeAuthorizer,
     PeerIdentity,
     SecurityError,
-    StreamLimiter,
+    StreamAdmission,
     TlsFiles,
     TokenGuard,
     bearer_token,
@@ -38,6 +42,25 @@ from shardsieve.security import (
     read_token,
     tokens_equal,
 )
+from shardsieve.testing.event_loop import LoopThread
+
+
+@pytest.fixture(scope="module")
+def loop() -> Iterator[LoopThread]:
+    with LoopThread("security-tests") as running:
+        yield running
+
+
+def serve(loop: LoopThread, servicer: Any, *, interceptors: Sequence[Any] = (), tls: TlsFiles | None = None,
+          address: str = "127.0.0.1:0") -> tuple[grpc.aio.Server, int]:
+    """A started grpc.aio server on `loop` with the health servicer given, and its port."""
+    async def start() -> tuple[grpc.aio.Server, int]:
+        server = grpc.aio.server(interceptors=list(interceptors), options=[EXCLUSIVE_PORT_OPTION])
+        health_pb2_grpc.add_HealthServicer_to_server(servicer, server)
+        port = open_port(server, address, tls or TlsFiles(), tls is None, logging.getLogger("test"), "test")
+        await server.start()
+        return server, port
+    return loop.run(start())
 
 
 @pytest.fixture(scope="module")
@@ -141,12 +164,28 @@ def test_open_mode_identity_is_the_peer_host() -> None:
     assert auth.identity_key(PeerIdentity("h1")) != auth.identity_key(PeerIdentity("h2"))
 
 
-def test_stream_limiter_counts_per_host() -> None:
-    lim = StreamLimiter(2)
-    assert lim.acquire("a") and lim.acquire("a") and not lim.acquire("a")
-    assert lim.acquire("b")
-    lim.release("a")
-    assert lim.count("a") == 1 and lim.acquire("a")
+def test_stream_admission_caps_per_host_pending_and_total() -> None:
+    per_host = StreamAdmission(max_per_peer=2)
+    assert per_host.admit("a") is None and per_host.admit("a") is None
+    assert "max-streams-per-peer" in (per_host.admit("a") or "")
+    assert per_host.admit("b") is None
+    per_host.release("a", pending=True)
+    assert per_host.count("a") == 1 and per_host.admit("a") is None
+
+    pending = StreamAdmission(max_pending=2)
+    assert pending.admit("a") is None and pending.admit("b") is None
+    assert "max-pending-streams" in (pending.admit("c") or "")
+    pending.hello_done()                       # one said Hello: room for another pending one
+    assert pending.admit("c") is None and (pending.open, pending.pending) == (3, 2)
+
+    total = StreamAdmission(max_streams=2)
+    assert total.admit("a") is None and total.admit("b") is None
+    total.hello_done()
+    total.hello_done()
+    assert "max-sync-streams" in (total.admit("c") or "")       # Hello done or not, both count
+    total.release("a", pending=False)
+    assert total.admit("c") is None
+    assert total.refused == {"max-sync-streams": 1} and pending.refused == {"max-pending-streams": 1}
 
 
 # --------------------------------------------------------------------------- certificates
@@ -193,25 +232,38 @@ def test_tls_files_validation_names_the_setting(tmp_path: Path, pki: Path) -> No
     TlsFiles(pki / "node-1.pem", pki / "node-1-key.pem", pki / "ca.pem", True).validate()
 
 
-def test_plaintext_listener_needs_explicit_permission(caplog: pytest.LogCaptureFixture) -> None:
-    import logging
-
-    server = grpc.server(futures.ThreadPoolExecutor(1))
+def test_plaintext_listener_needs_explicit_permission(loop: LoopThread, caplog: pytest.LogCaptureFixture) -> None:
     logger = logging.getLogger("test.security")
-    with pytest.raises(SecurityError, match="allow-plaintext"):
-        open_port(server, "127.0.0.1:0", TlsFiles(), False, logger, "test service")
-    with caplog.at_level(logging.WARNING, logger="test.security"):
-        assert open_port(server, "127.0.0.1:0", TlsFiles(), True, logger, "test service") > 0
+
+    async def check() -> None:
+        server = grpc.aio.server()
+        with pytest.raises(SecurityError, match="allow-plaintext"):
+            open_port(server, "127.0.0.1:0", TlsFiles(), False, logger, "test service")
+        with caplog.at_level(logging.WARNING, logger="test.security"):
+            assert open_port(server, "127.0.0.1:0", TlsFiles(), True, logger, "test service") > 0
+        await server.stop(0)
+    loop.run(check())
     assert any("PLAINTEXT" in r.getMessage() for r in caplog.records)
-    server.stop(0)
 
 
-class _Recorder(health.HealthServicer):
+def test_a_taken_listen_address_is_refused_not_shared(loop: LoopThread) -> None:
+    """With SO_REUSEPORT off (EXCLUSIVE_PORT_OPTION), binding a port another server holds fails
+    (socket(7): without SO_REUSEPORT a bound TCP port is exclusive); open_port says which address."""
+    first, port = serve(loop, _Recorder())
+    try:
+        with pytest.raises(AddressInUse, match=f"127.0.0.1:{port}"):
+            serve(loop, _Recorder(), address=f"127.0.0.1:{port}")
+        assert _check(f"127.0.0.1:{port}", None) == grpc.StatusCode.OK          # the first keeps serving
+    finally:
+        loop.run(first.stop(0))
+
+
+class _Recorder(health_aio.HealthServicer):
     def __init__(self) -> None:
         super().__init__()
         self.peers: list[PeerIdentity] = []
 
-    def Check(self, request: Any, context: grpc.ServicerContext) -> Any:  # noqa: N802
+    async def Check(self, request: Any, context: grpc.aio.ServicerContext) -> Any:  # noqa: N802
         from shardsieve.security import peer_identity
 
         self.peers.append(peer_identity(context))
@@ -219,17 +271,12 @@ class _Recorder(health.HealthServicer):
 
 
 @pytest.fixture
-def mtls_server(pki: Path) -> Iterator[tuple[str, _Recorder]]:
-    server = grpc.server(futures.ThreadPoolExecutor(2))
+def mtls_server(loop: LoopThread, pki: Path) -> Iterator[tuple[str, _Recorder]]:
     rec = _Recorder()
-    health_pb2_grpc.add_HealthServicer_to_server(rec, server)
-    import logging
-
     tls = TlsFiles(pki / "coordinator.pem", pki / "coordinator-key.pem", pki / "ca.pem", client_auth=True)
-    port = open_port(server, "127.0.0.1:0", tls, False, logging.getLogger("test"), "test")
-    server.start()
+    server, port = serve(loop, rec, tls=tls)
     yield f"127.0.0.1:{port}", rec
-    server.stop(0)
+    loop.run(server.stop(0))
 
 
 def _check(address: str, creds: grpc.ChannelCredentials | None) -> grpc.StatusCode:
@@ -262,16 +309,13 @@ def test_mutual_tls_handshake_and_peer_identity(mtls_server: tuple[str, _Recorde
 
 
 @pytest.fixture
-def guarded() -> Iterator[tuple[grpc.Channel, _Recorder]]:
+def guarded(loop: LoopThread) -> Iterator[tuple[grpc.Channel, _Recorder]]:
     rec = _Recorder()
-    server = grpc.server(futures.ThreadPoolExecutor(2), interceptors=[
-        TokenGuard({"/grpc.health.v1.Health/Check": "the-token"}), DecodeGuard()])
-    health_pb2_grpc.add_HealthServicer_to_server(rec, server)
-    port = server.add_insecure_port("127.0.0.1:0")
-    server.start()
+    server, port = serve(loop, rec, interceptors=[TokenGuard({"/grpc.health.v1.Health/Check": "the-token"}),
+                                                  DecodeGuard()])
     with grpc.insecure_channel(f"127.0.0.1:{port}") as channel:
         yield channel, rec
-    server.stop(0)
+    loop.run(server.stop(0))
 
 
 def test_token_guard_refuses_missing_and_wrong_tokens(guarded: tuple[grpc.Channel, _Recorder]) -> None:
@@ -298,8 +342,6 @@ def test_decode_guard_answers_invalid_argument_for_garbage(guarded: tuple[grpc.C
 
 
 def test_second_stream_needs_the_same_identity_as_the_connected_one() -> None:
-    import queue
-
     from shardsieve.coordinator.shell import CoordinatorShell
     from shardsieve.coordinator.sync_service import SyncService
     from shardsieve.sync.coordinator_side import CoordinatorSync, DictReplicaSink
@@ -310,21 +352,18 @@ def test_second_stream_needs_the_same_identity_as_the_connected_one() -> None:
              PeerIdentity("10.0.0.1", ("n2",)))):
         svc = SyncService(CoordinatorShell(CoordinatorSync(DictReplicaSink())), authorizer=NodeAuthorizer(mode))
         assert svc._refusal("n1", first) is None                   # nobody connected yet
-        svc._outbox["n1"] = queue.Queue()                          # n1's stream is open
+        svc._current["n1"] = object()                              # n1's stream is open
         svc._identity["n1"] = svc.authorizer.identity_key(first)
         assert svc._refusal("n1", same) is None, mode               # reconnect takeover
         assert svc._refusal("n1", other) is not None, mode          # refused while n1 is connected
 
 
-def test_token_guard_rules_can_be_replaced_at_once() -> None:
+def test_token_guard_rules_can_be_replaced_at_once(loop: LoopThread) -> None:
     """Rotation: after update() the new token passes and the old one is refused; a guard made
     without tokens starts checking once it is given one."""
     rec = _Recorder()
     guard = TokenGuard({})
-    server = grpc.server(futures.ThreadPoolExecutor(2), interceptors=[guard, DecodeGuard()])
-    health_pb2_grpc.add_HealthServicer_to_server(rec, server)
-    port = server.add_insecure_port("127.0.0.1:0")
-    server.start()
+    server, port = serve(loop, rec, interceptors=[guard, DecodeGuard()])
     try:
         with grpc.insecure_channel(f"127.0.0.1:{port}") as channel:
             stub = health_pb2_grpc.HealthStub(channel)
@@ -343,4 +382,4 @@ def test_token_guard_rules_can_be_replaced_at_once() -> None:
             guard.update({"/grpc.health.v1.Health/": "kelp-two"})
             assert code("kelp-one") == grpc.StatusCode.UNAUTHENTICATED and code("kelp-two") == grpc.StatusCode.OK
     finally:
-        server.stop(0)
+        loop.run(server.stop(0))

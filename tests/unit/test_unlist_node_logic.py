@@ -10,8 +10,8 @@ filter built here from the same keys (a Bloom filter holds every inserted key: B
 
 from __future__ import annotations
 
+import asyncio
 import json
-import queue
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -23,10 +23,12 @@ from shardsieve.coordinator.accounting import ProbeOutcome
 from shardsieve.coordinator.admin_service import AdminService
 from shardsieve.coordinator.operations import Operations
 from shardsieve.coordinator.policy import Policy
-from shardsieve.coordinator.sync_service import SyncService, _Failure
+from shardsieve.coordinator.sync_service import SyncService, _Stream
 from shardsieve.coordinator.wiring import CoordinatorState, wire_state
 from shardsieve.bloom import CountingBloomFilter
 from shardsieve.geometry import Geometry
+from shardsieve.security import PeerIdentity
+from shardsieve.stream_pump import StreamEnd
 from shardsieve.sync.errors import NotOpened
 from shardsieve.sync.node_side import SEND_BUDGET_BYTES, NodeSync
 from shardsieve.v1 import admin_pb2, sync_pb2
@@ -45,8 +47,13 @@ class FakeContext:
     def invocation_metadata(self) -> tuple:
         return ()
 
-    def abort(self, code: grpc.StatusCode, details: str) -> None:
+    async def abort(self, code: grpc.StatusCode, details: str) -> None:
         raise Aborted(code, details)
+
+
+def call(admin_call: Any, request: Any) -> Any:
+    """An Admin servicer call, run to its end on an event loop of its own."""
+    return asyncio.run(admin_call(request, FakeContext()))
 
 
 def ready_for_coordinator(node: NodeSync) -> list[sync_pb2.NodeMessage]:
@@ -93,7 +100,8 @@ def world(tmp_path: Path) -> World:
     state.shell.subscribe(streams.on_event)
     ops = Operations(state.shell, state.readings, state.monitor, state.policy, state.hints, state.membership,
                      streams.send, clock=lambda: NOW, wall=lambda: 1.0)
-    admin = AdminService("coord-test", state.readings, ops, state.policy, clock=lambda: NOW)
+    admin = AdminService("coord-test", state.readings, ops, state.policy, state.shell, settled=streams.settled,
+                         clock=lambda: NOW)
     sync_node(state, "node-gannet-1", 1, [f"sprat-{i}" for i in range(30)])
     sync_node(state, "node-gannet-2", 2, [f"eel-{i}" for i in range(30)])
     return World(state, streams, ops, admin)
@@ -119,7 +127,7 @@ def test_a_connected_node_is_refused_and_nothing_changes(world: World, tmp_path:
     before = held_state(world.state, tmp_path)
     assert "node-gannet-1" in before["membership"] and before["hints"] == 1
     with pytest.raises(Aborted) as refused:
-        world.admin.UnlistNode(admin_pb2.UnlistNodeRequest(node_id="node-gannet-1"), FakeContext())
+        call(world.admin.UnlistNode, admin_pb2.UnlistNodeRequest(node_id="node-gannet-1"))
     assert refused.value.code == grpc.StatusCode.FAILED_PRECONDITION
     assert "connected" in refused.value.details and "force" in refused.value.details
     assert held_state(world.state, tmp_path) == before
@@ -133,7 +141,7 @@ def test_a_disconnected_node_leaves_every_table_and_stops_being_listed_stale(wor
     row = state.candidates.find([b"no-such-key"], NOW).rows()[0]
     assert [(c.node_id, c.stale) for c in row] == [("node-gannet-1", True)]       # listed stale (safe mode)
 
-    reply = world.admin.UnlistNode(admin_pb2.UnlistNodeRequest(node_id="node-gannet-1"), FakeContext())
+    reply = call(world.admin.UnlistNode, admin_pb2.UnlistNodeRequest(node_id="node-gannet-1"))
     assert (reply.node_id, reply.was_connected, reply.had_replica, reply.hints_dropped, reply.key_count) == \
         ("node-gannet-1", False, True, 1, 30)
     assert reply.address == "127.0.0.1:7101"
@@ -145,7 +153,7 @@ def test_a_disconnected_node_leaves_every_table_and_stops_being_listed_stale(wor
     assert [c.node_id for c in eel] == ["node-gannet-2"]                           # others untouched
     with state.shell.lock:
         assert state.shell.node("node-gannet-1") is None
-    status = world.admin.FleetStatus(admin_pb2.FleetStatusRequest(), FakeContext())
+    status = call(world.admin.FleetStatus, admin_pb2.FleetStatusRequest())
     assert [n.node_id for n in status.nodes] == ["node-gannet-2"]
     assert [(d.node_id, d.action) for d in world.operations.decisions()][-1] == ("node-gannet-1", "unlist")
     # a late message or close on the unlisted node's old stream must not bring it back
@@ -159,14 +167,14 @@ def test_a_disconnected_node_leaves_every_table_and_stops_being_listed_stale(wor
 
 def test_force_unlists_a_connected_node_and_ends_its_stream(world: World) -> None:
     state = world.state
-    box: queue.Queue = queue.Queue()
+    stream = _Stream(2, PeerIdentity("127.0.0.1"), "127.0.0.1:40002")
     with state.shell.lock:
-        world.streams._outbox["node-gannet-2"] = box       # node-gannet-2's stream is open
-    reply = world.admin.UnlistNode(admin_pb2.UnlistNodeRequest(node_id="node-gannet-2", force=True), FakeContext())
+        world.streams._current["node-gannet-2"] = stream       # node-gannet-2's stream is open
+    reply = call(world.admin.UnlistNode, admin_pb2.UnlistNodeRequest(node_id="node-gannet-2", force=True))
     assert reply.was_connected and reply.had_replica
-    assert state.readings.node_ids() == ["node-gannet-1"] and "node-gannet-2" not in world.streams._outbox
-    ended = box.get_nowait()
-    assert isinstance(ended, _Failure) and ended.code == grpc.StatusCode.ABORTED
+    assert state.readings.node_ids() == ["node-gannet-1"] and "node-gannet-2" not in world.streams._current
+    ended = stream.outbox.ended
+    assert isinstance(ended, StreamEnd) and ended.code == grpc.StatusCode.ABORTED and "unlisted" in ended.details
     assert "forced while connected" in world.operations.decisions()[-1].detail
     # the node, if alive, reconnects and is synced as a new node
     sync_node(state, "node-gannet-2", 3, ["eel-1"])
@@ -179,7 +187,7 @@ def test_unknown_or_empty_ids_change_nothing(world: World, tmp_path: Path, node_
                                             code: grpc.StatusCode) -> None:
     before = held_state(world.state, tmp_path)
     with pytest.raises(Aborted) as err:
-        world.admin.UnlistNode(admin_pb2.UnlistNodeRequest(node_id=node_id, force=True), FakeContext())
+        call(world.admin.UnlistNode, admin_pb2.UnlistNodeRequest(node_id=node_id, force=True))
     assert err.value.code == code and held_state(world.state, tmp_path) == before
     if code == grpc.StatusCode.NOT_FOUND:
         assert "node-gannet-1, node-gannet-2" in err.value.details
@@ -187,20 +195,20 @@ def test_unknown_or_empty_ids_change_nothing(world: World, tmp_path: Path, node_
 
 @pytest.mark.parametrize("node_id", ["node-gannet-\u0031\u0301", "node-g\u0430nnet-1", "..", "node/gannet-1",
                                      "node-gannet-1\n", "NODE-GANNET-1"])
-@pytest.mark.parametrize("call", ["unlist", "detail", "rebuild"])
+@pytest.mark.parametrize("entry", ["unlist", "detail", "rebuild"])
 def test_admin_calls_refuse_ids_outside_the_alphabet_and_change_nothing(world: World, tmp_path: Path, node_id: str,
-                                                                        call: str) -> None:
+                                                                        entry: str) -> None:
     # docs/node.md, "Node ids": no node can have such an id (a look-alike of node-gannet-1
     # included), so the request is malformed: INVALID_ARGUMENT naming the rule, not NOT_FOUND
     before = held_state(world.state, tmp_path)
     decisions = len(world.operations.decisions())
     with pytest.raises(Aborted) as err:
-        if call == "unlist":
-            world.admin.UnlistNode(admin_pb2.UnlistNodeRequest(node_id=node_id, force=True), FakeContext())
-        elif call == "detail":
-            world.admin.NodeDetail(admin_pb2.NodeDetailRequest(node_id=node_id), FakeContext())
+        if entry == "unlist":
+            call(world.admin.UnlistNode, admin_pb2.UnlistNodeRequest(node_id=node_id, force=True))
+        elif entry == "detail":
+            call(world.admin.NodeDetail, admin_pb2.NodeDetailRequest(node_id=node_id))
         else:
-            world.admin.Rebuild(admin_pb2.RebuildCommand(node_ids=["node-gannet-2", node_id]), FakeContext())
+            call(world.admin.Rebuild, admin_pb2.RebuildCommand(node_ids=["node-gannet-2", node_id]))
     assert err.value.code == grpc.StatusCode.INVALID_ARGUMENT
     assert "a node id is 1 to 64 characters" in err.value.details and "nothing changed" in err.value.details
     assert held_state(world.state, tmp_path) == before and len(world.operations.decisions()) == decisions
