@@ -202,14 +202,23 @@ class FeedApplier:
         with self._cond:
             self._state = FeedState.LIVE
 
-    def go_live(self, core: NodeCore) -> None:
-        """From now on apply through `core` (loaded from this ledger) on a background thread."""
+    def go_live(self, core: NodeCore, background: bool = True) -> None:
+        """From now on apply through `core` (loaded from this ledger), on a background thread
+        (background=False: the caller drives run_once(), as unit tests do)."""
         if self._feed is None:
             raise RuntimeError("catch_up() must run before go_live()")
         self._core_sink = NodeCoreSink(core)
         self._sink = self._core_sink
-        self._thread = threading.Thread(target=self._run, name="agent-feed", daemon=True)
-        self._thread.start()
+        if background:
+            self._thread = threading.Thread(target=self._run, name="agent-feed", daemon=True)
+            self._thread.start()
+
+    def run_once(self, timeout: float = 0.0) -> None:
+        """Apply the events available now (waiting up to timeout s), then one sweep batch."""
+        assert self._feed is not None
+        self._apply(self._feed.poll(timeout))
+        if self.state is FeedState.SWEEPING:
+            self._sweep_step()
 
     def stop(self) -> None:
         self._stop.set()
@@ -258,15 +267,17 @@ class FeedApplier:
     # ------------------------------------------------------------------ the loop
     def _run(self) -> None:
         assert self._feed is not None
+        reopen = ""
         while not self._stop.is_set():
             try:
-                self._apply(self._feed.poll(self.poll_interval))
-                if self.state is FeedState.SWEEPING:
-                    self._sweep_step()
+                if reopen:
+                    self._relist(reopen)
+                    reopen = ""
+                self.run_once(self.poll_interval)
             except Exception as exc:  # noqa: BLE001 - a store error must not end the agent
                 self.last_error = f"{type(exc).__name__}: {exc}"
                 log.exception("applying the store's changes failed; listing the store again")
-                self._relist(f"applying failed: {self.last_error}")
+                reopen = f"applying failed: {self.last_error}"
                 self._stop.wait(1.0)
 
     def _relist(self, reason: str) -> None:
