@@ -171,6 +171,7 @@ class FeedApplier:
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         self.last_error: str = ""
+        self.last_listing_reason: str = ""
 
     # ------------------------------------------------------------------ views
     @property
@@ -333,6 +334,7 @@ class FeedApplier:
 
     def _on_listing_started(self, event: ListingStarted) -> None:
         self.counters.listings += 1
+        self.last_listing_reason = event.reason
         self._tombstones = set()
         live = self._core_sink is not None
         if not live:
