@@ -235,7 +235,7 @@ class PostgresServer:
         try:
             conn.autocommit = True
             with conn.cursor() as cur:
-                cur.execute(sql, tuple(params))
+                cur.execute(sql, tuple(params) if params else None)
                 return list(cur.fetchall()) if cur.description is not None else []
         finally:
             conn.close()
