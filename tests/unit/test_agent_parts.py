@@ -120,3 +120,23 @@ def test_the_example_in_docs_agents_runs(capsys: pytest.CaptureFixture[str]) -> 
     assert code is not None
     exec(compile(code.group(1), "docs/agents.md", "exec"), {})  # noqa: S102 - our own doc
     assert capsys.readouterr().out.startswith("2 keys;")
+
+
+def test_a_rebuild_scans_the_ledger_in_byte_order_while_changes_arrive(tmp_path: Path) -> None:
+    """NodeSync's rebuild rule (docs/sync-protocol.md, "The rebuild hand-over") holds for an
+    agent because its scan reads the ledger under the same lock as every verified change."""
+    from shardsieve.bloom import BloomFilter
+
+    agent = EmbeddedAgent("gullrock-shed", capacity=200, target_fpr=0.05, background_rebuild=False, scan_batch=7)
+    agent.start([f"crate:{i:03d}".encode() for i in range(100)])
+    agent.core.request_rebuild(2000, 0.01)
+    step = 0
+    while not agent.core.rebuild_step():
+        agent.changed(added=[f"order:{step:03d}".encode()], removed=[f"crate:{step:03d}".encode()])
+        step += 1
+    keys = sorted(bytes(k) for k in agent.ledger.scan(None, 10_000))
+    with agent.core.lock:
+        assert agent.core.sync is not None
+        oracle = BloomFilter(agent.core.sync.geometry)
+        oracle.add_batch(keys)
+        assert agent.core.sync.geometry.bits > 2000 and agent.core.sync.filter.bits == oracle.bits
