@@ -80,7 +80,7 @@ class CoordinatorDaemon:
             settings.policy(), expected=settings.expected_nodes(), state_dir=settings.state_dir,
             max_hints=settings.max_hints, locate_threads=settings.locate_threads,
             monitor=SaturationMonitor(rebuild_timeout_s=settings.rebuild_timeout_s,
-                                      shrink_grace_s=settings.shrink_grace_s),
+                                      shrink_grace_s=settings.shrink_grace_s, limits=settings.rebuild_limits()),
             sync_config=CoordinatorSyncConfig(max_snapshot_bytes=limits.max_snapshot_bytes, install_off_call=True))
         shell = state.shell
         self.work = ThreadPoolExecutor(max_workers=WORK_THREADS, thread_name_prefix="coordinator-work")

@@ -120,6 +120,10 @@ class Readings:
         """The saturation monitor's inputs: every node with a verified replica."""
         return [f for f in (r.filter_reading() for r in self.nodes(now)) if f is not None]
 
+    def replica_bytes(self) -> int:
+        """Memory of the routing index now (what the rebuild memory cap is checked against)."""
+        return self._replicas.memory_bytes()
+
     def fleet(self, now: float) -> FleetReading:
         with self._shell.lock:
             _, totals = self._accounting.snapshot()

@@ -192,17 +192,34 @@ class Router:
         with self.shell.lock:
             return self.membership.address(node_id), ", ".join(self.membership.node_ids()) or "none"
 
-    async def write(self, key: bytes, value: bytes, node_id: str = "") -> routing_pb2.WriteReply:
+    async def write(self, key: bytes, value: bytes, node_id: str = "", move: bool = False) -> routing_pb2.WriteReply:
+        """Write key on the node holding it, else where placement puts it; or on node_id. A key is
+        on one node: a write on node_id of a key held elsewhere is refused unless `move`, which
+        writes the new copy first and then deletes the others (docs/coordinator.md, "Writes")."""
         _check_key(key, limit=self.max_key_bytes)
         if len(value) > self.max_value_bytes:
             raise RouterError(grpc.StatusCode.INVALID_ARGUMENT,
                               f"value has {len(value)} bytes; the largest accepted is {self.max_value_bytes} "
                               "(setting max-value-bytes)")
+        if move and not node_id:
+            raise RouterError(grpc.StatusCode.INVALID_ARGUMENT, "move needs a node id to move the key to")
+        elsewhere: list[str] = []
         if node_id:
             address, known = await self.shell.call(self._address, node_id)
             if address is None:
-                raise RouterError(grpc.StatusCode.INVALID_ARGUMENT, f"unknown node id {node_id!r} (known: {known})")
+                raise RouterError(grpc.StatusCode.NOT_FOUND, f"unknown node id {node_id!r} (known: {known})")
             target = node_id
+            cands = (await self.shell.call(self.locate, [key], "write"))[0]
+            holders, failed = await self._holders(key, [c for c in cands if c.node_id != node_id])
+            if failed:
+                raise self._unreachable(f"write on {node_id} (the key may be held there)", key, failed)
+            if holders and not move:
+                raise RouterError(grpc.StatusCode.FAILED_PRECONDITION,
+                                  f"key {key[:64]!r} is held by {', '.join(holders)}; writing it on {node_id} too would "
+                                  "make a second copy (reads would answer either value). Write without a node to "
+                                  "update it where it is, or move it (move / `shardsieve put --node "
+                                  f"{node_id} --move`): the new copy is written, then the old one deleted")
+            elsewhere = holders
         else:
             cands = (await self.shell.call(self.locate, [key], "write"))[0]
             hit, seen = await self._probe_get(key, cands, self.read_deadline_s)
@@ -227,7 +244,41 @@ class Router:
         if self.expire_hints is not None:
             await self.shell.call(self.expire_hints, now)
         await self.shell.call(lambda: self.hold_hint(key, target, ack.epoch, ack.sequence, now, old=old))
-        return routing_pb2.WriteReply(node_id=target, created=ack.created, epoch=ack.epoch, sequence=ack.sequence)
+        reply = routing_pb2.WriteReply(node_id=target, created=ack.created, epoch=ack.epoch, sequence=ack.sequence)
+        if elsewhere:
+            reply.moved_from.extend(await self._delete_old_copies(key, target, elsewhere, ack))
+        return reply
+
+    async def _holders(self, key: bytes, cands: list[Candidate]) -> tuple[list[str], list[ProbeResult]]:
+        """Every candidate that holds key (all probes awaited), and the ones that could not be asked."""
+        holders, failed = [], []
+        for arriving in self.prober.ask_all([(c.node_id, c.address) for c in cands], "Get",
+                                            storage_pb2.GetRequest(key=key), self.read_deadline_s):
+            r = await arriving
+            if not r.reached:
+                failed.append(r)
+            elif r.reply.found:
+                holders.append(r.node_id)
+        return sorted(holders), failed
+
+    async def _delete_old_copies(self, key: bytes, target: str, holders: list[str],
+                                 ack: storage_pb2.WriteAck) -> list[str]:
+        """The second half of a move: delete key from its old holders (the new copy is already
+        acknowledged, so no moment exists where no node holds it). A holder that cannot be
+        asked leaves the move unfinished: UNAVAILABLE says so; repeating the move finishes it."""
+        addresses = {n: (await self.shell.call(self._address, n))[0] or "" for n in holders}
+        deleted, failed = [], []
+        for arriving in self.prober.ask_all([(n, addresses[n]) for n in holders], "Delete",
+                                            storage_pb2.DeleteRequest(key=key), self.write_deadline_s):
+            r = await arriving
+            (deleted if r.reached else failed).append(r if not r.reached else r.node_id)
+        if failed:
+            names = "; ".join(r.describe_error() for r in failed)
+            raise RouterError(grpc.StatusCode.UNAVAILABLE,
+                              f"move of key {key[:64]!r} unfinished: written on {target} (epoch {ack.epoch}, sequence "
+                              f"{ack.sequence}) but the old copy could not be deleted ({names}); repeat the move once "
+                              "that node is reachable")
+        return sorted(deleted)
 
     def hold_hint(self, key: bytes, node_id: str, epoch: int, sequence: int, now: float,
                   old: tuple[int, int] | None = None) -> bool:
@@ -317,7 +368,7 @@ class RouterService:
     async def Write(self, request: routing_pb2.WriteRequest,
                     context: grpc.aio.ServicerContext) -> routing_pb2.WriteReply:
         return await self._run(context, lambda: self.router.write(  # type: ignore[return-value]
-            request.key, request.value, request.node_id))
+            request.key, request.value, request.node_id, request.move))
 
     async def Remove(self, request: routing_pb2.RemoveRequest,
                      context: grpc.aio.ServicerContext) -> routing_pb2.RemoveReply:

@@ -33,7 +33,7 @@ from typing import Any, Awaitable, Callable, Sequence
 import grpc
 
 from shardsieve.coordinator.shell import CoordinatorShell
-from shardsieve.limits import SyncLimits, check_node_message
+from shardsieve.limits import LIMIT_METADATA_KEY, SyncLimits, check_node_message
 from shardsieve.security import NodeAuthorizer, PeerIdentity, StreamAdmission, peer_address, peer_identity
 from shardsieve.stream_pump import STOPPING, Outbox, StreamEnd, StreamRefused, pump
 from shardsieve.sync.coordinator_side import NodeUnlisted, SnapshotInstall, StreamOpened, SyncEvent, SyncResult
@@ -140,6 +140,8 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
                                 grpc.StatusCode.PERMISSION_DENIED):   # those were logged where decided
                 log.warning("sync stream refused", extra={"node_id": stream.node_id, "peer": who.describe(),
                                                           "error": end.describe()})
+            if end.limit:   # structured, for the node to act on (shardsieve/limits.py)
+                context.set_trailing_metadata(((LIMIT_METADATA_KEY, end.limit),))
             await context.abort(end.code, end.details)
 
     def _no_hello(self, stream: _Stream) -> None:

@@ -56,7 +56,7 @@ META_EPOCH = "epoch"        # highest epoch this node id ever used; every start 
 META_CAPACITY = "capacity"  # size of the last filter that every coordinator switched to
 META_FPR = "target_fpr"
 
-_LOG_LEVELS = {"info": logging.INFO, "warning": logging.WARNING}
+_LOG_LEVELS = {"info": logging.INFO, "warning": logging.WARNING, "error": logging.ERROR}
 
 
 class InvalidInput(ValueError):

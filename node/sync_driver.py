@@ -181,6 +181,8 @@ class SyncDriver:
             end = await pump(read=call.read, write=write, handle=handle, outbox=outbox, on_close=on_close,
                              name=f"sync-{self.address}")
             self._note_end(end)
+            if end.limit:   # the coordinator refused this node's filter by a setting of its own
+                await loop.run_in_executor(self.executor, self._refused, end.limit)
             return acked[0]
         except SyncError as exc:
             self.last_error = f"{type(exc).__name__}: {exc}"
@@ -207,6 +209,10 @@ class SyncDriver:
             # e.g. another stream for this node id took over at the coordinator; the detail names its peer
             log.warning("the coordinator ended this sync stream", extra={"coordinator": self.address,
                                                                          "detail": end.details})
+
+    def _refused(self, limit: str) -> None:
+        with self.core.sync_step(time.monotonic()) as sync:
+            sync.refused(self.peer, limit)
 
     def _receive(self, reply: sync_pb2.CoordinatorMessage) -> None:
         now = time.monotonic()

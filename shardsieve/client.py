@@ -248,9 +248,10 @@ class CoordinatorClient:
         from shardsieve.v1 import routing_pb2
         return self.call("Read", self.router.Read, routing_pb2.ReadRequest(key=key, deadline_ms=deadline_ms))
 
-    def write(self, key: bytes, value: bytes, node_id: str = "") -> Any:
+    def write(self, key: bytes, value: bytes, node_id: str = "", move: bool = False) -> Any:
         from shardsieve.v1 import routing_pb2
-        return self.call("Write", self.router.Write, routing_pb2.WriteRequest(key=key, value=value, node_id=node_id))
+        return self.call("Write", self.router.Write, routing_pb2.WriteRequest(key=key, value=value, node_id=node_id,
+                                                                              move=move))
 
     def remove(self, key: bytes) -> Any:
         from shardsieve.v1 import routing_pb2

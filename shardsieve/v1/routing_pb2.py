@@ -24,7 +24,7 @@ _sym_db = _symbol_database.Default()
 
 
 
-DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n\x1bshardsieve/v1/routing.proto\x12\rshardsieve.v1\"L\n\tCandidate\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\x0f\n\x07\x61\x64\x64ress\x18\x02 \x01(\t\x12\r\n\x05stale\x18\x03 \x01(\x08\x12\x0e\n\x06hinted\x18\x04 \x01(\x08\"\x1c\n\rLocateRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\";\n\x0bLocateReply\x12,\n\ncandidates\x18\x01 \x03(\x0b\x32\x18.shardsieve.v1.Candidate\"\"\n\x12LocateBatchRequest\x12\x0c\n\x04keys\x18\x01 \x03(\x0c\"?\n\x10LocateBatchReply\x12+\n\x07results\x18\x01 \x03(\x0b\x32\x1a.shardsieve.v1.LocateReply\"/\n\x0bReadRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\x12\x13\n\x0b\x64\x65\x61\x64line_ms\x18\x02 \x01(\r\"u\n\tReadReply\x12\r\n\x05\x66ound\x18\x01 \x01(\x08\x12\r\n\x05value\x18\x02 \x01(\x0c\x12\x0f\n\x07node_id\x18\x03 \x01(\t\x12\x0e\n\x06probes\x18\x04 \x01(\r\x12\x15\n\rwasted_probes\x18\x05 \x01(\r\x12\x12\n\ncandidates\x18\x06 \x01(\r\";\n\x0cWriteRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\x12\r\n\x05value\x18\x02 \x01(\x0c\x12\x0f\n\x07node_id\x18\x03 \x01(\t\"O\n\nWriteReply\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\x0f\n\x07\x63reated\x18\x02 \x01(\x08\x12\r\n\x05\x65poch\x18\x03 \x01(\x04\x12\x10\n\x08sequence\x18\x04 \x01(\x04\"\x1c\n\rRemoveRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\"\x1f\n\x0bRemoveReply\x12\x10\n\x08node_ids\x18\x01 \x03(\t2\xe2\x02\n\x06Router\x12\x42\n\x06Locate\x12\x1c.shardsieve.v1.LocateRequest\x1a\x1a.shardsieve.v1.LocateReply\x12Q\n\x0bLocateBatch\x12!.shardsieve.v1.LocateBatchRequest\x1a\x1f.shardsieve.v1.LocateBatchReply\x12<\n\x04Read\x12\x1a.shardsieve.v1.ReadRequest\x1a\x18.shardsieve.v1.ReadReply\x12?\n\x05Write\x12\x1b.shardsieve.v1.WriteRequest\x1a\x19.shardsieve.v1.WriteReply\x12\x42\n\x06Remove\x12\x1c.shardsieve.v1.RemoveRequest\x1a\x1a.shardsieve.v1.RemoveReplyb\x06proto3')
+DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n\x1bshardsieve/v1/routing.proto\x12\rshardsieve.v1\"L\n\tCandidate\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\x0f\n\x07\x61\x64\x64ress\x18\x02 \x01(\t\x12\r\n\x05stale\x18\x03 \x01(\x08\x12\x0e\n\x06hinted\x18\x04 \x01(\x08\"\x1c\n\rLocateRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\";\n\x0bLocateReply\x12,\n\ncandidates\x18\x01 \x03(\x0b\x32\x18.shardsieve.v1.Candidate\"\"\n\x12LocateBatchRequest\x12\x0c\n\x04keys\x18\x01 \x03(\x0c\"?\n\x10LocateBatchReply\x12+\n\x07results\x18\x01 \x03(\x0b\x32\x1a.shardsieve.v1.LocateReply\"/\n\x0bReadRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\x12\x13\n\x0b\x64\x65\x61\x64line_ms\x18\x02 \x01(\r\"u\n\tReadReply\x12\r\n\x05\x66ound\x18\x01 \x01(\x08\x12\r\n\x05value\x18\x02 \x01(\x0c\x12\x0f\n\x07node_id\x18\x03 \x01(\t\x12\x0e\n\x06probes\x18\x04 \x01(\r\x12\x15\n\rwasted_probes\x18\x05 \x01(\r\x12\x12\n\ncandidates\x18\x06 \x01(\r\"I\n\x0cWriteRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\x12\r\n\x05value\x18\x02 \x01(\x0c\x12\x0f\n\x07node_id\x18\x03 \x01(\t\x12\x0c\n\x04move\x18\x04 \x01(\x08\"c\n\nWriteReply\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\x0f\n\x07\x63reated\x18\x02 \x01(\x08\x12\r\n\x05\x65poch\x18\x03 \x01(\x04\x12\x10\n\x08sequence\x18\x04 \x01(\x04\x12\x12\n\nmoved_from\x18\x05 \x03(\t\"\x1c\n\rRemoveRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\"\x1f\n\x0bRemoveReply\x12\x10\n\x08node_ids\x18\x01 \x03(\t2\xe2\x02\n\x06Router\x12\x42\n\x06Locate\x12\x1c.shardsieve.v1.LocateRequest\x1a\x1a.shardsieve.v1.LocateReply\x12Q\n\x0bLocateBatch\x12!.shardsieve.v1.LocateBatchRequest\x1a\x1f.shardsieve.v1.LocateBatchReply\x12<\n\x04Read\x12\x1a.shardsieve.v1.ReadRequest\x1a\x18.shardsieve.v1.ReadReply\x12?\n\x05Write\x12\x1b.shardsieve.v1.WriteRequest\x1a\x19.shardsieve.v1.WriteReply\x12\x42\n\x06Remove\x12\x1c.shardsieve.v1.RemoveRequest\x1a\x1a.shardsieve.v1.RemoveReplyb\x06proto3')
 
 _globals = globals()
 _builder.BuildMessageAndEnumDescriptors(DESCRIPTOR, _globals)
@@ -46,13 +46,13 @@ if not _descriptor._USE_C_DESCRIPTORS:
   _globals['_READREPLY']._serialized_start=365
   _globals['_READREPLY']._serialized_end=482
   _globals['_WRITEREQUEST']._serialized_start=484
-  _globals['_WRITEREQUEST']._serialized_end=543
-  _globals['_WRITEREPLY']._serialized_start=545
-  _globals['_WRITEREPLY']._serialized_end=624
-  _globals['_REMOVEREQUEST']._serialized_start=626
-  _globals['_REMOVEREQUEST']._serialized_end=654
-  _globals['_REMOVEREPLY']._serialized_start=656
-  _globals['_REMOVEREPLY']._serialized_end=687
-  _globals['_ROUTER']._serialized_start=690
-  _globals['_ROUTER']._serialized_end=1044
+  _globals['_WRITEREQUEST']._serialized_end=557
+  _globals['_WRITEREPLY']._serialized_start=559
+  _globals['_WRITEREPLY']._serialized_end=658
+  _globals['_REMOVEREQUEST']._serialized_start=660
+  _globals['_REMOVEREQUEST']._serialized_end=688
+  _globals['_REMOVEREPLY']._serialized_start=690
+  _globals['_REMOVEREPLY']._serialized_end=721
+  _globals['_ROUTER']._serialized_start=724
+  _globals['_ROUTER']._serialized_end=1078
 # @@protoc_insertion_point(module_scope)

@@ -67,26 +67,30 @@ class ReadReply(_message.Message):
     def __init__(self, found: _Optional[bool] = ..., value: _Optional[bytes] = ..., node_id: _Optional[str] = ..., probes: _Optional[int] = ..., wasted_probes: _Optional[int] = ..., candidates: _Optional[int] = ...) -> None: ...
 
 class WriteRequest(_message.Message):
-    __slots__ = ("key", "value", "node_id")
+    __slots__ = ("key", "value", "node_id", "move")
     KEY_FIELD_NUMBER: _ClassVar[int]
     VALUE_FIELD_NUMBER: _ClassVar[int]
     NODE_ID_FIELD_NUMBER: _ClassVar[int]
+    MOVE_FIELD_NUMBER: _ClassVar[int]
     key: bytes
     value: bytes
     node_id: str
-    def __init__(self, key: _Optional[bytes] = ..., value: _Optional[bytes] = ..., node_id: _Optional[str] = ...) -> None: ...
+    move: bool
+    def __init__(self, key: _Optional[bytes] = ..., value: _Optional[bytes] = ..., node_id: _Optional[str] = ..., move: _Optional[bool] = ...) -> None: ...
 
 class WriteReply(_message.Message):
-    __slots__ = ("node_id", "created", "epoch", "sequence")
+    __slots__ = ("node_id", "created", "epoch", "sequence", "moved_from")
     NODE_ID_FIELD_NUMBER: _ClassVar[int]
     CREATED_FIELD_NUMBER: _ClassVar[int]
     EPOCH_FIELD_NUMBER: _ClassVar[int]
     SEQUENCE_FIELD_NUMBER: _ClassVar[int]
+    MOVED_FROM_FIELD_NUMBER: _ClassVar[int]
     node_id: str
     created: bool
     epoch: int
     sequence: int
-    def __init__(self, node_id: _Optional[str] = ..., created: _Optional[bool] = ..., epoch: _Optional[int] = ..., sequence: _Optional[int] = ...) -> None: ...
+    moved_from: _containers.RepeatedScalarFieldContainer[str]
+    def __init__(self, node_id: _Optional[str] = ..., created: _Optional[bool] = ..., epoch: _Optional[int] = ..., sequence: _Optional[int] = ..., moved_from: _Optional[_Iterable[str]] = ...) -> None: ...
 
 class RemoveRequest(_message.Message):
     __slots__ = ("key",)
