@@ -251,7 +251,10 @@ class Router:
 
     async def _holders(self, key: bytes, cands: list[Candidate]) -> tuple[list[str], list[ProbeResult]]:
         """Every candidate that holds key (all probes awaited), and the ones that could not be asked."""
-        holders, failed = [], []
+        holders: list[str] = []
+        failed: list[ProbeResult] = []
+        if not cands:
+            return holders, failed
         for arriving in self.prober.ask_all([(c.node_id, c.address) for c in cands], "Get",
                                             storage_pb2.GetRequest(key=key), self.read_deadline_s):
             r = await arriving
