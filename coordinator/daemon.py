@@ -89,7 +89,7 @@ class CoordinatorDaemon:
         node_tokens = self._secrets["node-token"]
         self.node_auth = "certificate" if settings.tls_client_auth else "token" if node_tokens else "open"
         self.node_authorizer = security.NodeAuthorizer(self.node_auth, node_tokens)
-        self.sync = SyncService(shell, clock=clock, delta_bytes=self.metrics.delta_bytes.inc, authorizer=self.node_authorizer,
+        self.sync = SyncService(shell, clock=clock, authorizer=self.node_authorizer,
                                 admission=security.StreamAdmission(max_streams=settings.max_sync_streams,
                                                                    max_pending=settings.max_pending_streams,
                                                                    max_per_peer=settings.max_streams_per_peer),

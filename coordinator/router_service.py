@@ -36,6 +36,8 @@ from shardsieve.v1 import routing_pb2, storage_pb2
 
 log = logging.getLogger("shardsieve.coordinator.router")
 
+# Kinds of candidate lookups counted as lookups (metrics): reads and locates, never a write's probes.
+LOOKUP_KINDS = frozenset({"locate", "read"})
 MAX_BATCH_KEYS = 100_000
 MAX_KEY_BYTES = 64 * 1024
 MAX_VALUE_BYTES = 16 << 20
@@ -107,7 +109,7 @@ class Router:
         for i, key in enumerate(keys):
             _check_key(key, f"key #{i}", self.max_key_bytes)
         result = self.candidates.find(keys, self.clock()).rows()
-        if self.metrics is not None:
+        if self.metrics is not None and kind in LOOKUP_KINDS:   # a write's or a remove's probes are not lookups
             self.metrics.observe_locate(kind, [len(c) for c in result])  # type: ignore[attr-defined]
         return result
 
@@ -137,9 +139,10 @@ class Router:
         with self.shell.lock:
             self.accounting.record_read(outcomes)
 
-    async def _probe_get(self, key: bytes, cands: list[Candidate],
-                         deadline_s: float) -> tuple[ProbeResult | None, list[ProbeResult]]:
-        """Ask every candidate for key; return (first hit or None, results known so far)."""
+    async def _probe_get(self, key: bytes, cands: list[Candidate], deadline_s: float,
+                         as_read: bool = True) -> tuple[ProbeResult | None, list[ProbeResult]]:
+        """Ask every candidate for key; return (first hit or None, results known so far). A read's
+        probes feed the false-positive accounting; a write's (as_read=False) only the probe metrics."""
         indexed = await self.shell.call(self._indexed)
         listed = {c.node_id: c for c in cands}
 
@@ -154,7 +157,8 @@ class Router:
                                              reached=r is not None and r.reached))
             for node_id in indexed - listed.keys():
                 outcomes.append(ProbeOutcome(node_id, consulted=True, listed_by_filter=False, probed=False))
-            self._spawn(self.shell.call(self._record, outcomes))
+            if as_read:
+                self._spawn(self.shell.call(self._record, outcomes))
             if self.metrics is not None:
                 self.metrics.observe_probes(results)  # type: ignore[attr-defined]
 
@@ -222,7 +226,7 @@ class Router:
             elsewhere = holders
         else:
             cands = (await self.shell.call(self.locate, [key], "write"))[0]
-            hit, seen = await self._probe_get(key, cands, self.read_deadline_s)
+            hit, seen = await self._probe_get(key, cands, self.read_deadline_s, as_read=False)
             if hit is not None:
                 target = hit.node_id
             else:
@@ -338,13 +342,27 @@ class RouterService:
         self.router = router
         self.encoder = encoder or ReplyEncoder()
 
-    async def _run(self, context: grpc.aio.ServicerContext, fn: Callable[[], Awaitable[object]]) -> object:
+    async def _run(self, method: str, context: grpc.aio.ServicerContext,
+                   fn: Callable[[], Awaitable[object]]) -> object:
+        """Answer one call; its time and any error code go to the metrics (rpc_duration_seconds,
+        rpc_errors_total by code)."""
+        started = time.perf_counter()
+        code: grpc.StatusCode | None = None
         try:
             return await fn()
         except RouterError as exc:
+            code = exc.code
             await context.abort(exc.code, exc.message)
         except OverflowError as exc:
-            await context.abort(grpc.StatusCode.RESOURCE_EXHAUSTED, str(exc))
+            code = grpc.StatusCode.RESOURCE_EXHAUSTED
+            await context.abort(code, str(exc))
+        except Exception:
+            code = grpc.StatusCode.INTERNAL   # grpc answers INTERNAL for an unexpected exception
+            raise
+        finally:
+            if self.router.metrics is not None:
+                self.router.metrics.observe_rpc(  # type: ignore[attr-defined]
+                    method, time.perf_counter() - started, code.name if code else None)
         raise AssertionError("unreachable")
 
     # Locate and LocateBatch answer with LocateReply / LocateBatchReply already in protobuf wire
@@ -357,25 +375,26 @@ class RouterService:
         return self.encoder.locate_batch_reply(self.router.locate_lists(keys))
 
     async def Locate(self, request: routing_pb2.LocateRequest, context: grpc.aio.ServicerContext) -> bytes:
-        return await self._run(context, lambda: self.router.shell.call(  # type: ignore[return-value]
+        return await self._run("Locate", context, lambda: self.router.shell.call(  # type: ignore[return-value]
             self.locate_reply, request.key))
 
     async def LocateBatch(self, request: routing_pb2.LocateBatchRequest, context: grpc.aio.ServicerContext) -> bytes:
         keys = list(request.keys)
-        return await self._run(context, lambda: self.router.shell.call(  # type: ignore[return-value]
+        return await self._run("LocateBatch", context, lambda: self.router.shell.call(  # type: ignore[return-value]
             self.locate_batch_reply, keys, off_loop=len(keys) >= OFF_LOOP_KEYS))
 
     async def Read(self, request: routing_pb2.ReadRequest, context: grpc.aio.ServicerContext) -> routing_pb2.ReadReply:
-        return await self._run(context, lambda: self.router.read(request.key, request.deadline_ms))  # type: ignore[return-value]
+        return await self._run("Read", context,  # type: ignore[return-value]
+                               lambda: self.router.read(request.key, request.deadline_ms))
 
     async def Write(self, request: routing_pb2.WriteRequest,
                     context: grpc.aio.ServicerContext) -> routing_pb2.WriteReply:
-        return await self._run(context, lambda: self.router.write(  # type: ignore[return-value]
+        return await self._run("Write", context, lambda: self.router.write(  # type: ignore[return-value]
             request.key, request.value, request.node_id, request.move))
 
     async def Remove(self, request: routing_pb2.RemoveRequest,
                      context: grpc.aio.ServicerContext) -> routing_pb2.RemoveReply:
-        return await self._run(context, lambda: self.router.remove(request.key))  # type: ignore[return-value]
+        return await self._run("Remove", context, lambda: self.router.remove(request.key))  # type: ignore[return-value]
 
 
 def _passthrough(serialize: Callable[[object], bytes]) -> Callable[[object], bytes]:

@@ -40,32 +40,32 @@ class NodeCollector(Collector):
 
         yield gauge("shardsieve_node_ready", "1 once the filter is loaded from the store", 1)
         yield gauge("shardsieve_node_keys", "Keys in the store (and the filter)", s["key_count"])
-        yield gauge("shardsieve_node_capacity", "Keys the filter is sized for", s["capacity"])
+        yield gauge("shardsieve_node_capacity_keys", "Keys the filter is sized for", s["capacity"])
         yield gauge("shardsieve_node_filter_bits", "Filter size m in bits", s["geometry"].bits)
         yield gauge("shardsieve_node_filter_hashes", "Filter hash count k", s["geometry"].hashes)
-        yield gauge("shardsieve_node_fill", "Fraction of filter bits set", s["fill"])
-        yield gauge("shardsieve_node_predicted_fpr", "Predicted false-positive rate fill^k", s["predicted_fpr"])
+        yield gauge("shardsieve_node_fill_ratio", "Fraction of filter bits set", s["fill"])
+        yield gauge("shardsieve_node_predicted_false_positive_ratio", "Predicted false-positive rate fill^k", s["predicted_fpr"])
         yield gauge("shardsieve_node_epoch", "Filter epoch", s["epoch"])
         yield gauge("shardsieve_node_sequence", "Last cut delta sequence of the epoch", s["sequence"])
         yield gauge("shardsieve_node_saturated_counters", "Counters pinned at 15", s["saturated_counters"])
         yield counter("shardsieve_node_reads", "Keys read", s["reads"])
-        yield counter("shardsieve_node_wasted_probes", "Reads that found nothing", s["reads_missed"])
+        yield counter("shardsieve_node_reads_not_found", "Reads that found nothing (a wasted probe when a coordinator sent it)", s["reads_missed"])
         yield counter("shardsieve_node_writes", "Keys written (puts)", s["writes"])
         yield counter("shardsieve_node_deletes", "Keys deleted (requests)", s["deletes"])
-        yield counter("shardsieve_node_bytes_pushed", "Delta and snapshot bytes sent to coordinators",
+        yield counter("shardsieve_node_sync_sent_bytes", "Delta and snapshot bytes sent to coordinators",
                       s["bytes_pushed"])
         rebuilds = CounterMetricFamily("shardsieve_node_rebuilds", "Filter rebuilds by outcome",
                                        labels=["node", "outcome"])
         rebuilds.add_metric([node, "completed"], float(s["rebuilds_completed"]))
         rebuilds.add_metric([node, "abandoned"], float(s["rebuilds_abandoned"]))
         yield rebuilds
-        yield gauge("shardsieve_node_rebuild_progress", "Rebuild progress 0..1 (0 when idle)", s["rebuild_progress"])
-        lag = GaugeMetricFamily("shardsieve_node_coordinator_lag", "Sequences cut but not acknowledged",
+        yield gauge("shardsieve_node_rebuild_progress_ratio", "Rebuild progress 0..1 (0 when idle)", s["rebuild_progress"])
+        lag = GaugeMetricFamily("shardsieve_node_coordinator_lag_sequences", "Sequences cut but not acknowledged",
                                 labels=["node", "coordinator"])
         connected = GaugeMetricFamily("shardsieve_node_coordinator_connected", "1 while the stream is open",
                                       labels=["node", "coordinator"])
         acks = CounterMetricFamily("shardsieve_node_coordinator_acks", "Acks received", labels=["node", "coordinator"])
-        reconnects = CounterMetricFamily("shardsieve_node_coordinator_reconnects", "Stream (re)connects",
+        reconnects = CounterMetricFamily("shardsieve_node_coordinator_connects", "Stream (re)connects",
                                          labels=["node", "coordinator"])
         for driver in self.drivers():
             d = driver.status()

@@ -133,7 +133,7 @@ def test_a_new_epoch_restarts_the_observed_fpr() -> None:
     feed.snapshot(T0)
     counters = state.readings.node("node-wrack-3", T0).counters
     assert (counters.false_positives, counters.lookups_checked, counters.wasted_probes) == (0, 0, 10)
-    assert metrics.registry.get_sample_value("shardsieve_coordinator_snapshots_total") == 2   # first + new epoch
+    assert metrics.registry.get_sample_value("shardsieve_coordinator_snapshots_installed_total") == 2   # first + new epoch
 
 
 # ----------------------------------------------------------------------------- readings
@@ -185,7 +185,7 @@ def test_the_monitor_pass_flags_asks_for_a_rebuild_and_sees_it_done() -> None:
     (request,) = sent.messages
     assert request.node_id == "node-wrack-1" and request.rebuild.capacity == 2000   # growth 2 x 1000 keys
     assert state.readings.fleet(T0).rebuilds_in_progress == 1
-    assert metrics.registry.get_sample_value("shardsieve_coordinator_rebuilds_total", {"action": "rebuild"}) == 1
+    assert metrics.registry.get_sample_value("shardsieve_coordinator_rebuild_requests_total", {"action": "rebuild"}) == 1
     assert state.readings.node("node-wrack-1", T0).state == "rebuilding"
     ops.tick()                                            # still in flight: nothing new
     assert len(ops.decisions()) == 2 and len(sent.messages) == 1
