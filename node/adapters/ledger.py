@@ -29,7 +29,7 @@ from typing import Sequence
 from sortedcontainers import SortedList
 
 from shardsieve.node.adapters.meta import MetaFile
-from shardsieve.node.store import ExternalStore, KeyLedger, SqliteStore
+from shardsieve.node.store import ExternalStore, KeyLedger, SqliteStore, StoreError, StoreUnavailable
 
 LEDGER_DIR = "ledger"
 META_FILE = "agent-state.json"
@@ -37,6 +37,8 @@ META_FILE = "agent-state.json"
 
 class MemoryKeyLedger:
     """Keys in a SortedList; meta in a MetaFile (or in memory when no path is given: tests)."""
+
+    durable = False   # the keys are gone after a restart: every start lists the store
 
     def __init__(self, meta_path: Path | None = None) -> None:
         self._keys = SortedList()
@@ -123,6 +125,8 @@ class SqliteKeyLedger(SqliteStore):
     position is confirmed to the store only after the ledger commit that covers it, so a
     power loss cannot lose a change the store already forgot."""
 
+    durable = True
+
     def __init__(self, data_dir: Path) -> None:
         super().__init__(Path(data_dir), sync_level="full")
 
@@ -154,10 +158,16 @@ class AgentStore:
         self.external = external
 
     def get(self, key: bytes) -> bytes | None:
-        return self.external.get_many([key])[0]
+        return self.get_many([key])[0]
 
     def get_many(self, keys: Sequence[bytes]) -> list[bytes | None]:
-        return self.external.get_many(keys)
+        try:
+            return self.external.get_many(keys)
+        except StoreError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - the driver's error (redis, psycopg2), named in the message
+            raise StoreUnavailable(f"{self.external.url} did not answer the probe: {type(exc).__name__}: "
+                                   f"{exc}") from None
 
     def put_many(self, items: Sequence[tuple[bytes, bytes]]) -> list[bool]:
         return self.ledger.put_many(items)
