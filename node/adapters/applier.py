@@ -132,17 +132,31 @@ class FeedCounters:
 
 def coalesce(events: Sequence[FeedEvent]) -> list[FeedEvent]:
     """Merge runs of KeysAdded (or KeysRemoved) into one event, keeping order and the last
-    position: applying a run at once changes nothing about which keys end up counted."""
+    position: applying a run at once changes nothing about which keys end up counted.
+    Linear in the keys (a run is gathered in one list, not re-copied per event)."""
     out: list[FeedEvent] = []
+    run: list[bytes] = []
+    run_kind: type | None = None
+    run_position: int | None = None
+
+    def close_run() -> None:
+        if run_kind is not None:
+            out.append(run_kind(tuple(run), run_position))
+
     for event in events:
-        last = out[-1] if out else None
-        if isinstance(event, KeysAdded) and isinstance(last, KeysAdded):
-            out[-1] = KeysAdded(last.keys + event.keys, event.position if event.position is not None else last.position)
-        elif isinstance(event, KeysRemoved) and isinstance(last, KeysRemoved):
-            out[-1] = KeysRemoved(last.keys + event.keys,
-                                  event.position if event.position is not None else last.position)
+        kind = type(event) if isinstance(event, (KeysAdded, KeysRemoved)) else None
+        if kind is not None and kind is run_kind:
+            run.extend(event.keys)   # type: ignore[union-attr]
+            if event.position is not None:   # type: ignore[union-attr]
+                run_position = event.position   # type: ignore[union-attr]
+            continue
+        close_run()
+        if kind is not None:
+            run, run_kind, run_position = list(event.keys), kind, event.position   # type: ignore[union-attr]
         else:
+            run, run_kind, run_position = [], None, None
             out.append(event)
+    close_run()
     return out
 
 
