@@ -299,14 +299,30 @@ class NodeCore:
         keys = self.check_delete(keys)
         return self._write("delete", keys) if keys else []
 
+    def write_checked(self, kind: str, payload: list) -> list[bool]:
+        """Commit a write whose caller already checked it ("put": [(key, value)] as bytes,
+        "delete": [key]) and return the per-item flags (put: the key was new; delete: it
+        existed): an agent's feed, whose non-empty keys come from its own store
+        (node/adapters/applier.py). Skips the per-item checks and results of put_many."""
+        self.require_ready()
+        if not payload:
+            return []
+        op = self._commit(kind, payload)
+        if op.error is not None:
+            raise op.error
+        return op.result
+
     def _write(self, kind: str, payload: list) -> list[WriteResult]:
+        return self._commit(kind, payload).results()
+
+    def _commit(self, kind: str, payload: list) -> PendingWrite:
         """Queue the op and commit the queue unless a commit already took it (group commit:
         writers that queued behind a commit in progress share the next one)."""
         op = self.queue_write(kind, payload)
         with self.lock:
             if not op.done:
                 self.commit_queued()
-        return op.results()
+        return op
 
     def queue_write(self, kind: str, payload: list,
                     on_done: Callable[[PendingWrite], None] | None = None) -> PendingWrite:

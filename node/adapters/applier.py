@@ -103,14 +103,11 @@ class NodeCoreSink:
         self.core = core
 
     def add(self, keys: Sequence[bytes]) -> int:
-        batch = self.core.limits.max_batch
-        return sum(r.created for i in range(0, len(keys), batch)
-                   for r in self.core.put_many([(k, b"") for k in keys[i:i + batch]]))
+        # Keys come from the store, non-empty (the applier drops empty ones): no per-key check.
+        return sum(self.core.write_checked("put", [(k, b"") for k in keys]))
 
     def remove(self, keys: Sequence[bytes]) -> int:
-        batch = self.core.limits.max_batch
-        return sum(r.created for i in range(0, len(keys), batch)
-                   for r in self.core.delete_many(list(keys[i:i + batch])))
+        return sum(self.core.write_checked("delete", list(keys)))
 
     def stamp(self) -> WriteStamp:
         """The position whose state holds every change recorded so far (NodeSync.record
