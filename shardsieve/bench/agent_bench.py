@@ -14,6 +14,8 @@ side by side in one run:
 - change -> routable: a key written at a random phase of the agent's push timer, then the time
   until the coordinator's Locate lists the agent for it (not as stale); p50 and p99 (target:
   p99 <= push interval + 100 ms, docs/architecture.md#3-bounded-staleness);
+- the agent process's CPU time per key absorbed (/proc/PID/stat, proc(5)): its hot path's
+  cost, which the shared machine's load does not blur as it blurs rates;
 - memory: the agent process's resident set growth per key absorbed (/proc/PID/status VmRSS,
   proc(5)), beside the ledger's own figure: tracemalloc over a MemoryKeyLedger holding the
   same keys (Redis), or the SQLite ledger's file bytes per key (PostgreSQL).
@@ -55,6 +57,12 @@ def _rss_bytes(pid: int) -> int:
     raise RuntimeError(f"no VmRSS for process {pid}")
 
 
+def _cpu_seconds(pid: int) -> float:
+    """User + system CPU time of a process, all threads (proc(5): /proc/PID/stat fields 14, 15)."""
+    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
 def _counted(metrics_port: int) -> float:
     from shardsieve.testing.agent_oracle import scrape
 
@@ -73,15 +81,18 @@ def _wait_counted(metrics_port: int, target: float, timeout: float) -> float:
         time.sleep(0.01)
 
 
-def _absorb(write_all: Callable[[], None], metrics_port: int, n: int) -> dict[str, float]:
-    """Write n new keys into the watched store; time until the agent counted them all."""
+def _absorb(write_all: Callable[[], None], metrics_port: int, pid: int, n: int) -> dict[str, float]:
+    """Write n new keys into the watched store; time until the agent counted them all, and the
+    CPU time the agent process spent meanwhile (its cost per key, whatever else runs)."""
     base = _counted(metrics_port)
+    cpu0 = _cpu_seconds(pid)
     t0 = time.perf_counter()
     write_all()
     written = time.perf_counter()
     done = _wait_counted(metrics_port, base + n, timeout=max(120.0, 20 * (written - t0)))
+    cpu = _cpu_seconds(pid) - cpu0
     return {"absorbed_keys_per_s": n / (done - t0), "writer_keys_per_s_while_absorbing": n / (written - t0),
-            "absorb_lag_after_last_write_ms": (done - written) * 1000.0}
+            "absorb_lag_after_last_write_ms": (done - written) * 1000.0, "agent_cpu_us_per_key": cpu / n * 1e6}
 
 
 def _routable_latency(write_one: Callable[[bytes], None], router: Any, agent: str, writes: int,
@@ -149,7 +160,7 @@ def measure_redis(cluster: Any, server: Any, metrics_port: int, n: int, writes: 
     log(f"  accepted by Redis (database 1, not watched): {accept:,.0f} keys/s")
     pid = cluster.node_process(AGENT_REDIS).pid
     rss0 = _rss_bytes(pid)
-    out = _absorb(pipelined(watched, run), metrics_port, n)
+    out = _absorb(pipelined(watched, run), metrics_port, pid, n)
     rss1 = _rss_bytes(pid)
     out.update({"accept_keys_per_s": accept, "absorbed_vs_accept": out["absorbed_keys_per_s"] / accept,
                 "rss_bytes_per_key": (rss1 - rss0) / n,
@@ -158,7 +169,8 @@ def measure_redis(cluster: Any, server: Any, metrics_port: int, n: int, writes: 
     log(f"  absorbed by the agent (database 0): {out['absorbed_keys_per_s']:,.0f} keys/s = "
         f"{out['absorbed_vs_accept']:.2f} of the accept rate (writer meanwhile "
         f"{out['writer_keys_per_s_while_absorbing']:,.0f} keys/s; last key counted "
-        f"{out['absorb_lag_after_last_write_ms']:.0f} ms after the last write)")
+        f"{out['absorb_lag_after_last_write_ms']:.0f} ms after the last write; agent CPU "
+        f"{out['agent_cpu_us_per_key']:.1f} us per key)")
     log(f"  memory per key ({out['key_bytes']}-byte keys): agent RSS +{out['rss_bytes_per_key']:.0f} B; "
         f"the memory ledger alone {out['ledger_bytes_per_key']:.0f} B")
     out.update(_routable_latency(lambda key: watched.set(key, VALUE), cluster.router(), AGENT_REDIS, writes,
@@ -206,7 +218,7 @@ def measure_postgres(cluster: Any, pg: Any, state_dir: Path, metrics_port: int, 
     rss0 = _rss_bytes(pid)
     ledger_dir = state_dir / "ledger"
     disk0 = sum(f.stat().st_size for f in ledger_dir.iterdir())
-    out = _absorb(inserts("harvest", run), metrics_port, n)
+    out = _absorb(inserts("harvest", run), metrics_port, pid, n)
     rss1 = _rss_bytes(pid)
     disk1 = sum(f.stat().st_size for f in ledger_dir.iterdir())
     out.update({"accept_keys_per_s": accept, "absorbed_vs_accept": out["absorbed_keys_per_s"] / accept,
@@ -214,7 +226,8 @@ def measure_postgres(cluster: Any, pg: Any, state_dir: Path, metrics_port: int, 
                 "key_bytes": len(_key(run, 0))})
     log(f"  absorbed by the agent: {out['absorbed_keys_per_s']:,.0f} rows/s = {out['absorbed_vs_accept']:.2f} of "
         f"the accept rate (writer meanwhile {out['writer_keys_per_s_while_absorbing']:,.0f} rows/s; last key "
-        f"counted {out['absorb_lag_after_last_write_ms']:.0f} ms after the last commit)")
+        f"counted {out['absorb_lag_after_last_write_ms']:.0f} ms after the last commit; agent CPU "
+        f"{out['agent_cpu_us_per_key']:.1f} us per key)")
     log(f"  memory per key ({out['key_bytes']}-byte keys): agent RSS +{out['rss_bytes_per_key']:.0f} B; "
         f"the SQLite ledger on disk +{out['ledger_disk_bytes_per_key']:.0f} B")
 
