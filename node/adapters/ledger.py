@@ -22,6 +22,7 @@ writes and meta are the ledger's and whose point reads (probes) go to the extern
 
 from __future__ import annotations
 
+import sqlite3
 import threading
 from pathlib import Path
 from typing import Sequence
@@ -132,6 +133,42 @@ class SqliteKeyLedger(SqliteStore):
 
     def clear(self) -> None:
         self._transaction(lambda conn: conn.execute("DELETE FROM kv"))
+
+    # Set-wise writes: one lookup per 500 keys, then one executemany, instead of a SELECT and
+    # an INSERT (or DELETE) per key. The flags are the same: inside the transaction only this
+    # writer changes the table, and a key repeated in a batch is new (or present) once.
+    @staticmethod
+    def _present(conn: sqlite3.Connection, keys: Sequence[bytes]) -> set[bytes]:
+        found: set[bytes] = set()
+        distinct = list(dict.fromkeys(keys))
+        for start in range(0, len(distinct), 500):
+            part = distinct[start:start + 500]
+            marks = ",".join("?" * len(part))
+            found.update(bytes(r[0]) for r in conn.execute(f"SELECT key FROM kv WHERE key IN ({marks})", part))
+        return found
+
+    @staticmethod
+    def _put_rows(conn: sqlite3.Connection, items: Sequence[tuple[bytes, bytes]]) -> list[bool]:
+        keys = [bytes(k) for k, _ in items]
+        seen = SqliteKeyLedger._present(conn, keys)
+        created = []
+        for key in keys:
+            created.append(key not in seen)
+            seen.add(key)
+        conn.executemany("INSERT INTO kv(key, value) VALUES (?, x'')",
+                         [(k,) for k, new in zip(keys, created) if new])
+        return created
+
+    @staticmethod
+    def _delete_rows(conn: sqlite3.Connection, keys: Sequence[bytes]) -> list[bool]:
+        keys = [bytes(k) for k in keys]
+        present = SqliteKeyLedger._present(conn, keys)
+        existed = []
+        for key in keys:
+            existed.append(key in present)
+            present.discard(key)
+        conn.executemany("DELETE FROM kv WHERE key = ?", [(k,) for k, was in zip(keys, existed) if was])
+        return existed
 
 
 def open_ledger(kind: str, state_dir: Path | None) -> KeyLedger:
