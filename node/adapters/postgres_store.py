@@ -468,7 +468,7 @@ class PostgresFeed:
         cur.start_replication(slot_name=self.origin, decode=False, status_interval=5,
                               options={"proto_version": "1", "publication_names": store.publication,
                                        "messages": "true"})
-        pending: list[FeedEvent] = []
+        pending = _Transaction()
         skipping = False
         while not self._stop.is_set():
             msg = cur.read_message()
@@ -476,18 +476,23 @@ class PostgresFeed:
                 self._send_confirmed(cur)
                 select.select([cur], [], [], 0.1)
                 continue
-            decoded = pgoutput.decode(msg.payload)
+            payload = msg.payload
+            if self._relation is not None:
+                # Nearly every message of a busy table: its key only, the other columns unread.
+                value = pgoutput.insert_value(payload, self._relation, self._key_index)
+                if value is not pgoutput.NOT_THIS:
+                    if not skipping and isinstance(value, bytes):
+                        pending.add(store.key_from_text(value))
+                    continue
+            decoded = pgoutput.decode(payload)
             if isinstance(decoded, pgoutput.Begin):
-                pending = []
+                pending = _Transaction()
                 skipping = decoded.final_lsn < self._delivered   # delivered before a reconnect
             elif isinstance(decoded, pgoutput.Commit):
                 if not skipping:
-                    # The last event carries the position (a transaction without changes of the
-                    # table still moves the slot on, so it never holds WAL for other tables).
-                    last = pending.pop() if pending else KeysAdded(())
-                    self._emit(*pending, _at(last, decoded.end_lsn))
+                    self._emit(*pending.events_at(decoded.end_lsn))
                 self._delivered = max(self._delivered, decoded.end_lsn)
-                pending = []
+                pending = _Transaction()
             elif isinstance(decoded, pgoutput.Relation):
                 self._on_relation(decoded)
             elif isinstance(decoded, pgoutput.LogicalMessage):
@@ -536,6 +541,37 @@ class PostgresFeed:
             if old is not None and new is not None and old != new:
                 return [KeysRemoved((old,)), KeysAdded((new,))]
         return []
+
+
+class _Transaction:
+    """The events of one transaction in order; a run of added keys is kept in one list."""
+
+    def __init__(self) -> None:
+        self.events: list[FeedEvent] = []
+        self.adds: list[bytes] = []
+
+    def add(self, key: bytes) -> None:
+        self.adds.append(key)
+
+    def extend(self, events: list[FeedEvent]) -> None:
+        for event in events:
+            if isinstance(event, KeysAdded) and event.position is None:
+                self.adds.extend(event.keys)
+            else:
+                self._close_run()
+                self.events.append(event)
+
+    def _close_run(self) -> None:
+        if self.adds:
+            self.events.append(KeysAdded(tuple(self.adds)))
+            self.adds = []
+
+    def events_at(self, position: int) -> list[FeedEvent]:
+        """The events with the commit's position on the last one (a transaction without changes
+        of the table still moves the slot on, so it never holds WAL for other tables)."""
+        self._close_run()
+        last = self.events.pop() if self.events else KeysAdded(())
+        return [*self.events, _at(last, position)]
 
 
 def _at(event: FeedEvent, position: int) -> FeedEvent:
