@@ -134,41 +134,45 @@ class SqliteKeyLedger(SqliteStore):
     def clear(self) -> None:
         self._transaction(lambda conn: conn.execute("DELETE FROM kv"))
 
-    # Set-wise writes: one lookup per 500 keys, then one executemany, instead of a SELECT and
-    # an INSERT (or DELETE) per key. The flags are the same: inside the transaction only this
-    # writer changes the table, and a key repeated in a batch is new (or present) once.
-    @staticmethod
-    def _present(conn: sqlite3.Connection, keys: Sequence[bytes]) -> set[bytes]:
-        found: set[bytes] = set()
-        distinct = list(dict.fromkeys(keys))
-        for start in range(0, len(distinct), 500):
-            part = distinct[start:start + 500]
-            marks = ",".join("?" * len(part))
-            found.update(bytes(r[0]) for r in conn.execute(f"SELECT key FROM kv WHERE key IN ({marks})", part))
-        return found
+    # Set-wise writes: one statement per 500 keys whose RETURNING clause names the rows it
+    # inserted (or deleted), instead of a SELECT and an INSERT (or DELETE) per key (SQLite docs,
+    # "The RETURNING Clause", SQLite 3.35 and later). Inside the transaction only this writer
+    # changes the table, and a key repeated in a batch is new (or present) once: its second
+    # row conflicts (or finds nothing) and is not returned.
+    CHUNK = 500
 
-    @staticmethod
-    def _put_rows(conn: sqlite3.Connection, items: Sequence[tuple[bytes, bytes]]) -> list[bool]:
+    @classmethod
+    def _put_rows(cls, conn: sqlite3.Connection, items: Sequence[tuple[bytes, bytes]]) -> list[bool]:
         keys = [bytes(k) for k, _ in items]
-        seen = SqliteKeyLedger._present(conn, keys)
-        created = []
-        for key in keys:
-            created.append(key not in seen)
-            seen.add(key)
-        conn.executemany("INSERT INTO kv(key, value) VALUES (?, x'')",
-                         [(k,) for k, new in zip(keys, created) if new])
-        return created
+        inserted: set[bytes] = set()
+        for start in range(0, len(keys), cls.CHUNK):
+            part = keys[start:start + cls.CHUNK]
+            rows = ",".join("(?, x'')" for _ in part)
+            inserted.update(bytes(r[0]) for r in conn.execute(
+                f"INSERT INTO kv(key, value) VALUES {rows} ON CONFLICT(key) DO NOTHING RETURNING key", part))
+        return cls._first_of(keys, inserted)
+
+    @classmethod
+    def _delete_rows(cls, conn: sqlite3.Connection, keys: Sequence[bytes]) -> list[bool]:
+        keys = [bytes(k) for k in keys]
+        deleted: set[bytes] = set()
+        for start in range(0, len(keys), cls.CHUNK):
+            part = keys[start:start + cls.CHUNK]
+            marks = ",".join("?" * len(part))
+            deleted.update(bytes(r[0]) for r in conn.execute(
+                f"DELETE FROM kv WHERE key IN ({marks}) RETURNING key", part))
+        return cls._first_of(keys, deleted)
 
     @staticmethod
-    def _delete_rows(conn: sqlite3.Connection, keys: Sequence[bytes]) -> list[bool]:
-        keys = [bytes(k) for k in keys]
-        present = SqliteKeyLedger._present(conn, keys)
-        existed = []
+    def _first_of(keys: list[bytes], changed: set[bytes]) -> list[bool]:
+        """Per key, True at its first occurrence when the statement changed its row."""
+        flags = []
         for key in keys:
-            existed.append(key in present)
-            present.discard(key)
-        conn.executemany("DELETE FROM kv WHERE key = ?", [(k,) for k, was in zip(keys, existed) if was])
-        return existed
+            hit = key in changed
+            flags.append(hit)
+            if hit:
+                changed.discard(key)
+        return flags
 
 
 def open_ledger(kind: str, state_dir: Path | None) -> KeyLedger:
