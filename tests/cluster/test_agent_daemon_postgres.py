@@ -177,3 +177,40 @@ def test_a_table_the_agent_cannot_follow_exits_4_with_one_line(pg: PostgresServe
     assert done.returncode == 4, done.stderr
     lines = done.stderr.strip().splitlines()
     assert len(lines) == 1 and "no_such_table" in lines[0]
+
+
+def test_mutual_tls_stats_and_an_operator_rebuild_work_as_for_a_node(pg: PostgresServer, db: str,
+                                                                      tmp_path: Path) -> None:
+    """Security, stats and rebuilds are the node's whatever the store: the agent serves and
+    syncs over mutual TLS with its own certificate (common name = its node id, docs/security.md),
+    refuses plaintext, reports its stats, and an operator's resize through the coordinator's
+    Admin API ends in a verified new epoch of the asked capacity with every row still routed."""
+    import grpc
+    from grpc_health.v1 import health_pb2, health_pb2_grpc
+
+    from shardsieve.cli.certs import make_dev_pki
+    from shardsieve.v1 import admin_pb2, storage_pb2
+
+    pki = tmp_path / "pki"
+    make_dev_pki(pki, ["node-1", AGENT])
+    url = pg.url(db, ROLE, table="harvest", key="tag", value="note")
+    with LocalCluster(tmp_path / "fleet", nodes=1, capacity=5000, tls_dir=pki, heartbeat_ms=200,
+                      extra_coordinator_args=["--auto-rebuild", "false"], agents={AGENT: ["--store", url]}) as cluster:
+        keys = sorted(str(r[0]).encode() for r in pg.execute("SELECT tag FROM harvest", dbname=db))
+        wait_until(lambda: not not_routed_to(cluster.router(), keys, AGENT), 20, message="rows routed over TLS")
+        read = cluster.router().Read(routing_pb2.ReadRequest(key=b"bed-7"), timeout=10)
+        assert read.found and read.value == b"sugar-kelp" and read.node_id == AGENT
+        with grpc.insecure_channel(cluster.node_handles[AGENT].address) as plain:
+            with pytest.raises(grpc.RpcError) as refused:
+                health_pb2_grpc.HealthStub(plain).Check(health_pb2.HealthCheckRequest(), timeout=3)
+        assert refused.value.code() == grpc.StatusCode.UNAVAILABLE          # no TLS, no answer
+        stats = cluster.storage(AGENT).Stats(storage_pb2.NodeStatsRequest(), timeout=5).stats
+        assert stats.key_count == len(keys) and stats.capacity == 5000
+
+        before = next(n for n in cluster.fleet_status().nodes if n.node_id == AGENT)
+        cluster.admin().Rebuild(admin_pb2.RebuildCommand(node_ids=[AGENT], capacity=20_000), timeout=10,
+                                metadata=cluster.auth_metadata())
+        after = cluster.wait_node_state(AGENT, lambda n: n.epoch > before.epoch and n.state == "fresh"
+                                        and n.capacity == 20_000, 30, "the resized epoch verified")
+        assert after.key_count == len(keys)
+        assert not not_routed_to(cluster.router(), keys, AGENT)
