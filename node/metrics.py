@@ -14,13 +14,16 @@ from prometheus_client.registry import Collector
 
 
 class NodeCollector(Collector):
-    def __init__(self, core: Any, drivers: Callable[[], Sequence[Any]]) -> None:
+    def __init__(self, core: Any, drivers: Callable[[], Sequence[Any]],
+                 feed: Callable[[], dict[str, float] | None] = lambda: None) -> None:
         self.core = core
         self.drivers = drivers
+        self.feed = feed      # an agent's feed figures (node/agent_daemon.py, FEED_METRICS)
 
     def collect(self) -> Iterable[Any]:
         core = self.core
         node = core.node_id
+        yield from self._feed_metrics(node)
         if not core.ready:
             g = GaugeMetricFamily("shardsieve_node_ready", "1 once the filter is loaded from the store", labels=["node"])
             g.add_metric([node], 0.0)
@@ -78,10 +81,35 @@ class NodeCollector(Collector):
         yield acks
         yield reconnects
 
+    def _feed_metrics(self, node: str) -> Iterable[Any]:
+        """An agent's feed (also while it lists the store before its filter exists)."""
+        figures = self.feed()
+        if not figures:
+            return
+        for name, (kind, doc) in FEED_METRICS.items():
+            family = GaugeMetricFamily if kind == "gauge" else CounterMetricFamily
+            metric = family(f"shardsieve_agent_{name}", doc, labels=["node"])
+            metric.add_metric([node], float(figures.get(name, 0.0)))
+            yield metric
 
-def start_metrics(core: Any, host: str, port: int, drivers: Callable[[], Sequence[Any]]) -> Any:
+
+#: An agent's feed figures: name -> (kind, help). The daemon's `_feed_figures` fills them.
+FEED_METRICS: dict[str, tuple[str, str]] = {
+    "feed_live": ("gauge", "1 while the store's change feed is live (0: listing, sweeping or broken: the "
+                           "agent holds its sync streams, so coordinators list it as stale)"),
+    "listings": ("counter", "Listings of the store (the first one and one after every feed break)"),
+    "feed_breaks": ("counter", "Feed breaks (subscription lost, server restarted, slot lost, key count differed)"),
+    "keys_counted": ("counter", "Keys the ledger took in (each counted once)"),
+    "keys_uncounted": ("counter", "Keys the ledger gave up (each uncounted once)"),
+    "keys_swept": ("counter", "Ledger keys a sweep found gone from the store"),
+    "rebuilds_after_break": ("counter", "Rebuilds under a new epoch requested after a feed break"),
+}
+
+
+def start_metrics(core: Any, host: str, port: int, drivers: Callable[[], Sequence[Any]],
+                  feed: Callable[[], dict[str, float] | None] = lambda: None) -> Any:
     """Serve /metrics on host:port from a private registry; returns the server (has .shutdown())."""
     registry = CollectorRegistry(auto_describe=False)
-    registry.register(NodeCollector(core, drivers))
+    registry.register(NodeCollector(core, drivers, feed))
     server, _thread = start_http_server(port, addr=host, registry=registry)
     return server

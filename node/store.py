@@ -50,6 +50,16 @@ class StoreError(RuntimeError):
     """The store could not be opened or a write failed (nothing of that write was applied)."""
 
 
+class StoreUnavailable(StoreError):
+    """A store the node does not own did not answer, or did not confirm a change in time.
+    Retrying may succeed (gRPC UNAVAILABLE)."""
+
+
+class StoreRefused(StoreError):
+    """A store the node does not own cannot hold this key or value; nothing was written
+    (gRPC INVALID_ARGUMENT)."""
+
+
 class Store(Protocol):
     """What the node needs from a key-value backend. Keys are bytes, ordered bytewise."""
 
@@ -90,6 +100,8 @@ class Store(Protocol):
 
 class KeyLedger(Store, Protocol):
     """An agent's exact set of counted keys (values are empty), listed in byte order."""
+
+    durable: bool   # True: the keys survive a restart (a resumable feed may continue onto them)
 
     def clear(self) -> None:
         """Forget every key in one transaction (only before the agent's filter exists)."""

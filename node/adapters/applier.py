@@ -103,14 +103,11 @@ class NodeCoreSink:
         self.core = core
 
     def add(self, keys: Sequence[bytes]) -> int:
-        batch = self.core.limits.max_batch
-        return sum(r.created for i in range(0, len(keys), batch)
-                   for r in self.core.put_many([(k, b"") for k in keys[i:i + batch]]))
+        # Keys come from the store, non-empty (the applier drops empty ones): no per-key check.
+        return sum(self.core.write_checked("put", [(k, b"") for k in keys]))
 
     def remove(self, keys: Sequence[bytes]) -> int:
-        batch = self.core.limits.max_batch
-        return sum(r.created for i in range(0, len(keys), batch)
-                   for r in self.core.delete_many(list(keys[i:i + batch])))
+        return sum(self.core.write_checked("delete", list(keys)))
 
     def stamp(self) -> WriteStamp:
         """The position whose state holds every change recorded so far (NodeSync.record
@@ -132,17 +129,31 @@ class FeedCounters:
 
 def coalesce(events: Sequence[FeedEvent]) -> list[FeedEvent]:
     """Merge runs of KeysAdded (or KeysRemoved) into one event, keeping order and the last
-    position: applying a run at once changes nothing about which keys end up counted."""
+    position: applying a run at once changes nothing about which keys end up counted.
+    Linear in the keys (a run is gathered in one list, not re-copied per event)."""
     out: list[FeedEvent] = []
+    run: list[bytes] = []
+    run_kind: type | None = None
+    run_position: int | None = None
+
+    def close_run() -> None:
+        if run_kind is not None:
+            out.append(run_kind(tuple(run), run_position))
+
     for event in events:
-        last = out[-1] if out else None
-        if isinstance(event, KeysAdded) and isinstance(last, KeysAdded):
-            out[-1] = KeysAdded(last.keys + event.keys, event.position if event.position is not None else last.position)
-        elif isinstance(event, KeysRemoved) and isinstance(last, KeysRemoved):
-            out[-1] = KeysRemoved(last.keys + event.keys,
-                                  event.position if event.position is not None else last.position)
+        kind = type(event) if isinstance(event, (KeysAdded, KeysRemoved)) else None
+        if kind is not None and kind is run_kind:
+            run.extend(event.keys)   # type: ignore[union-attr]
+            if event.position is not None:   # type: ignore[union-attr]
+                run_position = event.position   # type: ignore[union-attr]
+            continue
+        close_run()
+        if kind is not None:
+            run, run_kind, run_position = list(event.keys), kind, event.position   # type: ignore[union-attr]
         else:
+            run, run_kind, run_position = [], None, None
             out.append(event)
+    close_run()
     return out
 
 
@@ -150,7 +161,8 @@ class FeedApplier:
     """Applies one external store's feed to the agent's ledger and filter (see the module doc)."""
 
     def __init__(self, external: ExternalStore, ledger: KeyLedger, *, batch: int = 1000, poll_interval: float = 0.05,
-                 clock: Callable[[], float] = time.monotonic) -> None:
+                 clock: Callable[[], float] = time.monotonic,
+                 on_state: Callable[[FeedState], None] | None = None) -> None:
         self.external = external
         self.ledger = ledger
         self.batch = batch
@@ -172,6 +184,9 @@ class FeedApplier:
         self._thread: threading.Thread | None = None
         self.last_error: str = ""
         self.last_listing_reason: str = ""
+        # Told every state change, from the thread that made it (the daemon holds its sync
+        # streams while the state is not LIVE: docs/agents.md, "Staleness and the new epoch").
+        self.on_state = on_state
 
     # ------------------------------------------------------------------ views
     @property
@@ -179,19 +194,37 @@ class FeedApplier:
         with self._cond:
             return self._state
 
+    def _set_state(self, state: FeedState) -> None:
+        """Change the state, wake the waiters and tell `on_state`."""
+        with self._cond:
+            if self._state is state:
+                return
+            self._state = state
+            self._cond.notify_all()
+        if self.on_state is not None:
+            self.on_state(state)
+
     # ------------------------------------------------------------------ start-up
-    def catch_up(self, timeout: float = 600.0, cancel: threading.Event | None = None) -> None:
+    def catch_up(self, timeout: float = 600.0, cancel: threading.Event | None = None,
+                 progress: Callable[[int], None] | None = None) -> None:
         """Open the feed and fill the ledger: until the first listing is done, or, when the
         feed resumed where the ledger left off, until every change made so far is applied.
-        Call before NodeCore.load (which then scans the ledger)."""
-        origin = self.ledger.get_meta(META_FEED_ORIGIN)
+        Call before NodeCore.load (which then scans the ledger). `progress(keys counted)` is
+        called about once a second."""
+        # Resume only onto a ledger that kept its keys: a memory ledger starts empty, so the
+        # changes a slot replays would not be enough (every key before them would be missing).
+        origin = self.ledger.get_meta(META_FEED_ORIGIN) if self.ledger.durable else None
         self._feed = self.external.open_feed(origin if self.external.resumable else None)
         resumed = origin is not None and self._feed.origin == origin
         target = self._feed.mark() if resumed else None
         deadline = self.clock() + timeout
+        next_report = self.clock() + 1.0
         while True:
             if cancel is not None and cancel.is_set():
                 raise FeedTimeout("stopped while catching up with the store")
+            if progress is not None and self.clock() >= next_report:
+                progress(self.counters.keys_counted)
+                next_report = self.clock() + 1.0
             self._apply(self._feed.poll(self.poll_interval))
             with self._cond:
                 listed = self._state is FeedState.LIVE
@@ -200,8 +233,7 @@ class FeedApplier:
                 break
             if self.clock() > deadline:
                 raise FeedTimeout(f"the store's listing did not finish within {timeout}s (state {self.state})")
-        with self._cond:
-            self._state = FeedState.LIVE
+        self._set_state(FeedState.LIVE)
 
     def go_live(self, core: NodeCore, background: bool = True) -> None:
         """From now on apply through `core` (loaded from this ledger), on a background thread
@@ -283,8 +315,7 @@ class FeedApplier:
 
     def _relist(self, reason: str) -> None:
         """Close the feed and open a fresh one (its listing repairs the ledger in place)."""
-        with self._cond:
-            self._state = FeedState.BROKEN
+        self._set_state(FeedState.BROKEN)
         self.counters.breaks += 1
         if self._feed is not None:
             try:
@@ -343,8 +374,7 @@ class FeedApplier:
             self._listing_needs_sweep = False
         else:
             self._listing_needs_sweep = True
-        with self._cond:
-            self._state = FeedState.LISTING if live else FeedState.CATCHING_UP
+        self._set_state(FeedState.LISTING if live else FeedState.CATCHING_UP)
         log.info("listing the store", extra={"reason": event.reason, "store": self.external.url})
 
     def _on_listing_done(self) -> None:
@@ -353,8 +383,7 @@ class FeedApplier:
         self.ledger.set_meta({META_FEED_ORIGIN: self._feed.origin})
         if self._listing_needs_sweep:
             self._sweep_cursor = None
-            with self._cond:
-                self._state = FeedState.SWEEPING
+            self._set_state(FeedState.SWEEPING)
         else:
             self._enter_live()
 
@@ -373,8 +402,8 @@ class FeedApplier:
         self._sweep_cursor = keys[-1]
 
     def _enter_live(self) -> None:
+        self._set_state(FeedState.LIVE)
         with self._cond:
-            self._state = FeedState.LIVE
             waiting = bool(self._waiting)
         if waiting and self._feed is not None:
             # A mark issued now covers every write made before it: one committed before the
@@ -399,9 +428,8 @@ class FeedApplier:
     def _on_broken(self, event: FeedBroken) -> None:
         self.counters.breaks += 1
         self._tombstones = None
-        with self._cond:
-            if self._core_sink is not None:
-                self._state = FeedState.BROKEN
+        if self._core_sink is not None:
+            self._set_state(FeedState.BROKEN)
         self.last_error = event.reason
         log.warning("the store's change feed broke", extra={"reason": event.reason, "store": self.external.url})
 

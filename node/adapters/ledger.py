@@ -22,6 +22,7 @@ writes and meta are the ledger's and whose point reads (probes) go to the extern
 
 from __future__ import annotations
 
+import sqlite3
 import threading
 from pathlib import Path
 from typing import Sequence
@@ -29,7 +30,7 @@ from typing import Sequence
 from sortedcontainers import SortedList
 
 from shardsieve.node.adapters.meta import MetaFile
-from shardsieve.node.store import ExternalStore, KeyLedger, SqliteStore
+from shardsieve.node.store import ExternalStore, KeyLedger, SqliteStore, StoreError, StoreUnavailable
 
 LEDGER_DIR = "ledger"
 META_FILE = "agent-state.json"
@@ -37,6 +38,8 @@ META_FILE = "agent-state.json"
 
 class MemoryKeyLedger:
     """Keys in a SortedList; meta in a MetaFile (or in memory when no path is given: tests)."""
+
+    durable = False   # the keys are gone after a restart: every start lists the store
 
     def __init__(self, meta_path: Path | None = None) -> None:
         self._keys = SortedList()
@@ -123,11 +126,53 @@ class SqliteKeyLedger(SqliteStore):
     position is confirmed to the store only after the ledger commit that covers it, so a
     power loss cannot lose a change the store already forgot."""
 
+    durable = True
+
     def __init__(self, data_dir: Path) -> None:
         super().__init__(Path(data_dir), sync_level="full")
 
     def clear(self) -> None:
         self._transaction(lambda conn: conn.execute("DELETE FROM kv"))
+
+    # Set-wise writes: one statement per 500 keys whose RETURNING clause names the rows it
+    # inserted (or deleted), instead of a SELECT and an INSERT (or DELETE) per key (SQLite docs,
+    # "The RETURNING Clause", SQLite 3.35 and later). Inside the transaction only this writer
+    # changes the table, and a key repeated in a batch is new (or present) once: its second
+    # row conflicts (or finds nothing) and is not returned.
+    CHUNK = 500
+
+    @classmethod
+    def _put_rows(cls, conn: sqlite3.Connection, items: Sequence[tuple[bytes, bytes]]) -> list[bool]:
+        keys = [bytes(k) for k, _ in items]
+        inserted: set[bytes] = set()
+        for start in range(0, len(keys), cls.CHUNK):
+            part = keys[start:start + cls.CHUNK]
+            rows = ",".join("(?, x'')" for _ in part)
+            inserted.update(bytes(r[0]) for r in conn.execute(
+                f"INSERT INTO kv(key, value) VALUES {rows} ON CONFLICT(key) DO NOTHING RETURNING key", part))
+        return cls._first_of(keys, inserted)
+
+    @classmethod
+    def _delete_rows(cls, conn: sqlite3.Connection, keys: Sequence[bytes]) -> list[bool]:
+        keys = [bytes(k) for k in keys]
+        deleted: set[bytes] = set()
+        for start in range(0, len(keys), cls.CHUNK):
+            part = keys[start:start + cls.CHUNK]
+            marks = ",".join("?" * len(part))
+            deleted.update(bytes(r[0]) for r in conn.execute(
+                f"DELETE FROM kv WHERE key IN ({marks}) RETURNING key", part))
+        return cls._first_of(keys, deleted)
+
+    @staticmethod
+    def _first_of(keys: list[bytes], changed: set[bytes]) -> list[bool]:
+        """Per key, True at its first occurrence when the statement changed its row."""
+        flags = []
+        for key in keys:
+            hit = key in changed
+            flags.append(hit)
+            if hit:
+                changed.discard(key)
+        return flags
 
 
 def open_ledger(kind: str, state_dir: Path | None) -> KeyLedger:
@@ -154,10 +199,16 @@ class AgentStore:
         self.external = external
 
     def get(self, key: bytes) -> bytes | None:
-        return self.external.get_many([key])[0]
+        return self.get_many([key])[0]
 
     def get_many(self, keys: Sequence[bytes]) -> list[bytes | None]:
-        return self.external.get_many(keys)
+        try:
+            return self.external.get_many(keys)
+        except StoreError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - the driver's error (redis, psycopg2), named in the message
+            raise StoreUnavailable(f"{self.external.url} did not answer the probe: {type(exc).__name__}: "
+                                   f"{exc}") from None
 
     def put_many(self, items: Sequence[tuple[bytes, bytes]]) -> list[bool]:
         return self.ledger.put_many(items)

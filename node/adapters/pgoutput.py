@@ -145,6 +145,50 @@ class _Reader:
         return tuple(values)
 
 
+_U32 = struct.Struct(">I")
+_I16 = struct.Struct(">h")
+_I32 = struct.Struct(">i")
+NOT_THIS = Skipped("not an insert of the relation asked for")
+
+
+def insert_value(payload: bytes, relid: int, index: int) -> Value | Skipped:
+    """The feed's fast path: for an Insert into relation `relid`, column `index` of its new
+    tuple, read without decoding the other columns (the agent needs the key only). NOT_THIS
+    for any other message: decode() it. Same layout and errors as decode()."""
+    if payload[:1] != b"I" or len(payload) < 8 or _U32.unpack_from(payload, 1)[0] != relid:
+        return NOT_THIS
+    if payload[5] != 78:                          # 'N'
+        raise PgOutputError("Insert without a new tuple")
+    (count,) = _I16.unpack_from(payload, 6)
+    if not 0 <= index < count:
+        raise PgOutputError(f"Insert has {count} columns, the key is column {index}")
+    pos = 8
+    for i in range(index + 1):
+        if pos >= len(payload):
+            raise PgOutputError(f"message truncated at offset {pos} of {len(payload)}")
+        kind = payload[pos]
+        pos += 1
+        if kind == 116 or kind == 98:             # 't' text, 'b' binary
+            if pos + 4 > len(payload):
+                raise PgOutputError(f"message truncated at offset {pos} of {len(payload)}")
+            (length,) = _I32.unpack_from(payload, pos)
+            pos += 4
+            if pos + length > len(payload):
+                raise PgOutputError(f"message truncated: wanted {length} bytes at offset {pos} of {len(payload)}")
+            if i == index:
+                return payload[pos:pos + length]
+            pos += length
+        elif kind == 110:                         # 'n' null
+            if i == index:
+                return None
+        elif kind == 117:                         # 'u' unchanged TOASTed value
+            if i == index:
+                return UNCHANGED
+        else:
+            raise PgOutputError(f"unknown tuple column kind {chr(kind)!r}")
+    raise AssertionError("unreachable")
+
+
 def decode(payload: bytes) -> PgMessage:
     """One pgoutput message (the payload of an XLogData frame)."""
     r = _Reader(bytes(payload))

@@ -61,6 +61,7 @@ from shardsieve.node.store import (
     Mark,
     StoreEmptied,
     StoreError,
+    StoreRefused,
 )
 
 log = logging.getLogger("shardsieve.node.agent.postgres")
@@ -252,19 +253,19 @@ class PostgresStore:
     def put_many(self, items: Sequence[tuple[bytes, bytes]]) -> None:
         t = self.table
         if t.value is None:
-            raise StoreError(f"writes need the value column: add &value=COLUMN to the address of {self.url}")
+            raise StoreRefused(f"writes need the value column: add &value=COLUMN to the address of {self.url}")
         rows = []
         for i, (k, v) in enumerate(items):
             key = self._param(bytes(k))
             if key is None:
-                raise StoreError(f"item {i}: key {bytes(k)!r} is not a valid {self._type_name(t.key_type)} key")
+                raise StoreRefused(f"item {i}: key {bytes(k)!r} is not a valid {self._type_name(t.key_type)} key")
             if t.value_type == BYTEA:
                 rows.append((key, psycopg2.Binary(bytes(v))))
             else:
                 try:
                     rows.append((key, bytes(v).decode("utf-8")))
                 except UnicodeDecodeError:
-                    raise StoreError(f"item {i}: the value is not UTF-8 text, which column {t.value!r} needs") from None
+                    raise StoreRefused(f"item {i}: the value is not UTF-8 text, which column {t.value!r} needs") from None
         query = sql.SQL("INSERT INTO {} ({}, {}) VALUES %s ON CONFLICT ({}) DO UPDATE SET {} = EXCLUDED.{}").format(
             self._table_sql, sql.Identifier(t.key), sql.Identifier(t.value), sql.Identifier(t.key),
             sql.Identifier(t.value), sql.Identifier(t.value))
@@ -467,7 +468,7 @@ class PostgresFeed:
         cur.start_replication(slot_name=self.origin, decode=False, status_interval=5,
                               options={"proto_version": "1", "publication_names": store.publication,
                                        "messages": "true"})
-        pending: list[FeedEvent] = []
+        pending = _Transaction()
         skipping = False
         while not self._stop.is_set():
             msg = cur.read_message()
@@ -475,18 +476,23 @@ class PostgresFeed:
                 self._send_confirmed(cur)
                 select.select([cur], [], [], 0.1)
                 continue
-            decoded = pgoutput.decode(msg.payload)
+            payload = msg.payload
+            if self._relation is not None:
+                # Nearly every message of a busy table: its key only, the other columns unread.
+                value = pgoutput.insert_value(payload, self._relation, self._key_index)
+                if value is not pgoutput.NOT_THIS:
+                    if not skipping and isinstance(value, bytes):
+                        pending.add(store.key_from_text(value))
+                    continue
+            decoded = pgoutput.decode(payload)
             if isinstance(decoded, pgoutput.Begin):
-                pending = []
+                pending = _Transaction()
                 skipping = decoded.final_lsn < self._delivered   # delivered before a reconnect
             elif isinstance(decoded, pgoutput.Commit):
                 if not skipping:
-                    # The last event carries the position (a transaction without changes of the
-                    # table still moves the slot on, so it never holds WAL for other tables).
-                    last = pending.pop() if pending else KeysAdded(())
-                    self._emit(*pending, _at(last, decoded.end_lsn))
+                    self._emit(*pending.events_at(decoded.end_lsn))
                 self._delivered = max(self._delivered, decoded.end_lsn)
-                pending = []
+                pending = _Transaction()
             elif isinstance(decoded, pgoutput.Relation):
                 self._on_relation(decoded)
             elif isinstance(decoded, pgoutput.LogicalMessage):
@@ -537,6 +543,37 @@ class PostgresFeed:
         return []
 
 
+class _Transaction:
+    """The events of one transaction in order; a run of added keys is kept in one list."""
+
+    def __init__(self) -> None:
+        self.events: list[FeedEvent] = []
+        self.adds: list[bytes] = []
+
+    def add(self, key: bytes) -> None:
+        self.adds.append(key)
+
+    def extend(self, events: list[FeedEvent]) -> None:
+        for event in events:
+            if isinstance(event, KeysAdded) and event.position is None:
+                self.adds.extend(event.keys)
+            else:
+                self._close_run()
+                self.events.append(event)
+
+    def _close_run(self) -> None:
+        if self.adds:
+            self.events.append(KeysAdded(tuple(self.adds)))
+            self.adds = []
+
+    def events_at(self, position: int) -> list[FeedEvent]:
+        """The events with the commit's position on the last one (a transaction without changes
+        of the table still moves the slot on, so it never holds WAL for other tables)."""
+        self._close_run()
+        last = self.events.pop() if self.events else KeysAdded(())
+        return [*self.events, _at(last, position)]
+
+
 def _at(event: FeedEvent, position: int) -> FeedEvent:
     if isinstance(event, KeysAdded):
         return KeysAdded(event.keys, position)
@@ -545,19 +582,53 @@ def _at(event: FeedEvent, position: int) -> FeedEvent:
     return StoreEmptied(position)
 
 
-def drop_agent_slots(url: str, node_id: str) -> list[str]:
-    """Remove every replication slot and the publication of agent `node_id` on the database
-    of `url` (ending a stream that still uses a slot). Returns the names dropped. Run it when
-    an agent is retired: a slot left behind keeps all WAL written after it (docs/agents.md)."""
+def _connect_args(url: str) -> dict[str, Any]:
     parts = urlsplit(url)
-    base = agent_slot_base(node_id)
-    args: dict[str, Any] = {"host": parts.hostname, "port": parts.port or 5432, "dbname": parts.path.strip("/")}
+    args: dict[str, Any] = {"host": parts.hostname, "port": parts.port or 5432, "dbname": parts.path.strip("/"),
+                            "connect_timeout": 10}
     if parts.username:
         args["user"] = unquote(parts.username)
     if parts.password:
         args["password"] = unquote(parts.password)
+    return args
+
+
+@dataclass(frozen=True)
+class AgentSlot:
+    """A replication slot an agent left, and the WAL it holds back."""
+
+    name: str
+    active: bool
+    held_wal_bytes: int | None    # from its restart point to the current WAL position (None: unknown)
+
+
+def agent_leftovers(url: str, node_id: str) -> tuple[list[AgentSlot], bool]:
+    """The replication slots of agent `node_id` on the database of `url`, and whether its
+    publication exists: what drop_agent_slots would remove."""
+    base = agent_slot_base(node_id)
+    conn = psycopg2.connect(**_connect_args(url))
+    try:
+        conn.autocommit = True
+        with conn.cursor() as cur:
+            cur.execute("SELECT slot_name, active, pg_wal_lsn_diff(pg_current_wal_lsn(), restart_lsn)::bigint "
+                        "FROM pg_replication_slots WHERE slot_name LIKE %s ORDER BY slot_name",
+                        (base.replace("_", r"\_") + r"\_%",))
+            slots = [AgentSlot(name, bool(active), None if held is None else int(held))
+                     for name, active, held in cur.fetchall()]
+            cur.execute("SELECT 1 FROM pg_publication WHERE pubname = %s", (base,))
+            publication = cur.fetchone() is not None
+    finally:
+        conn.close()
+    return slots, publication
+
+
+def drop_agent_slots(url: str, node_id: str) -> list[str]:
+    """Remove every replication slot and the publication of agent `node_id` on the database
+    of `url` (ending a stream that still uses a slot). Returns the names dropped. Run it when
+    an agent is retired: a slot left behind keeps all WAL written after it (docs/agents.md)."""
+    base = agent_slot_base(node_id)
     dropped: list[str] = []
-    conn = psycopg2.connect(**args)
+    conn = psycopg2.connect(**_connect_args(url))
     try:
         conn.autocommit = True
         with conn.cursor() as cur:

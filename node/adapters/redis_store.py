@@ -43,8 +43,8 @@ from typing import Any, Sequence
 from urllib.parse import unquote, urlsplit
 
 import redis
-from redis.connection import Connection, SSLConnection
 
+from shardsieve.node.adapters.resp import RespConnection, RespError
 from shardsieve.node.store import (
     FeedBroken,
     FeedEvent,
@@ -196,7 +196,8 @@ class RedisFeed:
         self._cond = threading.Condition()
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, name="redis-feed", daemon=True)
-        self._conn: Connection | None = None
+        self._conn: RespConnection | None = None
+        self._queued = 0                             # keys (and other events) queued, not polled yet
         self._pending_marks: dict[int, float] = {}   # token -> sent at (health checks and marks)
         self._counts: dict[int, int] = {}            # token -> key count taken with it
         self._lock = threading.Lock()
@@ -212,6 +213,7 @@ class RedisFeed:
                 self._cond.wait(timeout)
             out = list(self._events)
             self._events.clear()
+            self._queued = 0
             return out
 
     def mark(self) -> int:
@@ -247,9 +249,17 @@ class RedisFeed:
 
     # ------------------------------------------------------------------ the thread
     def _emit(self, event: FeedEvent) -> None:
+        self._emit_many([event])
+
+    def _emit_many(self, events: list[FeedEvent]) -> None:
+        """Queue events in order with one wake-up; _Behind past max_queued_events keys queued."""
+        if not events:
+            return
         with self._cond:
-            self._events.append(event)
-            overflow = len(self._events) > self.store.max_queued_events
+            self._events.extend(events)
+            self._queued += sum(len(e.keys) if isinstance(e, (KeysAdded, KeysRemoved, Listed)) else 1
+                                for e in events)
+            overflow = self._queued > self.store.max_queued_events
             self._cond.notify_all()
         if overflow:
             raise _Behind()
@@ -276,6 +286,7 @@ class RedisFeed:
             except _Behind:
                 with self._cond:
                     self._events.clear()
+                    self._queued = 0
                     self._events.append(FeedBroken("the agent fell behind the store's changes"))
                     self._cond.notify_all()
                 reason = "the agent fell behind the store's changes"
@@ -300,21 +311,25 @@ class RedisFeed:
         store = self.store
         store.check_notifications()
         run_id = store.run_id()
-        kind = SSLConnection if store.tls else Connection
-        conn = kind(host=store.host, port=store.port, username=store.username, password=store.password,
-                    protocol=2, socket_timeout=store.socket_timeout, socket_connect_timeout=5.0)
-        conn.connect()
-        conn.send_command("CLIENT", "ID")
-        client_id = conn.read_response()
-        conn.send_command("CLIENT", "TRACKING", "on", "REDIRECT", client_id)
-        conn.read_response()
-        channels = [f"__keyevent@{store.db}__:{e}".encode() for e in ADD_EVENTS + REMOVE_EVENTS]
-        channels += [INVALIDATE_CHANNEL, self.channel]
-        conn.send_command("SUBSCRIBE", *channels)
-        for _ in channels:
-            reply = conn.read_response()
-            if not (isinstance(reply, list) and reply[0] == b"subscribe"):
-                raise redis.ConnectionError(f"unexpected reply to SUBSCRIBE: {reply!r}")
+        conn = RespConnection(store.host, store.port, tls=store.tls, timeout=store.socket_timeout)
+        try:
+            if store.password is not None:
+                conn.command("AUTH", *([store.username] if store.username else []), store.password)
+            client_id = conn.command("CLIENT", "ID")
+            conn.command("CLIENT", "TRACKING", "on", "REDIRECT", client_id)
+            channels = [f"__keyevent@{store.db}__:{e}".encode() for e in ADD_EVENTS + REMOVE_EVENTS]
+            channels += [INVALIDATE_CHANNEL, self.channel]
+            conn.send("SUBSCRIBE", *channels)
+            for _ in channels:
+                reply = conn.read_one()
+                if not (isinstance(reply, list) and reply[0] == b"subscribe"):
+                    raise redis.ConnectionError(f"unexpected reply to SUBSCRIBE: {reply!r}")
+        except RespError as exc:
+            conn.close()
+            raise redis.ConnectionError(f"the subscription was refused: {exc}") from None
+        except BaseException:
+            conn.close()
+            raise
         self._conn = conn
         with self._lock:
             self._pending_marks.clear()
@@ -323,10 +338,7 @@ class RedisFeed:
     def _disconnect(self) -> None:
         conn, self._conn = self._conn, None
         if conn is not None:
-            try:
-                conn.disconnect()
-            except Exception:  # noqa: BLE001 - closing a broken socket
-                pass
+            conn.close()
 
     def _listing(self, reason: str) -> None:
         """ListingStarted, SCAN batches (draining the subscription between them), ListingDone."""
@@ -369,33 +381,45 @@ class RedisFeed:
         self._mark()
 
     def _drain(self, wait: float) -> str:
-        """Turn every message readable now (waiting up to `wait` s for the first) into events.
-        Returns a reason when a flush was signalled."""
+        """Turn every message readable now (waiting up to `wait` s for the first) into events,
+        a run of adds (or removals) as one event, queued with one wake-up. Returns a reason
+        when a flush was signalled."""
         conn = self._conn
         if conn is None:
             raise redis.ConnectionError("not connected")
         prefix = f"__keyevent@{self.store.db}__:".encode()
+        cut = len(prefix)
+        adds = {e.encode() for e in ADD_EVENTS}
         flush = ""
-        timeout = wait
-        while conn.can_read(timeout=timeout):
-            timeout = 0
-            reply = conn.read_response()
+        events: list[FeedEvent] = []
+        run: list[bytes] = []
+        run_adds = True
+        for reply in conn.read_replies(wait):
             if not isinstance(reply, list) or len(reply) != 3 or reply[0] != b"message":
                 continue
             _, channel, data = reply
+            if channel.startswith(prefix) and data is not None:
+                added = channel[cut:] in adds
+                if run and added != run_adds:
+                    events.append(KeysAdded(tuple(run)) if run_adds else KeysRemoved(tuple(run)))
+                    run = []
+                run_adds = added
+                run.append(data)
+                continue
+            if run:
+                events.append(KeysAdded(tuple(run)) if run_adds else KeysRemoved(tuple(run)))
+                run = []
             if channel == self.channel:
                 token = int(data)
                 with self._lock:
                     self._pending_marks.pop(token, None)
                     count = self._counts.pop(token, None)
-                self._emit(Mark(token, count))
-            elif channel == INVALIDATE_CHANNEL:
-                if data is None:
-                    flush = "a database was flushed (FLUSHDB or FLUSHALL)"
-            elif channel.startswith(prefix):
-                event = channel[len(prefix):].decode()
-                key = bytes(data)
-                self._emit(KeysAdded((key,)) if event in ADD_EVENTS else KeysRemoved((key,)))
+                events.append(Mark(token, count))
+            elif channel == INVALIDATE_CHANNEL and data is None:
+                flush = "a database was flushed (FLUSHDB or FLUSHALL)"
+        if run:
+            events.append(KeysAdded(tuple(run)) if run_adds else KeysRemoved(tuple(run)))
+        self._emit_many(events)
         return flush
 
 

@@ -8,6 +8,7 @@ from shardsieve.cli.lazy import LazyGroup
 
 
 @click.group(cls=LazyGroup, lazy_commands={
+    "agent": "shardsieve.bench.agent_bench:bench_agent",
     "filter": "shardsieve.bench.filter_bench:bench_filter",
     "node": "shardsieve.bench.node_bench:bench_node",
     "routing": "shardsieve.bench.routing_bench:bench_routing",

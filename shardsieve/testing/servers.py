@@ -1,6 +1,7 @@
 """Real Redis and PostgreSQL servers on loopback for the agent tests (and the later integration).
 
-Each server runs from the Debian packages' binaries on a free 127.0.0.1 port with its own
+Each server runs from the Debian packages' binaries (redis-server, postgresql-NN; found by
+`redis_binary()` and `postgres_bin_dir()`) on a free 127.0.0.1 port with its own
 temporary data directory, and is stopped (and its directory removed) by `stop()`.
 
 PostgreSQL refuses to run as root (its docs, "Creating a Database Cluster": the server
@@ -36,7 +37,7 @@ from typing import Mapping, Sequence
 from shardsieve.testing.procs import free_port, wait_until
 
 REDIS_SERVER = "/usr/bin/redis-server"
-POSTGRES_BIN_DIRS = ("/usr/lib/postgresql/15/bin", "/usr/lib/postgresql/16/bin", "/usr/lib/postgresql/17/bin")
+DEBIAN_POSTGRES_ROOT = "/usr/lib/postgresql"
 UNPRIVILEGED_USER = "nobody"
 
 
@@ -136,10 +137,15 @@ class RedisServer:
         self.start()
 
 
-def start_redis(tmp_dir: Path, settings: Mapping[str, str] | None = None) -> RedisServer:
-    """A redis-server on a free loopback port with notifications set as `settings` says."""
-    binary = require_binary(REDIS_SERVER if os.path.exists(REDIS_SERVER) else shutil.which("redis-server"),
-                            "redis-server", "redis-server")
+def redis_binary() -> str | None:
+    """redis-server from the Debian package's path, else from PATH (None: not installed)."""
+    return REDIS_SERVER if os.access(REDIS_SERVER, os.X_OK) else shutil.which("redis-server")
+
+
+def start_redis(tmp_dir: Path, settings: Mapping[str, str] | None = None, *, binary: str | None = None) -> RedisServer:
+    """A redis-server on a free loopback port with notifications set as `settings` says.
+    Without `binary` it is looked up and a test skips (or fails under CI) when it is missing."""
+    binary = binary or require_binary(redis_binary(), "redis-server", "redis-server")
     data_dir = Path(tmp_dir) / f"redis-{free_port()}"
     data_dir.mkdir(parents=True)
     server = RedisServer(binary, free_port(), data_dir, dict(settings or {}))
@@ -150,10 +156,20 @@ def start_redis(tmp_dir: Path, settings: Mapping[str, str] | None = None) -> Red
 # --------------------------------------------------------------------------- PostgreSQL
 
 
-def _postgres_bin_dir() -> str | None:
-    for folder in POSTGRES_BIN_DIRS:
+def postgres_bin_dir(debian_root: str = DEBIAN_POSTGRES_ROOT) -> str | None:
+    """The folder of the PostgreSQL server binaries; None: not installed.
+
+    Debian's packages (postgresql-NN) put the server in /usr/lib/postgresql/NN/bin and only
+    wrappers on PATH (Debian PostgreSQL policy, postgresql-common's README: several major
+    versions side by side), so those folders come first, the newest version first; then PATH."""
+    versions = []
+    for name in os.listdir(debian_root) if os.path.isdir(debian_root) else ():
+        folder = os.path.join(debian_root, name, "bin")
         if os.access(os.path.join(folder, "postgres"), os.X_OK):
-            return folder
+            key = tuple(int(p) if p.isdigit() else -1 for p in name.split("."))
+            versions.append((key, folder))
+    if versions:
+        return max(versions)[1]
     found = shutil.which("postgres")
     return os.path.dirname(os.path.realpath(found)) if found else None
 
@@ -257,13 +273,15 @@ class PostgresServer:
         shutil.rmtree(self.data_dir, ignore_errors=True)
 
 
-def start_postgres(settings: Mapping[str, str] | None = None) -> PostgresServer:
-    """A fresh PostgreSQL cluster with wal_level=logical on a free loopback port.
+def start_postgres(settings: Mapping[str, str] | None = None, *, bin_dir: str | None = None) -> PostgresServer:
+    """A fresh PostgreSQL cluster with wal_level=logical on a free loopback port. Without
+    `bin_dir` the binaries are looked up and a test skips (or fails under CI) when missing.
 
     Call `remove()` when done (its data directory is outside pytest's temp folder)."""
-    bin_dir = _postgres_bin_dir()
-    require_binary(os.path.join(bin_dir, "postgres") if bin_dir else None, "PostgreSQL server binaries",
-                   "postgresql-15")
+    if bin_dir is None:
+        bin_dir = postgres_bin_dir()
+        require_binary(os.path.join(bin_dir, "postgres") if bin_dir else None, "PostgreSQL server binaries",
+                       "postgresql-15")
     assert bin_dir is not None
     run_as = pwd.getpwnam(UNPRIVILEGED_USER) if os.geteuid() == 0 else None
     data_dir = Path(tempfile.mkdtemp(prefix="shardsieve-pg-"))

@@ -140,3 +140,20 @@ def test_a_rebuild_scans_the_ledger_in_byte_order_while_changes_arrive(tmp_path:
         oracle = BloomFilter(agent.core.sync.geometry)
         oracle.add_batch(keys)
         assert agent.core.sync.geometry.bits > 2000 and agent.core.sync.filter.bits == oracle.bits
+
+
+@pytest.mark.parametrize("values", [(b"bed-9", b"x"), (None, b"x"), (b"", None), (b"a" * 300, b"\x00\r\n")])
+def test_the_insert_fast_path_reads_the_column_decode_reads(values: tuple) -> None:  # type: ignore[type-arg]
+    """insert_value must agree with the full decoder on every column it is asked for (same
+    layout: PostgreSQL docs, "Logical Replication Message Formats", Insert and TupleData)."""
+    payload = b"I" + struct.pack(">I", 16386) + b"N" + _tuple(*values)
+    full = pgoutput.decode(payload)
+    assert isinstance(full, pgoutput.Insert)
+    for index, expected in enumerate(full.new):
+        assert pgoutput.insert_value(payload, 16386, index) == expected
+    assert pgoutput.insert_value(payload, 16387, 0) is pgoutput.NOT_THIS          # another relation
+    assert pgoutput.insert_value(b"D" + payload[1:], 16386, 0) is pgoutput.NOT_THIS
+    with pytest.raises(pgoutput.PgOutputError):
+        pgoutput.insert_value(payload[:-1], 16386, len(values) - 1)               # truncated
+    with pytest.raises(pgoutput.PgOutputError):
+        pgoutput.insert_value(payload, 16386, len(values))                        # no such column
