@@ -1,8 +1,10 @@
-"""A small gRPC client for a coordinator's Router and Admin services, used by the CLI and loadtest.
+"""The operator tools' side of the client: where to find coordinators, and failures as one line.
 
-Why a wrapper: every operator command must resolve the coordinator address and token the same way
-(flag > environment > config file [cli] table > default) and turn any gRPC failure into ONE line
-that tells the operator what to do, with an exit code scripts can branch on.
+Why: every operator command must resolve the coordinator addresses and token the same way
+(flag > environment > config file [cli] table > default) and turn any failure into ONE line
+that tells the operator what to do, with an exit code scripts can branch on (docs/cli.md).
+The calls themselves are the application client's (`shardsieve.client.Client`): one client,
+not two; `OperatorClient` adds the Admin calls and the translation of its exceptions.
 """
 
 from __future__ import annotations
@@ -15,6 +17,9 @@ from typing import Any, Callable, Mapping, TypeVar
 
 import grpc
 
+from shardsieve.client import errors as cerr
+from shardsieve.client.policy import READ, WRITE, RetryPolicy
+from shardsieve.client.sync_client import Client
 from shardsieve.config import ConfigError, load_settings, setting
 
 DEFAULT_COORDINATOR = "127.0.0.1:7400"
@@ -45,17 +50,25 @@ class ClientError(Exception):
 class CliSettings:
     """Where the operator tools find a coordinator. File table: [cli]."""
 
-    coordinator: str = setting(DEFAULT_COORDINATOR, "coordinator address HOST:PORT")
+    coordinator: str = setting(DEFAULT_COORDINATOR, "coordinator address HOST:PORT, or several, comma-separated, "
+                                                    "most preferred first (failover)")
     token: str = setting("", "bearer token sent to the coordinator (empty: none)")
     timeout_s: float = setting(10.0, "deadline of each call in seconds")
     tls_ca: Path | None = setting(None, "PEM CA that signed the coordinator's certificate (TLS; env SHARDSIEVE_TLS_CA)")
     tls_cert: Path | None = setting(None, "PEM client certificate, for a coordinator requiring mutual TLS")
     tls_key: Path | None = setting(None, "PEM private key of tls-cert")
 
+    @property
+    def coordinators(self) -> tuple[str, ...]:
+        return tuple(a.strip() for a in self.coordinator.split(","))
+
     def validate(self) -> None:
-        host, sep, port = self.coordinator.rpartition(":")
-        if not sep or not host or not port.isdigit() or not 0 < int(port) < 65536:
-            raise ConfigError(f"coordinator address {self.coordinator!r} must look like HOST:PORT")
+        for address in self.coordinators:
+            host, sep, port = address.rpartition(":")
+            if not sep or not host or not port.isdigit() or not 0 < int(port) < 65536:
+                raise ConfigError(f"coordinator address {address!r} must look like HOST:PORT")
+        if len(set(self.coordinators)) != len(self.coordinators):
+            raise ConfigError(f"coordinator addresses repeat in {self.coordinator!r}")
         if not (self.timeout_s > 0 and self.timeout_s != float("inf")):   # NaN fails too (fuzzing found it)
             raise ConfigError(f"timeout-s must be a finite number above 0, got {self.timeout_s}")
         from shardsieve.security import TlsFiles   # TLS files: shardsieve/security.py
@@ -110,71 +123,71 @@ def resolve_settings(
         raise ClientError(f"{exc}; fix it and retry", EXIT_INVALID) from None
 
 
-def _is_connect_failure(details: str) -> bool:
-    text = details.lower()
-    return any(s in text for s in ("failed to connect", "connection refused", "dns resolution",
-                                    "name resolution", "connect failed", "socket closed",
-                                    "no route to host", "unavailable to connect"))
+def _nodes_text(error: cerr.Unavailable) -> str:
+    return ", ".join(str(n) for n in error.nodes) or "a node"
+
+
+def translate(error: cerr.ShardsieveError, address: str, what: str) -> ClientError:
+    """The one line an operator needs for a client exception (what went wrong, what to do),
+    with the exit code of docs/cli.md. Decided by the exception's type (the structured error
+    detail), never by message text."""
+    where = error.coordinator or address
+    if isinstance(error, cerr.CoordinatorUnavailable):
+        if error.code == grpc.StatusCode.DEADLINE_EXCEEDED:
+            return ClientError(f"the coordinator at {where} did not answer {what} in time: check it is healthy or "
+                               "raise --timeout", EXIT_UNREACHABLE)
+        return ClientError(f"cannot reach the coordinator at {', '.join(error.tried) or where}: start one with "
+                           "`shardsieve coordinator` or point --coordinator / SHARDSIEVE_COORDINATOR at a running one",
+                           EXIT_UNREACHABLE)
+    if isinstance(error, cerr.MoveUnfinished):
+        return ClientError(f"{what}: the new copy is on {', '.join(error.done_on)} but node {_nodes_text(error)} "
+                           "could not delete the old one; repeat the move once that node is reachable "
+                           "(`shardsieve status`)", EXIT_UNAVAILABLE)
+    if isinstance(error, cerr.NoNodeAvailable):
+        return ClientError(f"{what} failed: no node is connected to the coordinator, nowhere to place the key; "
+                           "start a node (`shardsieve status` lists them)", EXIT_UNAVAILABLE)
+    if isinstance(error, cerr.Unavailable):
+        done = f"; already applied on {', '.join(error.detail.done_on)}" if error.detail and error.detail.done_on \
+            else ""
+        return ClientError(f"{what} failed: node {_nodes_text(error)} could not be asked{done}; retry once it is "
+                           "reachable (`shardsieve status` shows the nodes)", EXIT_UNAVAILABLE)
+    if isinstance(error, cerr.AuthFailed):
+        return ClientError(f"the coordinator at {where} refused the token ({error.message}): pass the right one with "
+                           "--token or SHARDSIEVE_TOKEN", EXIT_AUTH)
+    if isinstance(error, cerr.NotFound):
+        return ClientError(f"{error.message}: run `shardsieve status` to list node ids", EXIT_NOT_FOUND)
+    if isinstance(error, cerr.InvalidInput):
+        return ClientError(f"invalid value: {error.message}; nothing was changed, fix it and retry", EXIT_INVALID)
+    if isinstance(error, cerr.Refused):
+        return ClientError(f"{what} refused: {error.message}", EXIT_INVALID)
+    if error.code == grpc.StatusCode.UNIMPLEMENTED:
+        return ClientError(f"{where} does not serve {what}: is it a shardsieve coordinator?", EXIT_UNREACHABLE)
+    name = error.code.name if error.code is not None else "error"
+    return ClientError(f"{what} failed at {where} ({name}): {error.message}", EXIT_FAILURE)
 
 
 def translate_error(exc: grpc.RpcError, address: str, what: str) -> ClientError:
-    """Turn a gRPC failure into the one line an operator needs (what went wrong, what to do)."""
-    code = exc.code() if hasattr(exc, "code") else None
-    details = (exc.details() if hasattr(exc, "details") else "") or ""
-    if code == grpc.StatusCode.UNAVAILABLE:
-        if not details or _is_connect_failure(details):
-            return ClientError(
-                f"cannot reach the coordinator at {address}: start one with `shardsieve coordinator` "
-                f"or point --coordinator / SHARDSIEVE_COORDINATOR at a running one", EXIT_UNREACHABLE)
-        return ClientError(f"{what} failed: {details}; retry once the node is reachable again",
-                           EXIT_UNAVAILABLE)
-    if code == grpc.StatusCode.DEADLINE_EXCEEDED:
-        return ClientError(f"the coordinator at {address} did not answer {what} in time: "
-                           f"check it is healthy or raise --timeout", EXIT_UNREACHABLE)
-    if code in (grpc.StatusCode.UNAUTHENTICATED, grpc.StatusCode.PERMISSION_DENIED):
-        return ClientError(f"the coordinator at {address} refused the token ({details or code.name}): "
-                           f"pass the right one with --token or SHARDSIEVE_TOKEN", EXIT_AUTH)
-    if code == grpc.StatusCode.NOT_FOUND:
-        return ClientError(f"{details or 'not found'}: run `shardsieve status` to list node ids",
-                           EXIT_NOT_FOUND)
-    if code in (grpc.StatusCode.INVALID_ARGUMENT, grpc.StatusCode.OUT_OF_RANGE):
-        return ClientError(f"invalid value: {details}; nothing was changed, fix it and retry",
-                           EXIT_INVALID)
-    if code == grpc.StatusCode.FAILED_PRECONDITION:
-        return ClientError(f"{what} refused: {details}", EXIT_INVALID)
-    if code == grpc.StatusCode.UNIMPLEMENTED:
-        return ClientError(f"{address} does not serve {what}: is it a shardsieve coordinator?",
-                           EXIT_UNREACHABLE)
-    name = code.name if code is not None else "error"
-    return ClientError(f"{what} failed at {address} ({name}): {details}", EXIT_FAILURE)
+    """translate() of a raw gRPC failure (a call not made through the client, e.g. to a node)."""
+    return translate(cerr.from_rpc_error(exc, address), address, what)
 
 
-class CoordinatorClient:
-    """Router + Admin calls with the bearer token attached and errors translated.
+class OperatorClient:
+    """The CLI's client: the application `Client` (failover, retries, structured errors) plus the
+    Admin calls, every failure a ClientError. Each method returns the reply message."""
 
-    Each method returns the reply message; every failure is a ClientError.
-    """
-
-    def __init__(self, settings: CliSettings, channel: grpc.Channel | None = None) -> None:
-        from shardsieve.v1 import admin_pb2_grpc, routing_pb2_grpc
-
+    def __init__(self, settings: CliSettings, client: Client | None = None) -> None:
         self.settings = settings
         self.address = settings.coordinator
-        from shardsieve.security import make_channel
+        # one retry: an operator waits for the answer, and a second coordinator is tried at once
+        self.client = client or Client(settings.coordinators, token=settings.token,
+                                       credentials=settings.credentials(), timeout_s=settings.timeout_s,
+                                       connect_timeout_s=min(settings.timeout_s, 5.0),
+                                       retry=RetryPolicy(attempts=2))
 
-        self._channel = channel or make_channel(
-            self.address, settings.credentials(), options=[("grpc.max_receive_message_length", 64 * 1024 * 1024)])
-        self.router = routing_pb2_grpc.RouterStub(self._channel)
-        self.admin = admin_pb2_grpc.AdminStub(self._channel)
-        self._metadata: tuple[tuple[str, str], ...] = (
-            (("authorization", f"Bearer {settings.token}"),) if settings.token else ())
-        self._checked = False
-
-    # -- plumbing -------------------------------------------------------------------------------
     def close(self) -> None:
-        self._channel.close()
+        self.client.close()
 
-    def __enter__(self) -> "CoordinatorClient":
+    def __enter__(self) -> "OperatorClient":
         return self
 
     def __exit__(self, *exc: object) -> None:
@@ -182,86 +195,64 @@ class CoordinatorClient:
 
     @property
     def metadata(self) -> tuple[tuple[str, str], ...]:
-        return self._metadata
+        return self.client.metadata
 
-    def _ensure_reachable(self) -> None:
-        """Fail fast with the 'cannot reach' line instead of a long deadline per call."""
-        if self._checked:
-            return
+    def call(self, what: str, service: str, request: Any, reply_cls: type, kind: str = READ) -> Any:
         try:
-            grpc.channel_ready_future(self._channel).result(timeout=min(self.settings.timeout_s, 5.0))
-        except grpc.FutureTimeoutError:
-            raise ClientError(
-                f"cannot reach the coordinator at {self.address}: start one with `shardsieve coordinator` "
-                f"or point --coordinator / SHARDSIEVE_COORDINATOR at a running one", EXIT_UNREACHABLE) from None
-        self._checked = True
+            return self.client.call(service + what, request, reply_cls, kind)[0]
+        except cerr.ShardsieveError as exc:
+            raise translate(exc, self.address, what) from None
 
-    def call(self, what: str, method: Callable[..., T], request: Any, timeout_s: float | None = None) -> T:
-        self._ensure_reachable()
+    def run(self, what: str, fn: Callable[[], T]) -> T:
+        """fn() (an application client call), its failure as a ClientError."""
         try:
-            return method(request, timeout=timeout_s or self.settings.timeout_s, metadata=self._metadata)
-        except grpc.RpcError as exc:
-            raise translate_error(exc, self.address, what) from None
+            return fn()
+        except cerr.ShardsieveError as exc:
+            raise translate(exc, self.address, what) from None
 
     # -- Admin ----------------------------------------------------------------------------------
+    def _admin(self, what: str, request: Any, reply_name: str, kind: str = READ) -> Any:
+        from shardsieve.client.wire import ADMIN
+        from shardsieve.v1 import admin_pb2
+        return self.call(what, ADMIN, request, getattr(admin_pb2, reply_name), kind)
+
     def fleet_status(self) -> Any:
         from shardsieve.v1 import admin_pb2
-        return self.call("FleetStatus", self.admin.FleetStatus, admin_pb2.FleetStatusRequest())
+        return self._admin("FleetStatus", admin_pb2.FleetStatusRequest(), "FleetStatusReply")
 
     def node_detail(self, node_id: str) -> Any:
         from shardsieve.v1 import admin_pb2
-        return self.call("NodeDetail", self.admin.NodeDetail, admin_pb2.NodeDetailRequest(node_id=node_id))
+        return self._admin("NodeDetail", admin_pb2.NodeDetailRequest(node_id=node_id), "NodeDetailReply")
 
     def rebuild(self, node_ids: list[str], *, flagged: bool = False, capacity: int = 0,
                 target_fpr: float = 0.0, dry_run: bool = False) -> Any:
         from shardsieve.v1 import admin_pb2
         req = admin_pb2.RebuildCommand(node_ids=node_ids, flagged=flagged, capacity=capacity,
                                        target_fpr=target_fpr, dry_run=dry_run)
-        return self.call("Rebuild", self.admin.Rebuild, req)
+        return self._admin("Rebuild", req, "RebuildReply", WRITE)
 
     def get_policy(self) -> Any:
         from shardsieve.v1 import admin_pb2
-        return self.call("GetPolicy", self.admin.GetPolicy, admin_pb2.PolicyGetRequest())
+        return self._admin("GetPolicy", admin_pb2.PolicyGetRequest(), "Policy")
 
     def set_policy(self, values: Mapping[str, str]) -> Any:
         from shardsieve.v1 import admin_pb2
-        return self.call("SetPolicy", self.admin.SetPolicy, admin_pb2.PolicySetRequest(values=dict(values)))
+        return self._admin("SetPolicy", admin_pb2.PolicySetRequest(values=dict(values)), "Policy", WRITE)
 
     def decisions(self, limit: int = 50) -> Any:
         from shardsieve.v1 import admin_pb2
-        return self.call("Decisions", self.admin.Decisions, admin_pb2.DecisionsRequest(limit=limit))
+        return self._admin("Decisions", admin_pb2.DecisionsRequest(limit=limit), "DecisionsReply")
 
     def unlist_node(self, node_id: str, force: bool = False) -> Any:
         from shardsieve.v1 import admin_pb2
-        return self.call("UnlistNode", self.admin.UnlistNode, admin_pb2.UnlistNodeRequest(node_id=node_id, force=force))
-
-    # -- Router ---------------------------------------------------------------------------------
-    def locate(self, key: bytes) -> Any:
-        from shardsieve.v1 import routing_pb2
-        return self.call("Locate", self.router.Locate, routing_pb2.LocateRequest(key=key))
-
-    def locate_batch(self, keys: list[bytes]) -> Any:
-        from shardsieve.v1 import routing_pb2
-        return self.call("LocateBatch", self.router.LocateBatch, routing_pb2.LocateBatchRequest(keys=keys))
-
-    def read(self, key: bytes, deadline_ms: int = 0) -> Any:
-        from shardsieve.v1 import routing_pb2
-        return self.call("Read", self.router.Read, routing_pb2.ReadRequest(key=key, deadline_ms=deadline_ms))
-
-    def write(self, key: bytes, value: bytes, node_id: str = "", move: bool = False) -> Any:
-        from shardsieve.v1 import routing_pb2
-        return self.call("Write", self.router.Write, routing_pb2.WriteRequest(key=key, value=value, node_id=node_id,
-                                                                              move=move))
-
-    def remove(self, key: bytes) -> Any:
-        from shardsieve.v1 import routing_pb2
-        return self.call("Remove", self.router.Remove, routing_pb2.RemoveRequest(key=key))
+        return self._admin("UnlistNode", admin_pb2.UnlistNodeRequest(node_id=node_id, force=force),
+                           "UnlistNodeReply", WRITE)
 
 
 def connect(coordinator: str | None = None, token: str | None = None, config_file: str | Path | None = None,
-            timeout_s: float | None = None) -> CoordinatorClient:
-    """Resolve settings the documented way and return a client (no network traffic yet)."""
-    return CoordinatorClient(resolve_settings(coordinator, token, config_file, timeout_s))
+            timeout_s: float | None = None) -> OperatorClient:
+    """Resolve settings the documented way and return an operator client (no network traffic yet)."""
+    return OperatorClient(resolve_settings(coordinator, token, config_file, timeout_s))
 
 
 def settings_summary(settings: CliSettings) -> dict[str, Any]:
