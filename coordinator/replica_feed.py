@@ -34,6 +34,9 @@ from shardsieve.sync.coordinator_side import (
     PROTOCOL_VERSION,
     NodeState,
     NodeUnlisted,
+    ResyncRequested,
+    StreamClosed,
+    StreamOpened,
     Position,
     ReplicaAdvanced,
     ReplicaInstalled,
@@ -187,6 +190,14 @@ class ReplicaPublisher:
                 self._installing.discard(event.node_id)
                 self._pending.pop(event.node_id, None)
             self._append(Entry(0, event.node_id, "unlisted"))
+        elif isinstance(event, (StreamClosed, StreamOpened, ResyncRequested)):
+            self._wake()     # freshness changed: subscribers get new marks now, not at the next interval
+
+    def _wake(self) -> None:
+        with self._lock:
+            waiting = [s.notify for s in self._subs.values() if s.notify is not None]
+        for notify in waiting:
+            notify()
 
     def _append(self, entry: Entry) -> None:
         with self._lock:

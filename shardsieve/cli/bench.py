@@ -10,6 +10,7 @@ from shardsieve.cli.lazy import LazyGroup
 @click.group(cls=LazyGroup, lazy_commands={
     "filter": "shardsieve.bench.filter_bench:bench_filter",
     "node": "shardsieve.bench.node_bench:bench_node",
+    "reads": "shardsieve.bench.reads_bench:bench_reads",
     "routing": "shardsieve.bench.routing_bench:bench_routing",
 })
 def bench() -> None:
