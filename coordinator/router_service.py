@@ -150,33 +150,46 @@ class Router:
         with self.shell.lock:
             return {state.node_id for state in self.shell.nodes() if state.has_replica}
 
-    def _record(self, outcomes: list[ProbeOutcome]) -> None:
+    def _record(self, cands: list[Candidate], results: list[ProbeResult]) -> None:
+        """Account one read from its candidates and their probes' results; every node with a
+        replica was consulted (the filters are read under the same lock)."""
         with self.shell.lock:
+            indexed = {state.node_id for state in self.shell.nodes() if state.has_replica}
+            listed = {c.node_id: c for c in cands}
+            by_node = {r.node_id: r for r in results}
+            outcomes = []
+            for node_id, cand in listed.items():
+                r = by_node.get(node_id)
+                reached = r is not None and r.reached
+                outcomes.append(ProbeOutcome(node_id, consulted=node_id in indexed,
+                                             listed_by_filter=cand.listed_by_filter, probed=True,
+                                             found=bool(reached and r.reply.found), reached=reached))  # type: ignore[union-attr]
+            for node_id in indexed - listed.keys():
+                outcomes.append(ProbeOutcome(node_id, consulted=True, listed_by_filter=False, probed=False))
             self.accounting.record_read(outcomes)
 
     async def _probe_get(self, key: bytes, cands: list[Candidate], deadline_s: float,
                          as_read: bool = True) -> tuple[ProbeResult | None, list[ProbeResult]]:
         """Ask every candidate for key; return (first hit or None, results known so far). A read's
-        probes feed the false-positive accounting; a write's (as_read=False) only the probe metrics."""
-        indexed = await self.shell.call(self._indexed)
-        listed = {c.node_id: c for c in cands}
+        probes feed the false-positive accounting; a write's (as_read=False) only the probe metrics.
 
+        With one candidate (or none), the common case of a fleet whose filters are sized right,
+        the probe is awaited directly: no task per probe, no completion machinery."""
         def account(results: list[ProbeResult]) -> None:     # once every probe finished, hit or not
-            outcomes = []
-            by_node = {r.node_id: r for r in results}
-            for node_id, cand in listed.items():
-                r = by_node.get(node_id)
-                found = bool(r is not None and r.reached and r.reply.found)
-                outcomes.append(ProbeOutcome(node_id, consulted=node_id in indexed,
-                                             listed_by_filter=cand.listed_by_filter, probed=True, found=found,
-                                             reached=r is not None and r.reached))
-            for node_id in indexed - listed.keys():
-                outcomes.append(ProbeOutcome(node_id, consulted=True, listed_by_filter=False, probed=False))
             if as_read:
-                self._spawn(self.shell.call(self._record, outcomes))
+                self._spawn(self.shell.call(self._record, cands, results))
             if self.metrics is not None:
                 self.metrics.observe_probes(results)  # type: ignore[attr-defined]
 
+        if len(cands) <= 1:
+            seen = [await self.prober.call(cands[0].node_id, cands[0].address, "Get",
+                                           storage_pb2.GetRequest(key=key), deadline_s)] if cands else []
+            if as_read:
+                await self.shell.call(self._record, cands, seen)
+            if self.metrics is not None:
+                self.metrics.observe_probes(seen)  # type: ignore[attr-defined]
+            hit = seen[0] if seen and seen[0].reached and seen[0].reply.found else None
+            return hit, seen
         targets = [(c.node_id, c.address) for c in cands]
         seen: list[ProbeResult] = []
         for arriving in self.prober.ask_all(targets, "Get", storage_pb2.GetRequest(key=key), deadline_s, account):
