@@ -262,6 +262,13 @@ class ReplicaPublisher:
             sub.cursor += len(entries)
             return Pull(False, entries)
 
+    def has_installs(self, sub: Subscription) -> bool:
+        """Whether the entries `sub` is owed include a snapshot to cut (heavy work)."""
+        with self._lock:
+            floor = self._log[self._head].seq if self._head < len(self._log) else self._next_seq
+            start = self._head + max(sub.cursor - floor, 0)
+            return any(e.kind == "install" for e in self._log[start:start + 1024])
+
     def backlog(self, sub: Subscription) -> int:
         with self._lock:
             return self._next_seq - sub.cursor

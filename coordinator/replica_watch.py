@@ -92,6 +92,25 @@ class ReplicaWatch:
                     steps.append((kind, node_id, entry))
             return pull.reset, steps, self.marks()
 
+    def next_messages(self, sub: Subscription) -> list[routing_pb2.ReplicaFeed]:
+        """What `sub` is sent next (at least its marks): entries or a reset, with snapshots cut
+        and encoded (heavy for large filters: the stream runs this off the event loop then)."""
+        reset, steps, marks = self.take(sub)
+        updates: list[routing_pb2.NodeUpdate] = []
+        for kind, node_id, item in steps:
+            if kind == "snapshot":
+                assert isinstance(item, SnapshotCut)
+                self.publisher.sent_snapshot(sub, item)     # counts it: the count is its snapshot id
+                updates += snapshot_updates(item, sub.snapshots_sent)
+            elif kind == "delta":
+                assert isinstance(item, Entry)
+                if self.publisher.keep_delta(sub, item):
+                    updates.append(routing_pb2.NodeUpdate(node_id=node_id, delta=item.delta()))
+            else:
+                self.publisher.sent_unlisted(sub, node_id)
+                updates.append(routing_pb2.NodeUpdate(node_id=node_id, unlisted=True))
+        return _messages(reset, updates, marks)
+
     # -- the stream ------------------------------------------------------------------------------
     async def WatchReplicas(self, request: routing_pb2.WatchReplicasRequest,
                             context: grpc.aio.ServicerContext) -> None:
@@ -103,26 +122,14 @@ class ReplicaWatch:
             await context.abort(grpc.StatusCode.RESOURCE_EXHAUSTED, str(exc), trailing_metadata=ed.trailing(
                 ed.detail(ed.LIMIT_EXCEEDED, setting="max-replica-subscribers")))
             return
-        snapshot_id = 0
         try:
             while True:
-                heavy = sub.reset_needed or self.publisher.floor() > sub.cursor
-                reset, steps, marks = await self.shell.call(self.take, sub, off_loop=heavy)
-                updates: list[routing_pb2.NodeUpdate] = []
-                for kind, node_id, item in steps:
-                    if kind == "snapshot":
-                        assert isinstance(item, SnapshotCut)
-                        snapshot_id += 1
-                        self.publisher.sent_snapshot(sub, item)
-                        updates += await loop.run_in_executor(self.executor, snapshot_updates, item, snapshot_id)
-                    elif kind == "delta":
-                        assert isinstance(item, Entry)
-                        if self.publisher.keep_delta(sub, item):
-                            updates.append(routing_pb2.NodeUpdate(node_id=node_id, delta=item.delta()))
-                    else:
-                        self.publisher.sent_unlisted(sub, node_id)
-                        updates.append(routing_pb2.NodeUpdate(node_id=node_id, unlisted=True))
-                for message in _messages(reset, updates, marks):
+                heavy = sub.reset_needed or self.publisher.floor() > sub.cursor or self.publisher.has_installs(sub)
+                if heavy:
+                    messages = await loop.run_in_executor(self.executor, self.next_messages, sub)
+                else:
+                    messages = await self.shell.call(self.next_messages, sub)
+                for message in messages:
                     await context.write(message)
                 if self.publisher.backlog(sub) > 0:
                     continue
