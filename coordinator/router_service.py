@@ -181,15 +181,17 @@ class Router:
             if self.metrics is not None:
                 self.metrics.observe_probes(results)  # type: ignore[attr-defined]
 
-        if len(cands) <= 1:
-            seen = [await self.prober.call(cands[0].node_id, cands[0].address, "Get",
-                                           storage_pb2.GetRequest(key=key), deadline_s)] if cands else []
-            if as_read:
-                await self.shell.call(self._record, cands, seen)
-            if self.metrics is not None:
-                self.metrics.observe_probes(seen)  # type: ignore[attr-defined]
-            hit = seen[0] if seen and seen[0].reached and seen[0].reply.found else None
-            return hit, seen
+        if not cands:
+            account([])
+            return None, []
+        if len(cands) == 1:
+            # shielded: a read cancelled meanwhile (its caller gave up) still lets the probe
+            # finish and be accounted, as the node counts it
+            probe = asyncio.ensure_future(self.prober.call(cands[0].node_id, cands[0].address, "Get",
+                                                           storage_pb2.GetRequest(key=key), deadline_s))
+            probe.add_done_callback(lambda done: None if done.cancelled() else account([done.result()]))
+            result = await asyncio.shield(probe)
+            return (result if result.reached and result.reply.found else None), [result]
         targets = [(c.node_id, c.address) for c in cands]
         seen: list[ProbeResult] = []
         for arriving in self.prober.ask_all(targets, "Get", storage_pb2.GetRequest(key=key), deadline_s, account):
