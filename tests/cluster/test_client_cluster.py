@@ -126,3 +126,26 @@ def test_failover_to_the_second_coordinator_and_back_to_the_first(cluster: Local
     with Client(dead, connect_timeout_s=0.3, timeout_s=2.0) as client, pytest.raises(CoordinatorUnavailable) as exc:
         client.get(b"buoy/1")
     assert exc.value.tried and exc.value.tried[0] == dead
+
+
+def test_the_asyncio_client_routes_locally_as_the_coordinator_does(cluster: LocalCluster) -> None:
+    import asyncio
+
+    from shardsieve.client import AsyncClient
+
+    keys = [f"tide-log/{i}".encode() for i in range(40)]
+
+    async def main() -> None:
+        async with AsyncClient(cluster.coordinator_address, local_routing=True) as local:
+            await local.wait_local_ready(30)
+            written = await local.put_many([(k, b"ebb") for k in keys])
+            assert all(w.ok for w in written)
+            singles = [await local.get(k) for k in keys[:5]]
+            many = await local.get_many(keys + [b"tide-log/none"])
+            assert all(r.route == "local" and r.found for r in singles)
+            assert [r.node_id for r in many[:40]] == [w.node_id for w in written] and not many[40].found
+
+    asyncio.run(main())
+    for key in keys[:5]:   # outside check: the node named holds the value on its own API
+        holders = [n for n in cluster.node_addresses if cluster.storage(n).Get(storage_pb2.GetRequest(key=key)).found]
+        assert len(holders) == 1
