@@ -29,10 +29,7 @@ from shardsieve.coordinator.replicas import Replicas
 from shardsieve.coordinator.routing_index import RoutingIndex
 from shardsieve.sync.coordinator_side import (
     CoordinatorSync,
-    NodeUnlisted,
     Position,
-    ReplicaAdvanced,
-    ReplicaInstalled,
     ResyncRequested,
     SnapshotRejected,
     SyncResult,
@@ -128,11 +125,11 @@ class LocalReplica:
         return None
 
     def _check(self, result: SyncResult) -> None:
+        """A change that did not verify (a gap, a checksum mismatch, a rejected snapshot): the
+        replica kept its state; the feed must start over."""
         for event in result.events:
             if isinstance(event, (ResyncRequested, SnapshotRejected)):
                 self._problem(f"node {event.node_id}: {event.detail}")
-            elif isinstance(event, (ReplicaAdvanced, ReplicaInstalled)):
-                pass
 
     def _problem(self, what: str) -> None:
         self.needs_resync = True

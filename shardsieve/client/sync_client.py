@@ -18,7 +18,7 @@ import grpc
 
 from shardsieve.client import wire
 from shardsieve.client.errors import CoordinatorUnavailable, ShardsieveError, Unavailable, from_rpc_error
-from shardsieve.client.policy import DELETE, READ, WRITE, CoordinatorPool, RetryPolicy, may_retry
+from shardsieve.client.policy import READ, WRITE, CoordinatorPool, RetryPolicy, may_retry
 from shardsieve.client.replica import LocalReplica
 from shardsieve.client.results import Candidate, DeleteResult, ReadResult, WriteResult
 from shardsieve.security import auth_metadata, make_channel
