@@ -61,6 +61,11 @@ class CoordinatorSettings:
     max_key_bytes: int = setting(64 * 1024, "Largest key accepted by the Router (bytes).")
     max_value_bytes: int = setting(16 << 20, "Largest value accepted by Write (bytes).")
     max_batch_keys: int = setting(100_000, "Most keys in one LocateBatch.")
+    max_batch_items: int = setting(1000, "Most keys in one ReadBatch, WriteBatch or RemoveBatch (each node gets one "
+                                   "batch call of them: keep it at most the nodes' max-batch).")
+    max_batch_bytes: int = setting(16 << 20, "Most bytes of keys and values in one ReadBatch, WriteBatch or "
+                                   "RemoveBatch.")
+    max_replica_subscribers: int = setting(64, "Clients subscribed to the replica feed (WatchReplicas) at once.")
     mode: str = setting("safe", "Lookup mode: 'safe' lists stale nodes in every candidate list, 'fast' leaves them out.")
     stale_after_s: float = setting(2.0, "A node whose last applied change or heartbeat is older than this is stale (s).")
     target_fpr: float = setting(0.01, "Fleet target false-positive rate, for saturation checks and rebuilds.")
@@ -135,7 +140,8 @@ class CoordinatorSettings:
         read_token(self.node_storage_token, self.node_storage_token_file, "node-storage-token")
         parse_node_tokens(self.node_token, self.node_token_file)
         for name in ("max_message_bytes", "max_streams_per_peer", "max_sync_streams", "max_pending_streams",
-                     "hello_timeout_ms", "max_key_bytes", "max_value_bytes", "max_batch_keys"):
+                     "hello_timeout_ms", "max_key_bytes", "max_value_bytes", "max_batch_keys", "max_batch_items",
+                     "max_batch_bytes", "max_replica_subscribers"):
             if getattr(self, name) < 1:
                 raise ConfigError(f"setting '{name.replace('_', '-')}': must be at least 1, got {getattr(self, name)}")
         try:

@@ -11,6 +11,7 @@ from shardsieve.cli.lazy import LazyGroup
     "agent": "shardsieve.bench.agent_bench:bench_agent",
     "filter": "shardsieve.bench.filter_bench:bench_filter",
     "node": "shardsieve.bench.node_bench:bench_node",
+    "reads": "shardsieve.bench.reads_bench:bench_reads",
     "routing": "shardsieve.bench.routing_bench:bench_routing",
 })
 def bench() -> None:

@@ -22,7 +22,7 @@ from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
 from shardsieve.client import (
-    EXIT_FAILURE, EXIT_INVALID, EXIT_NOT_FOUND, EXIT_USAGE, ClientError, CoordinatorClient, resolve_settings,
+    EXIT_FAILURE, EXIT_INVALID, EXIT_NOT_FOUND, EXIT_USAGE, ClientError, OperatorClient, resolve_settings,
 )
 from shardsieve.limits import node_id_problem
 
@@ -148,11 +148,11 @@ def coordinator_options(func: F) -> F:
 
 
 def open_client(coordinator: str | None, token: str | None, config_file: str | None,
-                timeout_s: float | None) -> CoordinatorClient:
+                timeout_s: float | None) -> OperatorClient:
     ctx = click.get_current_context(silent=True)
     tls_env = ctx.meta.get("tls_env", {}) if ctx is not None else {}
     environ = {**os.environ, **tls_env} if tls_env else None
-    return CoordinatorClient(resolve_settings(coordinator, token, config_file, timeout_s, environ=environ))
+    return OperatorClient(resolve_settings(coordinator, token, config_file, timeout_s, environ=environ))
 
 
 def emit_json(data: Any) -> None:
@@ -392,7 +392,7 @@ def inspect_node(node: str, coordinator: str | None, token: str | None, config_f
 # ---------------------------------------------------------------------------------------------
 # rebuild
 # ---------------------------------------------------------------------------------------------
-def wait_for_rebuilds(client: CoordinatorClient, before: dict[str, int], queued: list[str], timeout_s: float,
+def wait_for_rebuilds(client: OperatorClient, before: dict[str, int], queued: list[str], timeout_s: float,
                       show_progress: bool, bits_before: dict[str, int] | None = None,
                       planned_bits: dict[str, int] | None = None) -> dict[str, dict[str, Any]]:
     """Poll FleetStatus until every node in `before` has a higher epoch and is not rebuilding.
@@ -543,8 +543,8 @@ def locate(key: str, hex_input: bool, coordinator: str | None, token: str | None
     """List the candidate nodes whose filters may hold KEY (no node is asked)."""
     k = decode_key(key, hex_input)
     with open_client(coordinator, token, config_file, timeout_s) as client:
-        reply = client.locate(k)
-    cands = [message_to_dict(c) for c in reply.candidates]
+        found = client.run("Locate", lambda: client.client.locate(k))
+    cands = [{"node_id": c.node_id, "address": c.address, "stale": c.stale, "hinted": c.hinted} for c in found]
     if as_json:
         emit_json({"key": show_bytes(k), "candidates": cands})
         return
@@ -556,7 +556,7 @@ def locate(key: str, hex_input: bool, coordinator: str | None, token: str | None
     table = Table()
     for col in ("node", "address", "why listed"):
         table.add_column(col)
-    for c in reply.candidates:
+    for c in found:
         why = "stale sync (safe mode)" if c.stale else ("recent write" if c.hinted else "filter match")
         table.add_row(c.node_id, c.address, why)
     out.print(table)
@@ -572,18 +572,18 @@ def get(key: str, hex_input: bool, coordinator: str | None, token: str | None, c
     """Read KEY through the coordinator; print its value (exit 5 when no node holds it)."""
     k = decode_key(key, hex_input)
     with open_client(coordinator, token, config_file, timeout_s) as client:
-        reply = client.read(k)
+        reply = client.run("Read", lambda: client.client.get(k))
     if as_json:
         emit_json({"key": show_bytes(k), "found": reply.found,
-                   "value": show_bytes(reply.value) if reply.found else None,
-                   "value_hex": reply.value.hex() if reply.found else None,
-                   "node_id": reply.node_id or None, "probes": reply.probes,
+                   "value": show_bytes(reply.value) if reply.value is not None else None,
+                   "value_hex": reply.value.hex() if reply.value is not None else None,
+                   "node_id": reply.node_id, "probes": reply.candidates,
                    "wasted_probes": reply.wasted_probes, "candidates": reply.candidates})
         if not reply.found:
             sys.exit(EXIT_NOT_FOUND)
         return
-    if not reply.found:
-        raise ClientError(f"{show_bytes(k)!r} is on no node ({reply.probes} probes, {reply.candidates} "
+    if reply.value is None:
+        raise ClientError(f"{show_bytes(k)!r} is on no node ({reply.candidates} probes, {reply.candidates} "
                           f"candidates): check the key, or `shardsieve locate` it", EXIT_NOT_FOUND)
     click.echo(reply.value.hex() if hex_input else show_bytes(reply.value))
 
@@ -609,9 +609,10 @@ def put(key: str, value: str, node_id: str, move: bool, hex_input: bool, coordin
     k = decode_key(key, hex_input)
     v = decode_key(value, hex_input)
     with open_client(coordinator, token, config_file, timeout_s) as client:
-        reply = client.write(k, v, node_id, move=move)
+        reply = client.run("Write", lambda: client.client.put(k, v, node_id=node_id, move=move))
     if as_json:
-        emit_json({"key": show_bytes(k), **message_to_dict(reply)})
+        emit_json({"key": show_bytes(k), "node_id": reply.node_id, "created": reply.created, "epoch": reply.epoch,
+                   "sequence": reply.sequence, "moved_from": list(reply.moved_from)})
         return
     moved = f"; moved from {', '.join(reply.moved_from)}" if reply.moved_from else ""
     console().print(f"{'created' if reply.created else 'overwrote'} {show_bytes(k)!r} on {reply.node_id} "
@@ -628,7 +629,7 @@ def delete(key: str, hex_input: bool, coordinator: str | None, token: str | None
     """Delete KEY from every node that holds it."""
     k = decode_key(key, hex_input)
     with open_client(coordinator, token, config_file, timeout_s) as client:
-        reply = client.remove(k)
+        reply = client.run("Remove", lambda: client.client.delete(k))
     if as_json:
         emit_json({"key": show_bytes(k), "deleted": bool(reply.node_ids), "node_ids": list(reply.node_ids)})
         return

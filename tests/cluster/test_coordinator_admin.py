@@ -72,8 +72,13 @@ def test_admin_token_policy_rebuild_plan_metrics_and_health(tmp_path) -> None:
             text = urllib.request.urlopen(url, timeout=5).read().decode()
             return {f.name: f.samples for f in text_string_to_metric_families(text)}
 
-        metrics = wait_until(lambda: (m := scrape()) and m.get("shardsieve_coordinator_node_sync_received_bytes")
-                             and m, 10, message="metrics scrape")
+        def delta_bytes_of(m: dict[str, list]) -> float:
+            return sum(s.value for s in m.get("shardsieve_coordinator_node_sync_received_bytes", [])
+                       if s.name.endswith("_total") and s.labels["kind"] == "delta")
+
+        # the write's delta reaches the coordinator within a push interval: wait for it
+        metrics = wait_until(lambda: (m := scrape()) and delta_bytes_of(m) > 0 and m, 10,
+                             message="metrics scrape with the write's delta")
         for name in ("shardsieve_coordinator_lookups", "shardsieve_coordinator_candidates_per_lookup",
                      "shardsieve_coordinator_node_wasted_probes", "shardsieve_coordinator_node_fill_ratio",
                      "shardsieve_coordinator_node_predicted_false_positive_ratio",
