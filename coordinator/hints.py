@@ -6,8 +6,8 @@ the write, the key's lookups list the node from this table. A hint is dropped on
 certain the key is routable without it: when the replica holds the write by the rule
 `holds_write` (shardsieve/sync/coordinator_side.py, the one statement of it; CoordinatorSync.covers
 uses it too), which also covers a write made during a rebuild hand-over through the old epoch's
-position it reports (`old`) and so clears the hints of an abandoned rebuild; or, as a last
-resort, when the hint is older than a bound (`expire`), returned to the caller to log with its
+position it reports (`old`); a hand-over that is abandoned goes on under a fresh epoch above
+`position`, so reaching that epoch clears the hint as well; or, as a last resort, when the hint is older than a bound (`expire`), returned to the caller to log with its
 numbers (safe mode still lists a stale node).
 
 The table subscribes to the sync events: a replica that advanced or was installed drops the

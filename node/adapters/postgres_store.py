@@ -40,7 +40,6 @@ import secrets
 import select
 import threading
 import time
-from collections import deque
 from dataclasses import dataclass
 from typing import Any, Sequence
 from urllib.parse import parse_qs, unquote, urlsplit
@@ -50,6 +49,7 @@ import psycopg2.extras
 from psycopg2 import sql
 
 from shardsieve.node.adapters import pgoutput
+from shardsieve.node.adapters.feed_queue import FeedQueue
 from shardsieve.node.store import (
     FeedBroken,
     FeedEvent,
@@ -342,9 +342,8 @@ class PostgresFeed:
         self.store = store
         self.origin = resume_slot or f"{store.base}_{secrets.token_hex(4)}"
         self._resume = resume_slot is not None
-        self._events: deque[FeedEvent] = deque()
-        self._cond = threading.Condition()
-        self._stop = threading.Event()
+        self._queue = FeedQueue()
+        self._stop = self._queue.stopped
         self._confirmed = 0
         self._sent_confirmed = 0
         self._delivered = 0     # end LSN of the last transaction handed out
@@ -359,24 +358,17 @@ class PostgresFeed:
 
     # ------------------------------------------------------------------ ChangeFeed
     def poll(self, timeout: float) -> list[FeedEvent]:
-        with self._cond:
-            if not self._events and not self._stop.is_set():
-                self._cond.wait(timeout)
-            out = list(self._events)
-            self._events.clear()
-            return out
+        return self._queue.poll(timeout)
 
     def mark(self) -> int:
         return self.store.emit_mark()
 
     def confirm(self, position: int) -> None:
-        with self._cond:
+        with self._queue.cond:
             self._confirmed = max(self._confirmed, position)
 
     def close(self) -> None:
-        self._stop.set()
-        with self._cond:
-            self._cond.notify_all()
+        self._queue.stop()
         if self._thread.is_alive() and threading.current_thread() is not self._thread:
             self._thread.join(10.0)
         if self._cursor is not None:
@@ -388,9 +380,7 @@ class PostgresFeed:
 
     # ------------------------------------------------------------------ the thread
     def _emit(self, *events: FeedEvent) -> None:
-        with self._cond:
-            self._events.extend(events)
-            self._cond.notify_all()
+        self._queue.push(list(events))
 
     def _run(self) -> None:
         failures = 0
@@ -503,7 +493,7 @@ class PostgresFeed:
                 pending.extend(self._changes(decoded))
 
     def _send_confirmed(self, cur: Any) -> None:
-        with self._cond:
+        with self._queue.cond:
             confirmed = self._confirmed
         if confirmed > self._sent_confirmed:
             cur.send_feedback(flush_lsn=confirmed, force=True)   # else psycopg2 waits for status_interval

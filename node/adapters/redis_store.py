@@ -38,12 +38,12 @@ import random
 import secrets
 import threading
 import time
-from collections import deque
 from typing import Any, Sequence
 from urllib.parse import unquote, urlsplit
 
 import redis
 
+from shardsieve.node.adapters.feed_queue import FeedQueue
 from shardsieve.node.adapters.resp import RespConnection, RespError
 from shardsieve.node.store import (
     FeedBroken,
@@ -192,12 +192,10 @@ class RedisFeed:
         self.store = store
         self.origin = ""
         self.channel = b"shardsieve:mark:" + secrets.token_hex(8).encode()
-        self._events: deque[FeedEvent] = deque()
-        self._cond = threading.Condition()
-        self._stop = threading.Event()
+        self._queue = FeedQueue()
+        self._stop = self._queue.stopped
         self._thread = threading.Thread(target=self._run, name="redis-feed", daemon=True)
         self._conn: RespConnection | None = None
-        self._queued = 0                             # keys (and other events) queued, not polled yet
         self._pending_marks: dict[int, float] = {}   # token -> sent at (health checks and marks)
         self._counts: dict[int, int] = {}            # token -> key count taken with it
         self._lock = threading.Lock()
@@ -208,13 +206,7 @@ class RedisFeed:
 
     # ------------------------------------------------------------------ ChangeFeed
     def poll(self, timeout: float) -> list[FeedEvent]:
-        with self._cond:
-            if not self._events and not self._stop.is_set():
-                self._cond.wait(timeout)
-            out = list(self._events)
-            self._events.clear()
-            self._queued = 0
-            return out
+        return self._queue.poll(timeout)
 
     def mark(self) -> int:
         token, count = self._mark()
@@ -240,9 +232,7 @@ class RedisFeed:
         """Redis notifications cannot be replayed: nothing to confirm."""
 
     def close(self) -> None:
-        self._stop.set()
-        with self._cond:
-            self._cond.notify_all()
+        self._queue.stop()
         if self._thread.is_alive() and threading.current_thread() is not self._thread:
             self._thread.join(10.0)
         self._disconnect()
@@ -253,15 +243,7 @@ class RedisFeed:
 
     def _emit_many(self, events: list[FeedEvent]) -> None:
         """Queue events in order with one wake-up; _Behind past max_queued_events keys queued."""
-        if not events:
-            return
-        with self._cond:
-            self._events.extend(events)
-            self._queued += sum(len(e.keys) if isinstance(e, (KeysAdded, KeysRemoved, Listed)) else 1
-                                for e in events)
-            overflow = self._queued > self.store.max_queued_events
-            self._cond.notify_all()
-        if overflow:
+        if events and self._queue.push(events) > self.store.max_queued_events:
             raise _Behind()
 
     def _run(self) -> None:
@@ -284,11 +266,7 @@ class RedisFeed:
                         continue
                     break
             except _Behind:
-                with self._cond:
-                    self._events.clear()
-                    self._queued = 0
-                    self._events.append(FeedBroken("the agent fell behind the store's changes"))
-                    self._cond.notify_all()
+                self._queue.replace(FeedBroken("the agent fell behind the store's changes"))
                 reason = "the agent fell behind the store's changes"
                 self._disconnect()
             except (redis.RedisError, OSError, _Stalled, StoreError) as exc:
@@ -296,9 +274,7 @@ class RedisFeed:
                 if self._stop.is_set():
                     return
                 if not broken_reported:
-                    with self._cond:
-                        self._events.append(FeedBroken(f"lost the subscription to {self.store.url}: {exc}"))
-                        self._cond.notify_all()
+                    self._emit(FeedBroken(f"lost the subscription to {self.store.url}: {exc}"))
                     broken_reported = True
                 reason = f"the subscription was lost ({exc})"
                 failures += 1
