@@ -9,6 +9,7 @@ from shardsieve.cli.lazy import LazyGroup
 
 @click.group(cls=LazyGroup, lazy_commands={
     "filter": "shardsieve.bench.filter_bench:bench_filter",
+    "fleet": "shardsieve.bench.fleet_bench:bench_fleet",
     "node": "shardsieve.bench.node_bench:bench_node",
     "routing": "shardsieve.bench.routing_bench:bench_routing",
 })
