@@ -42,9 +42,10 @@ def is_stale(node: NodeState | None, policy: Policy, now: float) -> bool:
     return heard is None or not fresh_nodes({node.node_id: heard}, policy, now)   # type: ignore[union-attr]
 
 
-def state_name(node: NodeState | None, policy: Policy, now: float, rebuild_in_flight: bool) -> str:
+def state_name(node: NodeState | None, stale: bool, rebuild_in_flight: bool) -> str:
     """The state shown in status: disconnected, syncing, rebuilding, stale or fresh.
 
+    stale: the freshness rule's verdict on the node (`is_stale`, or not in `fresh_nodes`);
     rebuild_in_flight: the saturation monitor is waiting for a rebuild of this node; the
     node's latest heartbeat also says when it is rebuilding on its own."""
     if node is None or not node.connected:
@@ -53,7 +54,7 @@ def state_name(node: NodeState | None, policy: Policy, now: float, rebuild_in_fl
         return "syncing"
     if rebuild_in_flight or (node.stats is not None and node.stats.rebuild_phase):
         return "rebuilding"
-    return "stale" if is_stale(node, policy, now) else "fresh"
+    return "stale" if stale else "fresh"
 
 
 class Membership:

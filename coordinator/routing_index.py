@@ -1072,6 +1072,11 @@ class RoutingIndex:
         with self._lock:
             return self._groups[self._geometry_of[node_id]].entries[node_id].ones
 
+    def popcounts(self) -> dict[str, int]:
+        """popcount() of every node in one lock hold (status, metrics and the monitor read them all)."""
+        with self._lock:
+            return {node_id: e.ones for g in self._groups.values() for node_id, e in g.entries.items()}
+
     def nodes(self) -> list[str]:
         with self._lock:
             return list(self._geometry_of)
