@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import json
 import logging
+import math
 import os
 from pathlib import Path
 from types import MappingProxyType
@@ -35,6 +36,40 @@ def fresh_nodes(synced_heard: Mapping[str, float], policy: Policy, now: float) -
     a snapshot outstanding (the replica may lack changes), or silent for stale-after-s."""
     after = policy.stale_after_s
     return {n for n, heard in synced_heard.items() if now - heard <= after}
+
+
+class FreshNodes:
+    """`fresh_nodes` kept between calls: every lookup needs the fresh set, and computing it
+    passes over every synced node. Call under the coordinator's lock; do not modify the set.
+
+    A result computed at `since` stays the freshness rule's answer at a later `now` while
+    (1) the synced nodes are the same and no time went back (CoordinatorSync.synced_changes
+    unchanged), (2) stale-after-s is the same, (3) the node fresh at `since` that was heard from
+    least recently is still fresh at `now` (times only grow, so then every node fresh at `since`
+    still is), and (4) no node stale at `since` has been heard from since: otherwise it is
+    computed again. In a fleet whose nodes heartbeat well within stale-after-s that is about
+    once per (stale-after-s - heartbeat interval), not once per lookup.
+    """
+
+    def __init__(self) -> None:
+        self._key: tuple[int, float] | None = None
+        self._since = math.inf
+        self._oldest = -math.inf          # least recent time heard of the nodes fresh at `since`
+        self._fresh: set[str] = set()
+        self._stale: list[str] = []       # the synced nodes stale at `since`
+
+    def get(self, synced_heard: Mapping[str, float], changes: int, policy: Policy, now: float) -> set[str]:
+        after = policy.stale_after_s
+        if (changes, after) == self._key and now >= self._since and now - self._oldest <= after \
+                and not any(now - synced_heard[n] <= after for n in self._stale):
+            return self._fresh
+        fresh = fresh_nodes(synced_heard, policy, now)
+        self._key = (changes, after)
+        self._since = now
+        self._oldest = min((synced_heard[n] for n in fresh), default=math.inf)
+        self._fresh = fresh
+        self._stale = [n for n in synced_heard if n not in fresh]
+        return fresh
 
 
 def is_stale(node: NodeState | None, policy: Policy, now: float) -> bool:
@@ -65,6 +100,7 @@ class Membership:
         self._addresses: dict[str, str] = dict(expected or {})
         for node_id, address in self._load().items():
             self._addresses.setdefault(node_id, address)
+        self._view = MappingProxyType(self._addresses)
 
     # -- reads ----------------------------------------------------------------------------------
     def knows(self, node_id: str) -> bool:
@@ -79,8 +115,9 @@ class Membership:
 
     def addresses(self) -> Mapping[str, str]:
         """Every known node and its address. The mapping is never changed once handed out (a
-        change replaces it), so a lookup may keep using it after the lock is released."""
-        return MappingProxyType(self._addresses)
+        change replaces it), so a lookup may keep using it after the lock is released, and the
+        same object comes back until the membership changes."""
+        return self._view
 
     # -- subscriber -----------------------------------------------------------------------------
     def on_event(self, event: SyncEvent) -> None:
@@ -88,10 +125,12 @@ class Membership:
             known = self._addresses.get(event.node_id)
             if known is None or (event.address and event.address != known):
                 self._addresses = {**self._addresses, event.node_id: event.address or (known or "")}
+                self._view = MappingProxyType(self._addresses)
                 self._save()
         elif isinstance(event, NodeUnlisted):
             if event.node_id in self._addresses:
                 self._addresses = {n: a for n, a in self._addresses.items() if n != event.node_id}
+                self._view = MappingProxyType(self._addresses)
                 self._save()
 
     # -- the file -------------------------------------------------------------------------------
