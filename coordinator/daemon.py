@@ -30,6 +30,7 @@ from grpc_health.v1 import health_pb2, health_pb2_grpc
 from grpc_health.v1.health import aio as health_aio
 
 from shardsieve.coordinator.admin_service import AdminService
+from shardsieve.coordinator.gc_pauses import SurvivorFreezer
 from shardsieve.coordinator.metrics import Metrics
 from shardsieve.coordinator.operations import Operations
 from shardsieve.coordinator.probes import Prober
@@ -119,6 +120,7 @@ class CoordinatorDaemon:
             log.warning("sync streams are not authenticated: any peer can push any node id's filter; configure "
                         "tls-client-auth (mutual TLS) or node-token-file")
         self.metrics_server: Any = None
+        self.freezer: SurvivorFreezer | None = None     # the process's garbage collector policy (run())
         self._monitor: asyncio.Task[None] | None = None
         self._stopped = False
 
@@ -170,6 +172,8 @@ class CoordinatorDaemon:
                 await self.state.shell.call(self.operations.tick)
             except Exception:  # noqa: BLE001 - the monitor must keep running
                 log.exception("saturation monitor tick failed")
+            if self.freezer is not None and self.freezer.thaw_due():
+                self.freezer.thaw()
 
     # -- lifecycle -----------------------------------------------------------------------------------
     async def start(self) -> None:
@@ -219,6 +223,9 @@ def run(settings: CoordinatorSettings) -> int:
 
     async def start(daemon: CoordinatorDaemon, _cancel: threading.Event) -> None:
         await daemon.start()
+        # short collector pauses (coordinator/gc_pauses.py): a process-wide choice, made here
+        daemon.freezer = SurvivorFreezer()
+        daemon.freezer.install()
 
     return run_until_signalled("coordinator", log, lambda: CoordinatorDaemon(settings), start,
                                startup_errors=(OSError, RuntimeError, ValueError))
