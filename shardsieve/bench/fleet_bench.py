@@ -3,7 +3,7 @@
 What runs, each part in a process of its own so the coordinator's CPU is its own:
 - the coordinator (shardsieve.testing.procs), its settings chosen for the fleet size by
   `plan_fleet` (printed with the reason for each);
-- the simulated nodes (`_simulator_main`, one process per SIM_NODES_PER_PROCESS nodes): each
+- the simulated nodes (`_simulator_main`, one process per SIM_NODES_PER_PROCESS nodes, at nice 10): each
   node is a `StreamedFeed` (shardsieve/testing/replica_feed.py) with its own Bloom filter and
   its own grpc.aio channel, speaking the real sync protocol on a real FilterSync stream: Hello,
   a snapshot, deltas carrying real keys, heartbeats; it answers NeedSnapshot with a snapshot and
@@ -24,9 +24,10 @@ deltas and the client and the poller call the Router:
 - Locate / LocateBatch p50 / p99 (client-side, over loopback gRPC);
 - write -> routable: a writing node cuts a delta carrying a new key at time t (monotonic clock:
   CLOCK_MONOTONIC is one clock for every process of the host, clock_gettime(2)); the poller
-  sends LocateBatch calls of each writing node's next two unseen delta keys back to back, a few
+  sends LocateBatch calls of each writing node's next unseen delta key, one every 20
   ms apart, and the key is routable at the arrival of the first reply that lists the node as
-  not stale. The figure includes up to one poll round on top of the coordinator's own delay;
+  not stale. The figure includes up to one poll round (POLL_PAUSE_S plus the call) on top of the
+  coordinator's own delay;
 - deltas and heartbeats absorbed per second, counted from the Acks the nodes received (the
   coordinator answers each delta and heartbeat with one; a delta is absorbed when an Ack
   reaches its sequence), and coordinator CPU seconds per delta absorbed (/proc/PID/stat utime +
@@ -61,7 +62,8 @@ NAMED_KEYS = 8               # keys per node the Locate client looks up (each li
 BATCH_KEYS = 1000
 LOCATE_EVERY_S = 0.005       # the client's pace: one single-key Locate every 5 ms ...
 BATCH_EVERY_S = 0.2          # ... and one 1,000-key LocateBatch every 200 ms, one call at a time
-POLL_PAUSE_S = 0.005         # the write -> routable poller's pause between LocateBatch calls
+POLL_PAUSE_S = 0.02          # the write -> routable poller's pause between LocateBatch calls
+SIMULATOR_NICE = 10          # the simulated nodes yield the CPU to the coordinator and the client (nice(2))
 BASELINE_NODES = 8
 SIM_NODES_PER_PROCESS = 2500
 CONNECT_TIMEOUT_S = 600.0
@@ -75,13 +77,16 @@ MEMORY_ALLOWANCE = 200 * MIB
 
 # Sizing rules (docs/coordinator.md, "Sizing settings for large fleets").
 NODE_HEARTBEAT_MS = 1000         # the node's default heartbeat-ms
-HEARTBEATS_PER_S = 1000          # heartbeats a coordinator is planned to absorb per second
+HEARTBEATS_PER_S = 500           # heartbeats a coordinator is planned to absorb per second
 STALE_HEARTBEATS = 3             # stale-after-s spans this many heartbeat intervals
 DEFAULT_STALE_AFTER_S = 2.0      # the coordinator's default
 DEFAULT_MAX_SYNC_STREAMS = 4096
 DEFAULT_MAX_PENDING_STREAMS = 256
 DEFAULT_HELLO_TIMEOUT_MS = 5000
+HELLO_WAIT_PER_NODE_MS = 10      # a Hello may queue behind every other node's Hello and snapshot
 DEFAULT_MAX_STREAMS_PER_PEER = 64
+DEFAULT_MONITOR_INTERVAL_S = 1.0
+MONITOR_NODES_PER_S = 1000       # nodes the monitor's pass reads per second of its interval
 
 
 # --------------------------------------------------------------------------- the plan
@@ -102,6 +107,7 @@ class FleetPlan:
     max_pending_streams: int
     max_streams_per_peer: int
     hello_timeout_ms: int
+    monitor_interval_s: float
     reasons: dict[str, str] = field(default_factory=dict)
 
     @property
@@ -122,35 +128,39 @@ class FleetPlan:
         return ["--stale-after-s", f"{self.stale_after_s:g}", "--max-sync-streams", str(self.max_sync_streams),
                 "--max-pending-streams", str(self.max_pending_streams),
                 "--max-streams-per-peer", str(self.max_streams_per_peer),
-                "--hello-timeout-ms", str(self.hello_timeout_ms)]
+                "--hello-timeout-ms", str(self.hello_timeout_ms),
+                "--monitor-interval-s", f"{self.monitor_interval_s:g}"]
 
 
-def plan_fleet(nodes: int, *, bits: int = 1 << 20, writers_share: float = 0.1, write_rate: float = 10.0,
+def plan_fleet(nodes: int, *, bits: int = 1 << 20, writers_share: float = 0.1, write_rate: float = 5.0,
                push_interval_ms: int = 50, heartbeat_ms: int | None = None) -> FleetPlan:
     """The fleet's shape and the coordinator settings that scale with it (the rules of
     docs/coordinator.md, "Sizing settings for large fleets")."""
     reasons: dict[str, str] = {}
     if heartbeat_ms is None:
         heartbeat_ms = max(NODE_HEARTBEAT_MS, math.ceil(nodes * 1000 / HEARTBEATS_PER_S))
-        reasons["heartbeat-ms"] = (f"nodes' heartbeat interval: N / interval heartbeats reach the coordinator per "
-                                   f"second, kept at most {HEARTBEATS_PER_S}/s (the node default "
-                                   f"{NODE_HEARTBEAT_MS} ms up to {HEARTBEATS_PER_S} nodes)")
+        reasons["heartbeat-ms"] = (f"the nodes' heartbeat interval: N / interval heartbeats per second reach the "
+                                   f"coordinator, each a message in and an Ack out; kept at most {HEARTBEATS_PER_S}/s "
+                                   f"(the node default {NODE_HEARTBEAT_MS} ms up to {HEARTBEATS_PER_S} nodes)")
     else:
         reasons["heartbeat-ms"] = "given (--heartbeat-ms)"
     stale = max(DEFAULT_STALE_AFTER_S, STALE_HEARTBEATS * heartbeat_ms / 1000.0)
     reasons["stale-after-s"] = (f"{STALE_HEARTBEATS} heartbeat intervals (at least the default "
-                                f"{DEFAULT_STALE_AFTER_S:g} s): a node turns stale only after missing two "
-                                "heartbeats in a row, not when one is late behind a busy loop")
+                                f"{DEFAULT_STALE_AFTER_S:g} s): a node turns stale after two heartbeats in a row "
+                                "went missing, not when one is late behind a busy event loop")
     max_sync = max(DEFAULT_MAX_SYNC_STREAMS, 2 * nodes)
     reasons["max-sync-streams"] = ("every node's stream plus room for each to reconnect (a takeover holds two "
                                    f"streams for a moment): max({DEFAULT_MAX_SYNC_STREAMS}, 2 N)")
-    max_pending = max(DEFAULT_MAX_PENDING_STREAMS, nodes // 4)
-    reasons["max-pending-streams"] = ("a coordinator restart brings every node back at once; their Hellos queue "
-                                      f"behind the snapshots: max({DEFAULT_MAX_PENDING_STREAMS}, N / 4) keeps most "
-                                      "of them admitted, the rest retry")
-    hello_timeout = max(DEFAULT_HELLO_TIMEOUT_MS, 10 * nodes)
-    reasons["hello-timeout-ms"] = (f"max({DEFAULT_HELLO_TIMEOUT_MS}, 10 ms x N): a Hello waits behind the "
-                                   "other nodes' Hellos and snapshot chunks when all connect at once")
+    max_pending = max(DEFAULT_MAX_PENDING_STREAMS, nodes)
+    reasons["max-pending-streams"] = ("a coordinator restart brings every node back at once, and their Hellos "
+                                      f"queue behind the snapshots: max({DEFAULT_MAX_PENDING_STREAMS}, N)")
+    hello_timeout = max(DEFAULT_HELLO_TIMEOUT_MS, HELLO_WAIT_PER_NODE_MS * nodes)
+    reasons["hello-timeout-ms"] = (f"max({DEFAULT_HELLO_TIMEOUT_MS}, {HELLO_WAIT_PER_NODE_MS} ms x N): when all "
+                                   "connect at once a Hello waits behind the other nodes' Hellos and snapshots")
+    monitor = max(DEFAULT_MONITOR_INTERVAL_S, nodes / MONITOR_NODES_PER_S)
+    reasons["monitor-interval-s"] = (f"the monitor's pass reads every node on the event loop: max("
+                                     f"{DEFAULT_MONITOR_INTERVAL_S:g}, N / {MONITOR_NODES_PER_S}) s keeps its share "
+                                     "of the loop the same at any fleet size")
     per_peer = max(DEFAULT_MAX_STREAMS_PER_PEER, nodes + BASELINE_NODES)
     reasons["max-streams-per-peer"] = ("the simulated nodes share one host (a real fleet has one node per host: "
                                        "keep the default there)")
@@ -158,7 +168,7 @@ def plan_fleet(nodes: int, *, bits: int = 1 << 20, writers_share: float = 0.1, w
     return FleetPlan(nodes=nodes, bits=bits, writers=writers, write_rate=write_rate,
                      push_interval_ms=push_interval_ms, heartbeat_ms=heartbeat_ms, stale_after_s=stale,
                      max_sync_streams=max_sync, max_pending_streams=max_pending, max_streams_per_peer=per_peer,
-                     hello_timeout_ms=hello_timeout, reasons=reasons)
+                     hello_timeout_ms=hello_timeout, monitor_interval_s=monitor, reasons=reasons)
 
 
 # --------------------------------------------------------------------------- names of the fleet
@@ -216,7 +226,9 @@ class SimSpec:
 
 
 def _simulator_main(conn: Connection, spec: SimSpec) -> None:
-    """Entry of a simulator process: commands in on `conn`, results out."""
+    """Entry of a simulator process: commands in on `conn`, results out. It runs at a lower
+    priority, so on a machine short of cores the coordinator's CPU stays its own."""
+    os.nice(SIMULATOR_NICE)
     try:
         asyncio.run(_Simulator(conn, spec).serve())
     except KeyboardInterrupt:
@@ -238,6 +250,7 @@ class _Simulator:
         self.heartbeats_sent = 0
         self.deltas_sent = 0
         self.refused: dict[str, int] = {}
+        self.refusal_detail: dict[str, str] = {}
         self.reconnects = 0
         self._tasks: set[asyncio.Task[Any]] = set()
 
@@ -272,7 +285,10 @@ class _Simulator:
         t0 = time.perf_counter()
         geometry = Geometry(bits=self.plan.bits, hashes=HASHES)
         capacity = capacity_for(geometry.bits, geometry.hashes, TARGET_FPR)
-        options = [("grpc.max_send_message_length", 64 << 20), ("grpc.max_receive_message_length", 64 << 20)]
+        # each node its own connection, as separate node processes have (gRPC shares one between
+        # channels of the same target and options in a process unless each keeps its own pool)
+        options = [("grpc.max_send_message_length", 64 << 20), ("grpc.max_receive_message_length", 64 << 20),
+                   ("grpc.use_local_subchannel_pool", 1)]
         for i in range(self.spec.first, self.spec.last):
             rng = np.random.default_rng((self.spec.seed, i))
             size = geometry.byte_size
@@ -308,6 +324,7 @@ class _Simulator:
                     if n not in retry_at:       # refused (admission, Hello deadline): back off, retry
                         code = feed.ended.code.name
                         self.refused[code] = self.refused.get(code, 0) + 1
+                        self.refusal_detail.setdefault(code, feed.ended.details[:200])
                         retry_at[n] = now + jitter.uniform(0.2, 1.0)
                     elif now >= retry_at[n]:
                         del retry_at[n]
@@ -318,7 +335,8 @@ class _Simulator:
             if now > deadline:
                 raise RuntimeError(f"{waiting} simulated nodes not synced after {CONNECT_TIMEOUT_S:.0f} s")
             await asyncio.sleep(0.02)
-        return {"connect_s": time.monotonic() - t0, "refused": dict(self.refused), "reconnects": self.reconnects}
+        return {"connect_s": time.monotonic() - t0, "refused": dict(self.refused), "reconnects": self.reconnects,
+                "refusal_detail": dict(self.refusal_detail)}
 
     async def _drive(self) -> None:
         """Heartbeats of every node and, while `writing`, the writing nodes' deltas, from one timer heap."""
@@ -449,8 +467,10 @@ def _client_main(conn: Connection, address: str, nodes: int, seed: int) -> None:
 
 
 class RoutablePoller:
-    """Follows each writing node's next two deltas: LocateBatch of their first keys, back to back;
-    a key is routable at the arrival of the first reply listing its node, not stale."""
+    """Follows each writing node's next delta: LocateBatch of their first keys, one call every
+    POLL_PAUSE_S; a key is routable at the arrival of the first reply listing its node, not stale.
+    (A writing node cuts a delta at most every push interval and most are routable before the
+    next one, so the next delta is the one to ask for.)"""
 
     def __init__(self, address: str, plan: FleetPlan) -> None:
         import grpc
@@ -485,8 +505,7 @@ class RoutablePoller:
 
     def _run(self) -> None:
         while not self._stop.is_set() and not self._done():
-            asked = [(i, j) for i in self.writers for j in (self.next[i], self.next[i] + 1)
-                     if (i, j) not in self.seen]
+            asked = [(i, self.next[i]) for i in self.writers]
             reply = self._stub.LocateBatch(self._pb.LocateBatchRequest(keys=[delta_key(i, j) for i, j in asked]),
                                            timeout=30)
             arrived = time.monotonic()
@@ -587,10 +606,14 @@ def measure_fleet(plan: FleetPlan, duration: float, workdir: Path, log: Callable
 
         poller = RoutablePoller(address, plan)
         poller.start()
+        helpers = [proc.pid for proc in procs]
+        helpers_start = sum(proc_cpu_s(p) for p in helpers)
         cpu_start, wall_start = proc_cpu_s(pid), time.monotonic()
         client.send(("window", duration))
         windows = _ask(sims, ("window", duration), duration + 120)
         cpu_end, wall_end = proc_cpu_s(pid), time.monotonic()
+        helpers_cpu = sum(proc_cpu_s(p) for p in helpers) - helpers_start
+        load = os.getloadavg()[0]
         if not client.poll(duration + 120):
             raise RuntimeError("the Locate client did not report")
         located = client.recv()
@@ -664,6 +687,7 @@ def measure_fleet(plan: FleetPlan, duration: float, workdir: Path, log: Callable
         "need_snapshots_in_window": after["need_snapshots"] - before["need_snapshots"],
         "streams_ended_in_window": after["streams_ended"],
         "coordinator_cpu_s": cpu_s, "coordinator_cpu_share": cpu_s / (wall_end - wall_start),
+        "simulator_and_client_cpu_share": helpers_cpu / (wall_end - wall_start), "load_average_1m": load,
         "coordinator_cpu_s_per_delta": cpu_s / deltas_absorbed if deltas_absorbed else float("nan"),
     }
     log(f"  {plan.nodes} nodes, {duration:g} s window: Locate p50 {out['locate_p50_ms']:.2f} / p99 "
@@ -672,7 +696,8 @@ def measure_fleet(plan: FleetPlan, duration: float, workdir: Path, log: Callable
         f"{out['write_to_routable_p50_ms']:.1f} / p99 {out['write_to_routable_p99_ms']:.1f} ms "
         f"({len(routable)} deltas); {out['deltas_per_s']:.0f} deltas/s and {out['heartbeats_per_s']:.0f} "
         f"heartbeats/s absorbed; coordinator CPU {cpu_s:.1f} s ({out['coordinator_cpu_share']:.0%} of a core), "
-        f"{out['coordinator_cpu_s_per_delta'] * 1e6:.0f} us per delta; RSS synced {synced['VmRSS'] / MIB:.0f} MiB, "
+        f"{out['coordinator_cpu_s_per_delta'] * 1e6:.0f} us per delta (simulated nodes and client: "
+        f"{out['simulator_and_client_cpu_share']:.0%} of a core; load average {load:.1f}); RSS synced {synced['VmRSS'] / MIB:.0f} MiB, "
         f"peak {end['VmHWM'] / MIB:.0f} MiB, sum of m/8 {sum_m8 / MIB:.0f} MiB")
     return out
 
@@ -704,7 +729,7 @@ def verdicts(fleet: dict[str, Any], baseline: dict[str, Any], plan: FleetPlan) -
               help="Bits of every node's filter.")
 @click.option("--writers-share", type=click.FloatRange(min=0.0, max=1.0, min_open=True), default=0.1,
               show_default=True, help="Share of the nodes that write during the measured window.")
-@click.option("--write-rate", type=click.FloatRange(min=0.1, max=10_000), default=10.0, show_default=True,
+@click.option("--write-rate", type=click.FloatRange(min=0.1, max=10_000), default=5.0, show_default=True,
               help="Keys written per second by each writing node.")
 @click.option("--push-interval-ms", type=click.IntRange(min=1, max=60_000), default=50, show_default=True,
               help="Push interval of the nodes: a writing node cuts a delta at most this often.")
@@ -731,6 +756,7 @@ def bench_fleet(nodes: int, bits: int, writers_share: float, write_rate: float, 
                         ("max-sync-streams", plan.max_sync_streams),
                         ("max-pending-streams", plan.max_pending_streams),
                         ("hello-timeout-ms", plan.hello_timeout_ms),
+                        ("monitor-interval-s", plan.monitor_interval_s),
                         ("max-streams-per-peer", plan.max_streams_per_peer)):
         log(f"    {name:21s} {value!s:>8}  {plan.reasons[name]}")
     with tempfile.TemporaryDirectory(prefix="shardsieve-fleet-") as tmp:
