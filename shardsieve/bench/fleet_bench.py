@@ -413,7 +413,8 @@ class _Simulator:
 
 def _client_main(conn: Connection, address: str, nodes: int, seed: int) -> None:
     """Entry of the client process: single-key Locate and LocateBatch of the nodes' named keys,
-    paced, one call at a time; every reply checked to list the key's node."""
+    paced, one call at a time (whichever is the longer overdue first, so slow batches cannot
+    starve the single-key calls); every reply checked to list the key's node."""
     import grpc
 
     from shardsieve.v1 import routing_pb2, routing_pb2_grpc
@@ -438,7 +439,7 @@ def _client_main(conn: Connection, address: str, nodes: int, seed: int) -> None:
             now = time.monotonic()
             if now >= end:
                 break
-            if now >= next_batch:
+            if now >= next_batch and next_batch <= next_single:   # the longer overdue goes first
                 owners = [rng.randrange(nodes) for _ in range(BATCH_KEYS)]
                 req = routing_pb2.LocateBatchRequest(keys=[named_key(i, rng.randrange(NAMED_KEYS)) for i in owners])
                 t0 = time.perf_counter()
@@ -738,9 +739,11 @@ def verdicts(fleet: dict[str, Any], baseline: dict[str, Any], plan: FleetPlan) -
 @click.option("--duration", type=click.FloatRange(min=0.5, max=3600), default=20.0, show_default=True,
               help="Seconds of the measured window, per fleet size.")
 @click.option("--seed", default=1, show_default=True, help="Random seed of the filters and the lookups.")
+@click.option("--log-dir", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="Keep the coordinators' logs in this directory (default: a temporary one, removed).")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the text report.")
 def bench_fleet(nodes: int, bits: int, writers_share: float, write_rate: float, push_interval_ms: int,
-                heartbeat_ms: int | None, duration: float, seed: int, as_json: bool) -> None:
+                heartbeat_ms: int | None, duration: float, seed: int, log_dir: Path | None, as_json: bool) -> None:
     """A real coordinator process against N simulated nodes on real sync streams: memory, Locate
     latency, write -> routable, deltas and heartbeats absorbed, against a fleet of 8 run first."""
     log = (lambda s: None) if as_json else click.echo
@@ -760,8 +763,10 @@ def bench_fleet(nodes: int, bits: int, writers_share: float, write_rate: float, 
                         ("max-streams-per-peer", plan.max_streams_per_peer)):
         log(f"    {name:21s} {value!s:>8}  {plan.reasons[name]}")
     with tempfile.TemporaryDirectory(prefix="shardsieve-fleet-") as tmp:
-        baseline = measure_fleet(plans[BASELINE_NODES], duration, Path(tmp), log, seed)
-        fleet = measure_fleet(plan, duration, Path(tmp), log, seed)
+        workdir = log_dir or Path(tmp)
+        workdir.mkdir(parents=True, exist_ok=True)
+        baseline = measure_fleet(plans[BASELINE_NODES], duration, workdir, log, seed)
+        fleet = measure_fleet(plan, duration, workdir, log, seed)
     targets = verdicts(fleet, baseline, plan)
     result = {"nodes": nodes, "baseline_nodes": BASELINE_NODES, "duration_s": duration,
               "settings": {k: v for k, v in asdict(plan).items()}, "baseline": baseline, "fleet": fleet,
