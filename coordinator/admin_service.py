@@ -156,16 +156,18 @@ class AdminService(admin_pb2_grpc.AdminServicer):
             synced = ", ".join(self.operations.synced_nodes()) or "none"
             raise Refused(grpc.StatusCode.NOT_FOUND,
                           f"no synced node named {exc.args[0]} (synced nodes: {synced})") from None
-        bad = next((p for p in plans if p.geometry is None), None)
-        if bad is not None:
-            raise Refused(grpc.StatusCode.INVALID_ARGUMENT,
-                          f"capacity {bad.capacity} at target {bad.target_fpr} gives no valid filter geometry")
+        refused = [p for p in plans if p.refused]
+        if refused and not request.dry_run:
+            # all or nothing: a rebuild this coordinator cannot take is never started (docs/coordinator.md)
+            raise Refused(grpc.StatusCode.FAILED_PRECONDITION, "nothing was started: " + "; ".join(
+                f"{p.node_id}: {p.refused}" for p in refused))
         if not request.dry_run:
             self.operations.rebuild(plans)
         return admin_pb2.RebuildReply(dry_run=request.dry_run, plan=[
             admin_pb2.PlannedRebuild(node_id=p.node_id, capacity=p.capacity, target_fpr=p.target_fpr,
                                      geometry=p.geometry.to_proto() if p.geometry else None, reason=p.reason,
-                                     queued=p.queued) for p in plans])
+                                     queued=p.queued, refused=p.refused, filter_bytes=p.filter_bytes,
+                                     replica_bytes_after=p.replica_bytes_after) for p in plans])
 
     async def GetPolicy(self, request: admin_pb2.PolicyGetRequest,
                         context: grpc.aio.ServicerContext) -> admin_pb2.Policy:

@@ -34,6 +34,9 @@ from shardsieve.coordinator.gc_pauses import SurvivorFreezer
 from shardsieve.coordinator.metrics import Metrics
 from shardsieve.coordinator.operations import Operations
 from shardsieve.coordinator.probes import Prober
+from shardsieve.coordinator.replica_feed import ReplicaPublisher, ReplicaTap
+from shardsieve.coordinator.replica_watch import ReplicaWatch
+from shardsieve.coordinator.router_batches import BatchRouter
 from shardsieve.coordinator.router_service import Router, RouterService, add_router_service
 from shardsieve.coordinator.saturation import SaturationMonitor
 from shardsieve.coordinator.settings import CoordinatorSettings
@@ -76,13 +79,17 @@ class CoordinatorDaemon:
         host = settings.listen.rpartition(":")[0]
         self.address = f"{host}:{self.port}"
         limits = settings.sync_limits()
-        # the owners of state and their readers (coordinator/wiring.py)
+        # the owners of state and their readers (coordinator/wiring.py); the replica feed taps
+        # the replicas (coordinator/replica_feed.py)
+        self.feed = ReplicaPublisher(lambda node_id: self.state.shell.node(node_id),
+                                     max_subscribers=settings.max_replica_subscribers)
         self.state = state = wire_state(
             settings.policy(), expected=settings.expected_nodes(), state_dir=settings.state_dir,
             max_hints=settings.max_hints, locate_threads=settings.locate_threads,
             monitor=SaturationMonitor(rebuild_timeout_s=settings.rebuild_timeout_s,
-                                      shrink_grace_s=settings.shrink_grace_s),
-            sync_config=CoordinatorSyncConfig(max_snapshot_bytes=limits.max_snapshot_bytes, install_off_call=True))
+                                      shrink_grace_s=settings.shrink_grace_s, limits=settings.rebuild_limits()),
+            sync_config=CoordinatorSyncConfig(max_snapshot_bytes=limits.max_snapshot_bytes, install_off_call=True),
+            sink_tap=lambda sink: ReplicaTap(sink, self.feed))
         shell = state.shell
         self.work = ThreadPoolExecutor(max_workers=WORK_THREADS, thread_name_prefix="coordinator-work")
         shell.executor = self.work
@@ -90,7 +97,7 @@ class CoordinatorDaemon:
         node_tokens = self._secrets["node-token"]
         self.node_auth = "certificate" if settings.tls_client_auth else "token" if node_tokens else "open"
         self.node_authorizer = security.NodeAuthorizer(self.node_auth, node_tokens)
-        self.sync = SyncService(shell, clock=clock, delta_bytes=self.metrics.delta_bytes.inc, authorizer=self.node_authorizer,
+        self.sync = SyncService(shell, clock=clock, authorizer=self.node_authorizer,
                                 admission=security.StreamAdmission(max_streams=settings.max_sync_streams,
                                                                    max_pending=settings.max_pending_streams,
                                                                    max_per_peer=settings.max_streams_per_peer),
@@ -111,7 +118,12 @@ class CoordinatorDaemon:
                              max_batch_keys=settings.max_batch_keys)
         self.admin = AdminService(settings.id, state.readings, self.operations, state.policy, shell,
                                   settled=self.sync.settled, clock=clock)
-        add_router_service(RouterService(self.router), self.server)
+        self.watch = ReplicaWatch(self.feed, shell, state.membership, state.policy, state.replicas.packed,
+                                  executor=self.work, clock=clock)
+        shell.subscribe(self.feed.on_event)
+        add_router_service(RouterService(self.router, batches=BatchRouter(
+            self.router, max_items=settings.max_batch_items, max_bytes=settings.max_batch_bytes),
+            watch=self.watch), self.server)
         admin_pb2_grpc.add_AdminServicer_to_server(self.admin, self.server)
         sync_pb2_grpc.add_FilterSyncServicer_to_server(self.sync, self.server)
         self.health = health_aio.HealthServicer()
@@ -140,8 +152,10 @@ class CoordinatorDaemon:
         write, read = secrets["write-token"], secrets["read-token"]
         return {"/shardsieve.v1.Admin/": secrets["token"],
                 "/shardsieve.v1.Router/Write": write, "/shardsieve.v1.Router/Remove": write,
+                "/shardsieve.v1.Router/WriteBatch": write, "/shardsieve.v1.Router/RemoveBatch": write,
                 "/shardsieve.v1.Router/Locate": read, "/shardsieve.v1.Router/LocateBatch": read,
-                "/shardsieve.v1.Router/Read": read}
+                "/shardsieve.v1.Router/Read": read, "/shardsieve.v1.Router/ReadBatch": read,
+                "/shardsieve.v1.Router/WatchReplicas": read}
 
     def reload_secrets(self) -> list[str]:
         """Read the token files again and apply them (SIGHUP): returns the names of the settings

@@ -79,23 +79,32 @@ class Operations:
     # -- rebuilds -----------------------------------------------------------------------------------
     def plan_rebuilds(self, node_ids: Sequence[str], flagged: bool, capacity: int = 0,
                       target_fpr: float = 0.0) -> list[RebuildPlan]:
-        """An operator's rebuild plan (queued past the concurrency limit). KeyError names nodes
-        without a verified replica; `synced_nodes` lists the ones with."""
+        """An operator's rebuild plan, each one checked against this coordinator's limits and
+        memory cap (refused with the reason), queued past the concurrency limit. KeyError names
+        nodes without a verified replica; `synced_nodes` lists the ones with."""
         with self._shell.lock:
             return self._monitor.plan(self._readings.filters(self._clock()), self._policy.current,
                                       node_ids=list(node_ids), flagged=flagged, capacity=capacity,
-                                      target_fpr=target_fpr)
+                                      target_fpr=target_fpr, replica_bytes=self._readings.replica_bytes())
 
     def synced_nodes(self) -> list[str]:
         return sorted(f.node_id for f in self._readings.filters(self._clock()))
 
     def rebuild(self, plans: Sequence[RebuildPlan]) -> None:
-        """Start an operator's plan: every plan not queued."""
-        for plan in plans:
-            if not plan.queued and self.start_rebuild(plan, self._clock()):
-                self.record([Decision(self._wall(), plan.node_id, "rebuild",
-                                      f"capacity {plan.capacity} at target {plan.target_fpr:g}; "
-                                      f"geometry {plan.geometry}: {plan.reason}")])
+        """Carry out an operator's plan, none of it refused (the caller checked): start what has a
+        slot, hold the rest in the monitor's queue (started as slots free up)."""
+        assert not any(p.refused for p in plans), "refused plans are never carried out"
+        with self._shell.lock:
+            for plan in plans:
+                if plan.queued:
+                    self._monitor.enqueue(plan)
+                    self.record([Decision(self._wall(), plan.node_id, "queued",
+                                          f"capacity {plan.capacity} at target {plan.target_fpr:g}: waits for a rebuild "
+                                          f"slot (policy max-concurrent-rebuilds); {plan.reason}")])
+                elif self.start_rebuild(plan, self._clock()):
+                    self.record([Decision(self._wall(), plan.node_id, "rebuild",
+                                          f"capacity {plan.capacity} at target {plan.target_fpr:g}; "
+                                          f"geometry {plan.geometry}: {plan.reason}")])
 
     def start_rebuild(self, plan: RebuildPlan, now: float) -> bool:
         """Ask the node to rebuild over its sync stream and hold a rebuild slot for it until the
@@ -111,7 +120,9 @@ class Operations:
             self._send(result.replies)
             if plan.node_id not in self._monitor.in_flight:
                 state = self._shell.node(plan.node_id)
-                self._monitor.started(plan, state.epoch if state is not None else 0, now)
+                geometry = state.geometry if state is not None else None
+                self._monitor.started(plan, state.epoch if state is not None else 0, now,
+                                      geometry.bits if geometry is not None else 0)
             return True
 
     # -- unlisting -----------------------------------------------------------------------------------
@@ -165,7 +176,8 @@ class Operations:
         with self._shell.lock:
             now = self._clock()
             self.expire_hints(now)
-            result = self._monitor.tick(now, self._readings.filters(now), self._policy.current, at=self._wall())
+            result = self._monitor.tick(now, self._readings.filters(now), self._policy.current, at=self._wall(),
+                                        replica_bytes=self._readings.replica_bytes())
             self.record(result.decisions)
             for plan in result.rebuilds:
                 self.start_rebuild(plan, now)

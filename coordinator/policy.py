@@ -44,8 +44,11 @@ class Policy:
             raise bad("growth", "must be above 1 and at most 64")
         if not 0.0 <= self.shrink_below < 1.0:
             raise bad("shrink_below", "must be within [0, 1)")
-        if not 0 <= self.max_concurrent_rebuilds <= 1024:
-            raise bad("max_concurrent_rebuilds", "must be between 0 and 1024")
+        if not 1 <= self.max_concurrent_rebuilds <= 1024:
+            # 0 would leave every requested rebuild waiting forever; auto_rebuild=false is the way
+            # to stop the monitor's own rebuilds (docs/coordinator.md, "Accounting and saturation")
+            raise bad("max_concurrent_rebuilds", "must be between 1 and 1024 (to stop automatic rebuilds set "
+                                                 "auto-rebuild=false; operators' rebuilds always need a slot)")
         if not (0.0 < self.stale_after_s <= 3600.0):
             raise bad("stale_after_s", "must be above 0 and at most 3600 seconds")
         if self.mode not in MODES:

@@ -9,6 +9,7 @@ accounting (`on_all_done`).
 from __future__ import annotations
 
 import asyncio
+import time
 from dataclasses import dataclass
 from typing import Any, Awaitable, Callable, Iterator, Sequence
 
@@ -30,6 +31,7 @@ class ProbeResult:
     node_id: str
     reply: Any = None
     error: grpc.RpcError | None = None
+    seconds: float | None = None      # how long the call took (None: not sent)
 
     @property
     def reached(self) -> bool:
@@ -83,13 +85,14 @@ class Prober:
         if not address:
             return ProbeResult(node_id, error=_NoAddress(node_id))
         stub = self.stub(address)
+        started = time.perf_counter()
         try:
             reply = await getattr(stub, method)(request, timeout=timeout, metadata=self._metadata)
-            return ProbeResult(node_id, reply=reply)
+            return ProbeResult(node_id, reply=reply, seconds=time.perf_counter() - started)
         except grpc.RpcError as exc:
             if exc.code() == grpc.StatusCode.UNAVAILABLE:
                 self._drop_channel(address, stub)
-            return ProbeResult(node_id, error=exc)
+            return ProbeResult(node_id, error=exc, seconds=time.perf_counter() - started)
 
     def _drop_channel(self, address: str, stub: storage_pb2_grpc.NodeStorageStub) -> None:
         """Drop an unreachable node's cached channel, so the next probe resolves its name afresh

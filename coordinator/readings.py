@@ -48,6 +48,8 @@ class NodeReading:
     snapshots: int
     stats: sync_pb2.NodeStats | None  # the latest heartbeat's
     counters: NodeCounters | None     # accounting (None: no read involved it yet)
+    snapshot_bytes: int = 0           # encoded snapshot bytes installed
+    rebuild_age_s: float | None = None  # since the rebuild in flight was asked for (None: none)
 
     @property
     def fill(self) -> float:
@@ -137,6 +139,10 @@ class Readings:
                                          fresh=node_id in fresh))
             return out
 
+    def replica_bytes(self) -> int:
+        """Memory of the routing index now (what the rebuild memory cap is checked against)."""
+        return self._replicas.memory_bytes()
+
     def fleet(self, now: float) -> FleetReading:
         with self._shell.lock:
             _, totals = self._accounting.snapshot()
@@ -160,6 +166,7 @@ class Readings:
                 state=state_name(None, True, in_flight), geometry=None, epoch=0, sequence=0, checksum=0,
                 key_count=0, capacity=0, set_bits=0, lag_s=None, delta_bytes=0, snapshots=0, stats=None,
                 counters=counters)
+        job = self._monitor.in_flight.get(node_id)
         heard = state.last_heard_at
         sync_counters = state.counters
         stale = node_id not in inputs.fresh
@@ -169,7 +176,9 @@ class Readings:
             geometry=state.geometry, epoch=state.epoch, sequence=state.sequence, checksum=state.checksum,
             key_count=state.key_count, capacity=state.capacity, set_bits=inputs.set_bits.get(node_id, 0),
             lag_s=None if heard is None else max(0.0, now - heard), delta_bytes=sync_counters.delta_bytes,
-            snapshots=sync_counters.snapshots_installed, stats=state.stats, counters=counters)
+            snapshots=sync_counters.snapshots_installed, stats=state.stats, counters=counters,
+            snapshot_bytes=sync_counters.snapshot_bytes,
+            rebuild_age_s=None if job is None else max(0.0, now - job.started_at))
 
 
 @dataclass(frozen=True)

@@ -62,6 +62,10 @@ class Replicas:
     def geometry_of(self, node_id: str) -> Geometry | None:
         return self._index.geometry_of(node_id)
 
+    def packed(self, node_id: str) -> bytes:
+        """node_id's replica in the snapshot's RAW format (m/8 bytes; the replica feed's snapshots)."""
+        return self._index.packed(node_id)
+
     def column(self, node_id: str) -> np.ndarray:
         """node_id's replica as 0/1 per bit (a copy; tests and diagnostics)."""
         return self._index.column(node_id)

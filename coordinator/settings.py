@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -53,10 +54,18 @@ class CoordinatorSettings:
                                           "this long after opening is closed (ms).")
     max_filter_bits: int = setting(1 << 34, "Largest node filter (bits) accepted on a sync stream.")
     max_snapshot_chunks: int = setting(4096, "Most chunks one snapshot may declare.")
+    max_replica_bytes: int = setting(0, "Cap on the memory of all node filter replicas (bytes): a rebuild that "
+                                        "would take the replicas above it is refused before it starts; 0: half "
+                                        "of this machine's physical memory.")
     max_delta_bytes: int = setting(16 << 20, "Largest delta payload accepted (bytes).")
     max_key_bytes: int = setting(64 * 1024, "Largest key accepted by the Router (bytes).")
     max_value_bytes: int = setting(16 << 20, "Largest value accepted by Write (bytes).")
     max_batch_keys: int = setting(100_000, "Most keys in one LocateBatch.")
+    max_batch_items: int = setting(1000, "Most keys in one ReadBatch, WriteBatch or RemoveBatch (each node gets one "
+                                   "batch call of them: keep it at most the nodes' max-batch).")
+    max_batch_bytes: int = setting(16 << 20, "Most bytes of keys and values in one ReadBatch, WriteBatch or "
+                                   "RemoveBatch.")
+    max_replica_subscribers: int = setting(64, "Clients subscribed to the replica feed (WatchReplicas) at once.")
     mode: str = setting("safe", "Lookup mode: 'safe' lists stale nodes in every candidate list, 'fast' leaves them out.")
     stale_after_s: float = setting(2.0, "A node whose last applied change or heartbeat is older than this is stale (s).")
     target_fpr: float = setting(0.01, "Fleet target false-positive rate, for saturation checks and rebuilds.")
@@ -103,6 +112,9 @@ class CoordinatorSettings:
         for name in ("read_deadline_ms", "write_deadline_ms", "max_hints"):
             if getattr(self, name) < 1:
                 raise ConfigError(f"setting '{name.replace('_', '-')}': must be at least 1, got {getattr(self, name)}")
+        if self.max_replica_bytes < 0:
+            raise ConfigError(f"setting 'max-replica-bytes': must be 0 (half of the physical memory) or more, got "
+                              f"{self.max_replica_bytes}")
         if self.locate_threads < 0:
             raise ConfigError(f"setting 'locate-threads': must be 0 (one per core) or more, got {self.locate_threads}")
         if self.log_level not in ("debug", "info", "warning", "error"):
@@ -128,7 +140,8 @@ class CoordinatorSettings:
         read_token(self.node_storage_token, self.node_storage_token_file, "node-storage-token")
         parse_node_tokens(self.node_token, self.node_token_file)
         for name in ("max_message_bytes", "max_streams_per_peer", "max_sync_streams", "max_pending_streams",
-                     "hello_timeout_ms", "max_key_bytes", "max_value_bytes", "max_batch_keys"):
+                     "hello_timeout_ms", "max_key_bytes", "max_value_bytes", "max_batch_keys", "max_batch_items",
+                     "max_batch_bytes", "max_replica_subscribers"):
             if getattr(self, name) < 1:
                 raise ConfigError(f"setting '{name.replace('_', '-')}': must be at least 1, got {getattr(self, name)}")
         try:
@@ -146,6 +159,19 @@ class CoordinatorSettings:
 
         return SyncLimits(max_filter_bits=self.max_filter_bits, max_snapshot_chunks=self.max_snapshot_chunks,
                           max_delta_bytes=self.max_delta_bytes)
+
+    def replica_memory_cap(self) -> int:
+        """max-replica-bytes, or half of this machine's physical memory when it is 0."""
+        if self.max_replica_bytes:
+            return self.max_replica_bytes
+        return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") // 2
+
+    def rebuild_limits(self):  # type: ignore[no-untyped-def]
+        """What a rebuilt filter must fit: the sync limits and the replica memory cap."""
+        from shardsieve.coordinator.saturation import RebuildLimits
+
+        return RebuildLimits(max_filter_bits=self.max_filter_bits, max_snapshot_chunks=self.max_snapshot_chunks,
+                             max_replica_bytes=self.replica_memory_cap())
 
     def node_tokens(self) -> dict[str, str]:
         from shardsieve.security import parse_node_tokens

@@ -33,7 +33,7 @@ from typing import Any, Awaitable, Callable, Sequence
 import grpc
 
 from shardsieve.coordinator.shell import CoordinatorShell
-from shardsieve.limits import SyncLimits, check_node_message
+from shardsieve.limits import LIMIT_METADATA_KEY, SyncLimits, check_node_message
 from shardsieve.security import NodeAuthorizer, PeerIdentity, StreamAdmission, peer_address, peer_identity
 from shardsieve.stream_pump import STOPPING, Outbox, StreamEnd, StreamRefused, pump
 from shardsieve.sync.coordinator_side import NodeUnlisted, SnapshotInstall, StreamOpened, SyncEvent, SyncResult
@@ -62,10 +62,9 @@ class _Stream:
 
 class SyncService(sync_pb2_grpc.FilterSyncServicer):
     def __init__(self, shell: CoordinatorShell, *, clock: Callable[[], float] = time.monotonic,
-                 delta_bytes: Callable[[int], None] | None = None, authorizer: NodeAuthorizer | None = None,
+                 authorizer: NodeAuthorizer | None = None,
                  admission: StreamAdmission | None = None, limits: SyncLimits | None = None,
                  hello_timeout_s: float = HELLO_TIMEOUT_S) -> None:
-        """delta_bytes(n): counts the payload bytes of each delta received (a metric)."""
         self.shell = shell
         # identity checks, stream admission and message limits: shardsieve/security.py, limits.py
         self.authorizer = authorizer or NodeAuthorizer("open")
@@ -73,7 +72,6 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
         self.limits = limits or SyncLimits()
         self.hello_timeout_s = hello_timeout_s
         self.clock = clock
-        self._delta_bytes = delta_bytes
         self._ids = itertools.count(1)
         # node id -> its current stream and that stream's identity key; changed under the shell's lock
         self._current: dict[str, _Stream] = {}
@@ -140,6 +138,8 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
                                 grpc.StatusCode.PERMISSION_DENIED):   # those were logged where decided
                 log.warning("sync stream refused", extra={"node_id": stream.node_id, "peer": who.describe(),
                                                           "error": end.describe()})
+            if end.limit:   # structured, for the node to act on (shardsieve/limits.py)
+                context.set_trailing_metadata(((LIMIT_METADATA_KEY, end.limit),))
             await context.abort(end.code, end.details)
 
     def _no_hello(self, stream: _Stream) -> None:
@@ -164,8 +164,6 @@ class SyncService(sync_pb2_grpc.FilterSyncServicer):
         large = msg.WhichOneof("body") == "delta" and len(msg.delta.payload) >= OFF_LOOP_DELTA_BYTES
         result = await self.shell.call(self.shell.receive, node_id, stream.stream_id, msg, self.clock(),
                                        off_loop=large)
-        if self._delta_bytes is not None and msg.WhichOneof("body") == "delta":
-            self._delta_bytes(len(msg.delta.payload))
         if result.install is None:
             return list(result.replies)
         installed = await self._install(node_id, result.install)

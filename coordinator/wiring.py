@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Mapping
+from typing import Callable, Mapping
 
 from shardsieve.coordinator.accounting import Accounting
 from shardsieve.coordinator.candidates import CandidateFinder
@@ -23,7 +23,7 @@ from shardsieve.coordinator.replicas import Replicas
 from shardsieve.coordinator.routing_index import RoutingIndex
 from shardsieve.coordinator.saturation import SaturationMonitor
 from shardsieve.coordinator.shell import CoordinatorShell
-from shardsieve.sync.coordinator_side import CoordinatorSync, CoordinatorSyncConfig
+from shardsieve.sync.coordinator_side import CoordinatorSync, CoordinatorSyncConfig, ReplicaSink
 
 
 @dataclass(frozen=True)
@@ -44,9 +44,12 @@ class CoordinatorState:
 def wire_state(policy: Policy, *, expected: Mapping[str, str] | None = None, state_dir: Path | None = None,
                max_hints: int = 1_000_000, locate_threads: int = 0, monitor: SaturationMonitor | None = None,
                index: RoutingIndex | None = None,
-               sync_config: CoordinatorSyncConfig | None = None) -> CoordinatorState:
+               sync_config: CoordinatorSyncConfig | None = None,
+               sink_tap: Callable[[ReplicaSink], ReplicaSink] | None = None) -> CoordinatorState:
+    """sink_tap: wraps the replicas as CoordinatorSync's sink (the replica feed's tap,
+    coordinator/replica_feed.py); None: CoordinatorSync writes to the replicas directly."""
     replicas = Replicas(index if index is not None else RoutingIndex(locate_threads))
-    sync = CoordinatorSync(replicas, sync_config)
+    sync = CoordinatorSync(replicas if sink_tap is None else sink_tap(replicas), sync_config)
     shell = CoordinatorShell(sync)
     live_policy = LivePolicy(policy, shell.lock)
     membership = Membership(expected, state_dir)

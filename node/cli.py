@@ -21,13 +21,14 @@ _EPILOG = ("Every setting can also come from the [node] table of the --config TO
            "*-file settings for tokens: flags show in `ps`.")
 
 
-def _help(name: str) -> str:
+def setting_help(cls: type, env_prefix: str, name: str) -> str:
+    """The --help text of one setting: its help, default (never a token's) and variable."""
     import dataclasses
 
-    for f in dataclasses.fields(NodeSettings):
+    for f in dataclasses.fields(cls):
         if f.name == name:
             default = f.default if f.default is not dataclasses.MISSING else f.default_factory()  # type: ignore[misc]
-            env = f"{ENV_PREFIX}{name.upper()}"
+            env = f"{env_prefix}{name.upper()}"
             if isinstance(default, list):
                 shown = ", ".join(default) or "none"
             elif name.endswith("token"):
@@ -42,6 +43,10 @@ def _help(name: str) -> str:
                 shown = str(default)
             return f"{f.metadata['help']} [default: {shown}; env {env}]"
     raise KeyError(name)
+
+
+def _help(name: str) -> str:
+    return setting_help(NodeSettings, ENV_PREFIX, name)
 
 
 @click.command("node", epilog=_EPILOG, context_settings={"max_content_width": 110})

@@ -56,7 +56,7 @@ META_EPOCH = "epoch"        # highest epoch this node id ever used; every start 
 META_CAPACITY = "capacity"  # size of the last filter that every coordinator switched to
 META_FPR = "target_fpr"
 
-_LOG_LEVELS = {"info": logging.INFO, "warning": logging.WARNING}
+_LOG_LEVELS = {"info": logging.INFO, "warning": logging.WARNING, "error": logging.ERROR}
 
 
 class InvalidInput(ValueError):
@@ -76,6 +76,28 @@ class Limits:
     max_key_bytes: int = 1024
     max_value_bytes: int = 1 << 20
     max_batch: int = 1000
+
+
+def check_keys(keys: Sequence[bytes], limits: Limits) -> None:
+    """InvalidInput naming the first item that breaks a limit (batch length, empty or long key)."""
+    if len(keys) > limits.max_batch:
+        raise InvalidInput(f"batch of {len(keys)} items is above max-batch ({limits.max_batch})")
+    for i, key in enumerate(keys):
+        if len(key) == 0:
+            raise InvalidInput(f"item {i}: empty key (keys must be 1..{limits.max_key_bytes} bytes)")
+        if len(key) > limits.max_key_bytes:
+            raise InvalidInput(f"item {i}: key of {len(key)} bytes is above max-key-bytes ({limits.max_key_bytes})")
+
+
+def check_items(items: Sequence[tuple[bytes, bytes]], limits: Limits) -> list[tuple[bytes, bytes]]:
+    """The items as bytes, once every key and value is within `limits` (else InvalidInput)."""
+    items = [(bytes(k), bytes(v)) for k, v in items]
+    check_keys([k for k, _ in items], limits)
+    for i, (_, value) in enumerate(items):
+        if len(value) > limits.max_value_bytes:
+            raise InvalidInput(f"item {i}: value of {len(value)} bytes is above max-value-bytes "
+                               f"({limits.max_value_bytes})")
+    return items
 
 
 @dataclass(frozen=True)
@@ -225,22 +247,16 @@ class NodeCore:
 
     # ------------------------------------------------------------------ validation
     def _check_keys(self, keys: Sequence[bytes]) -> None:
-        if len(keys) > self.limits.max_batch:
-            raise InvalidInput(f"batch of {len(keys)} items is above max-batch ({self.limits.max_batch})")
-        for i, key in enumerate(keys):
-            if len(key) == 0:
-                raise InvalidInput(f"item {i}: empty key (keys must be 1..{self.limits.max_key_bytes} bytes)")
-            if len(key) > self.limits.max_key_bytes:
-                raise InvalidInput(f"item {i}: key of {len(key)} bytes is above max-key-bytes "
-                                   f"({self.limits.max_key_bytes})")
+        check_keys(keys, self.limits)
 
-    def _require_ready(self) -> None:
+    def require_ready(self) -> None:
+        """NotReady while the filter is loading or the node is stopping."""
         if not self.ready or self._stop.is_set():
             raise NotReady("node is loading its filter from the store (or stopping); retry when health is SERVING")
 
     # ------------------------------------------------------------------ reads
     def get_many(self, keys: Sequence[bytes]) -> list[bytes | None]:
-        self._require_ready()
+        self.require_ready()
         keys = [bytes(k) for k in keys]
         self._check_keys(keys)
         values = self.store.get_many(keys) if len(keys) != 1 else [self.store.get(keys[0])]
@@ -251,7 +267,7 @@ class NodeCore:
         return values
 
     def scan_keys(self, after: bytes | None, limit: int) -> list[bytes]:
-        self._require_ready()
+        self.require_ready()
         return self.store.scan(after, limit)
 
     def counters(self) -> StoreCounters:
@@ -263,18 +279,12 @@ class NodeCore:
     # ------------------------------------------------------------------ writes
     def check_put(self, items: Sequence[tuple[bytes, bytes]]) -> list[tuple[bytes, bytes]]:
         """The items as bytes, once every key and value is within the limits (else InvalidInput)."""
-        self._require_ready()
-        items = [(bytes(k), bytes(v)) for k, v in items]
-        self._check_keys([k for k, _ in items])
-        for i, (_, value) in enumerate(items):
-            if len(value) > self.limits.max_value_bytes:
-                raise InvalidInput(f"item {i}: value of {len(value)} bytes is above max-value-bytes "
-                                   f"({self.limits.max_value_bytes})")
-        return items
+        self.require_ready()
+        return check_items(items, self.limits)
 
     def check_delete(self, keys: Sequence[bytes]) -> list[bytes]:
         """The keys as bytes, once every one is within the limits (else InvalidInput)."""
-        self._require_ready()
+        self.require_ready()
         keys = [bytes(k) for k in keys]
         self._check_keys(keys)
         return keys
@@ -289,14 +299,30 @@ class NodeCore:
         keys = self.check_delete(keys)
         return self._write("delete", keys) if keys else []
 
+    def write_checked(self, kind: str, payload: list) -> list[bool]:
+        """Commit a write whose caller already checked it ("put": [(key, value)] as bytes,
+        "delete": [key]) and return the per-item flags (put: the key was new; delete: it
+        existed): an agent's feed, whose non-empty keys come from its own store
+        (node/adapters/applier.py). Skips the per-item checks and results of put_many."""
+        self.require_ready()
+        if not payload:
+            return []
+        op = self._commit(kind, payload)
+        if op.error is not None:
+            raise op.error
+        return op.result
+
     def _write(self, kind: str, payload: list) -> list[WriteResult]:
+        return self._commit(kind, payload).results()
+
+    def _commit(self, kind: str, payload: list) -> PendingWrite:
         """Queue the op and commit the queue unless a commit already took it (group commit:
         writers that queued behind a commit in progress share the next one)."""
         op = self.queue_write(kind, payload)
         with self.lock:
             if not op.done:
                 self.commit_queued()
-        return op.results()
+        return op
 
     def queue_write(self, kind: str, payload: list,
                     on_done: Callable[[PendingWrite], None] | None = None) -> PendingWrite:

@@ -2,7 +2,8 @@
 
 All validation lives in NodeCore (so in-process writers get the same checks); this module
 only maps InvalidInput to INVALID_ARGUMENT, a not-yet-loaded node to UNAVAILABLE and store
-failures to INTERNAL, each with the core's message. Nothing here blocks the event loop:
+failures to INTERNAL, each with the core's message (an agent's store that does not answer,
+StoreUnavailable, is UNAVAILABLE; a key or value it cannot hold, StoreRefused, INVALID_ARGUMENT). Nothing here blocks the event loop:
 writes are checked on the loop and committed by the writer thread (node/writer.py); reads,
 scans and stats (which take the node lock a commit holds during its fsync) run on the read
 threads (`readers`).
@@ -18,7 +19,7 @@ from typing import Awaitable, Callable, TypeVar
 import grpc
 
 from shardsieve.node.core import InvalidInput, NodeCore, NotReady, WriteResult
-from shardsieve.node.store import StoreError
+from shardsieve.node.store import StoreError, StoreRefused, StoreUnavailable
 from shardsieve.node.writer import GroupWriter
 from shardsieve.v1 import storage_pb2, storage_pb2_grpc
 
@@ -39,7 +40,7 @@ def _ack(result: WriteResult) -> storage_pb2.WriteAck:
 class NodeStorageService(storage_pb2_grpc.NodeStorageServicer):
     """Serves put/get/delete (single and batched), stats and key scans from one NodeCore."""
 
-    def __init__(self, core: NodeCore, writer: GroupWriter, readers: Executor | None = None) -> None:
+    def __init__(self, core: NodeCore, writer: GroupWriter | None, readers: Executor | None = None) -> None:
         self.core = core
         self.writer = writer
         self.readers = readers
@@ -49,8 +50,10 @@ class NodeStorageService(storage_pb2_grpc.NodeStorageServicer):
             return await fn()
         except InvalidInput as exc:
             await context.abort(grpc.StatusCode.INVALID_ARGUMENT, str(exc))
-        except NotReady as exc:
+        except (NotReady, StoreUnavailable) as exc:
             await context.abort(grpc.StatusCode.UNAVAILABLE, str(exc))
+        except StoreRefused as exc:
+            await context.abort(grpc.StatusCode.INVALID_ARGUMENT, str(exc))
         except StoreError as exc:
             log.error("store failure", extra={"error": str(exc)})
             await context.abort(grpc.StatusCode.INTERNAL, str(exc))
@@ -59,11 +62,17 @@ class NodeStorageService(storage_pb2_grpc.NodeStorageServicer):
     async def _read(self, fn: Callable[..., R], *args: object) -> R:
         return await asyncio.get_running_loop().run_in_executor(self.readers, fn, *args)
 
+    # The three paths an agent replaces (node/agent_service.py) ----------------------------------
     async def _put(self, items: list[tuple[bytes, bytes]]) -> list[WriteResult]:
+        assert self.writer is not None
         return await self.writer.write("put", self.core.check_put(items))
 
     async def _delete(self, keys: list[bytes]) -> list[WriteResult]:
+        assert self.writer is not None
         return await self.writer.write("delete", self.core.check_delete(keys))
+
+    async def _get(self, keys: list[bytes]) -> list[bytes | None]:
+        return await self._read(self.core.get_many, keys)
 
     async def Put(self, request: storage_pb2.PutRequest, context: grpc.aio.ServicerContext) -> storage_pb2.WriteAck:
         async def run() -> storage_pb2.WriteAck:
@@ -72,7 +81,7 @@ class NodeStorageService(storage_pb2_grpc.NodeStorageServicer):
 
     async def Get(self, request: storage_pb2.GetRequest, context: grpc.aio.ServicerContext) -> storage_pb2.GetReply:
         async def run() -> storage_pb2.GetReply:
-            value = (await self._read(self.core.get_many, [request.key]))[0]
+            value = (await self._get([request.key]))[0]
             return storage_pb2.GetReply(found=value is not None, value=value or b"")
         return await self._call(context, run)
 
@@ -92,7 +101,7 @@ class NodeStorageService(storage_pb2_grpc.NodeStorageServicer):
     async def BatchGet(self, request: storage_pb2.BatchGetRequest,
                        context: grpc.aio.ServicerContext) -> storage_pb2.BatchGetReply:
         async def run() -> storage_pb2.BatchGetReply:
-            values = await self._read(self.core.get_many, list(request.keys))
+            values = await self._get(list(request.keys))
             return storage_pb2.BatchGetReply(items=[
                 storage_pb2.GetReply(found=v is not None, value=v or b"") for v in values])
         return await self._call(context, run)

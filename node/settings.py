@@ -1,27 +1,40 @@
-"""Settings of the storage node: flags > SHARDSIEVE_NODE_* environment > [node] table of a TOML file > defaults."""
+"""Settings of the storage node and of the agent: flags > environment > a TOML table > defaults.
+
+`ServingSettings` holds what every process that serves NodeStorage and streams a filter to
+coordinators needs (identity, addresses, filter size, sync cadence, limits, logs, TLS and
+tokens). `NodeSettings` adds the node's own SQLite store (SHARDSIEVE_NODE_*, [node]);
+`AgentSettings` adds the store an agent attaches to (SHARDSIEVE_AGENT_*, [agent];
+docs/agents.md). So every shared setting reads, validates and behaves the same for both.
+"""
 
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass
 from pathlib import Path
+from typing import ClassVar
+from urllib.parse import parse_qs, urlsplit
 
 from shardsieve.config import ConfigError, check_address, setting
 from shardsieve.limits import node_id_problem
 
 ENV_PREFIX = "SHARDSIEVE_NODE_"
 SECTION = "node"
+AGENT_ENV_PREFIX = "SHARDSIEVE_AGENT_"
+AGENT_SECTION = "agent"
 
 
 @dataclass(frozen=True)
-class NodeSettings:
-    """Everything a node process needs; `validate` names the first bad setting and why."""
+class ServingSettings:
+    """The settings a node and an agent share; `validate` names the first bad setting and why."""
+
+    env_prefix: ClassVar[str] = ENV_PREFIX
+    section: ClassVar[str] = SECTION
 
     id: str = setting("", "Stable node id: 1 to 64 of a-z, 0-9, '.', '_', '-', starting with a letter or digit "
                           "(docs/node.md, \"Node ids\"); required.")
     listen: str = setting("127.0.0.1:7500", "HOST:PORT the NodeStorage gRPC service listens on (port 0: any free port).")
     advertise: str = setting("", "HOST:PORT coordinators use to reach this node; empty: the listen address.")
-    data: Path = setting(Path("./node-data"), "Directory of the node's SQLite store.")
     coordinator: list[str] = setting([], "Coordinator HOST:PORT to stream filter changes to; repeat for several.")
     capacity: int = setting(100_000, "Keys the filter is sized for (a rebuild may replace it; the rebuilt size is kept).")
     fpr: float = setting(0.01, "Target false-positive rate of the filter, in (0, 1).")
@@ -30,9 +43,6 @@ class NodeSettings:
     push_interval_ms: int = setting(50, "Coalesce filter changes and push a delta at least this often (ms).")
     push_threshold: int = setting(4096, "Push sooner once this many bits changed since the last delta.")
     heartbeat_ms: int = setting(1000, "Send a heartbeat with node stats this often (ms).")
-    sync_level: str = setting("full", "Store durability: 'full' (survives process kill and power loss) or "
-                                      "'normal' (survives process kill; power loss may lose the last writes).")
-    store: str = setting("sqlite", "Store backend: 'sqlite' (the only durable one; the in-memory store is for unit tests only).")
     max_key_bytes: int = setting(1024, "Largest key accepted, in bytes.")
     max_value_bytes: int = setting(1_048_576, "Largest value accepted, in bytes.")
     max_batch: int = setting(1000, "Most items accepted in one batch request.")
@@ -60,7 +70,7 @@ class NodeSettings:
 
     def validate(self) -> None:
         if not self.id:
-            raise ConfigError("setting 'id' is required (--id, SHARDSIEVE_NODE_ID or id in [node])")
+            raise ConfigError(f"setting 'id' is required (--id, {self.env_prefix}ID or id in [{self.section}])")
         problem = node_id_problem(self.id)
         if problem:
             raise ConfigError(f"setting 'id': {problem}")
@@ -86,13 +96,6 @@ class NodeSettings:
                 raise ConfigError(f"setting '{name.replace('_', '-')}': must be at least 1, got {getattr(self, name)}")
         if self.reconnect_max_ms < self.reconnect_min_ms:
             raise ConfigError("setting 'reconnect-max-ms': must not be below reconnect-min-ms")
-        if self.sync_level not in ("full", "normal"):
-            raise ConfigError(f"setting 'sync-level': must be 'full' or 'normal', got {self.sync_level!r}")
-        if self.store == "memory":
-            raise ConfigError("setting 'store': the in-memory store is for unit tests only (it would lose every "
-                              "acknowledged write on exit); use 'sqlite'")
-        if self.store != "sqlite":
-            raise ConfigError(f"setting 'store': must be 'sqlite', got {self.store!r}")
         if self.log_level.lower() not in ("debug", "info", "warning", "error"):
             raise ConfigError(f"setting 'log-level': must be debug, info, warning or error, got {self.log_level!r}")
         if self.log_format not in ("json", "text"):
@@ -120,3 +123,120 @@ class NodeSettings:
     def storage_address(self) -> str:
         """The address put in Hello; note a listen port 0 is resolved by the daemon."""
         return self.advertise or self.listen
+
+
+@dataclass(frozen=True)
+class NodeSettings(ServingSettings):
+    """Everything a node process needs: the shared settings and its own SQLite store."""
+
+    data: Path = setting(Path("./node-data"), "Directory of the node's SQLite store.")
+    sync_level: str = setting("full", "Store durability: 'full' (survives process kill and power loss) or "
+                                      "'normal' (survives process kill; power loss may lose the last writes).")
+    store: str = setting("sqlite", "Store backend: 'sqlite' (the only durable one; the in-memory store is for unit tests only).")
+
+    def validate(self) -> None:
+        super().validate()
+        if self.sync_level not in ("full", "normal"):
+            raise ConfigError(f"setting 'sync-level': must be 'full' or 'normal', got {self.sync_level!r}")
+        if self.store == "memory":
+            raise ConfigError("setting 'store': the in-memory store is for unit tests only (it would lose every "
+                              "acknowledged write on exit); use 'sqlite'")
+        if self.store != "sqlite":
+            raise ConfigError(f"setting 'store': must be 'sqlite', got {self.store!r}")
+
+
+REDIS_SCHEMES = ("redis", "rediss")
+POSTGRES_SCHEMES = ("postgresql", "postgres")
+LEDGER_KINDS = ("memory", "sqlite")
+
+
+def store_kind(url: str) -> str:
+    """'redis' or 'postgresql' for a well-formed store address; ConfigError naming what is wrong.
+    Syntax only: whether the store answers and is set up is the adapter's check at start."""
+    parts = urlsplit(url)
+    scheme = parts.scheme.lower()
+    if scheme in REDIS_SCHEMES:
+        try:
+            parts.port
+        except ValueError:
+            raise ConfigError(f"setting 'store': the port in {url!r} is not a number 0..65535") from None
+        db = parts.path.strip("/") or "0"
+        if not parts.hostname or not db.isdigit():
+            raise ConfigError(f"setting 'store': {url!r} is not redis://HOST:PORT/DB (DB a number)")
+        return "redis"
+    if scheme in POSTGRES_SCHEMES:
+        try:
+            parts.port
+        except ValueError:
+            raise ConfigError(f"setting 'store': the port in {url!r} is not a number 0..65535") from None
+        query = parse_qs(parts.query)
+        if not parts.hostname or not parts.path.strip("/") or not query.get("table") or not query.get("key"):
+            raise ConfigError(f"setting 'store': {url!r} is not "
+                              f"postgresql://USER@HOST:PORT/DB?table=[SCHEMA.]TABLE&key=COLUMN[&value=COLUMN]")
+        return "postgresql"
+    raise ConfigError(f"setting 'store': {url!r} is not an address of a store an agent attaches to; use "
+                      f"redis://HOST:PORT/DB or postgresql://USER@HOST:PORT/DB?table=TABLE&key=COLUMN")
+
+
+@dataclass(frozen=True)
+class AgentSettings(ServingSettings):
+    """Everything an agent process needs: the shared settings and the store it attaches to
+    (docs/agents.md, "Running an agent")."""
+
+    env_prefix: ClassVar[str] = AGENT_ENV_PREFIX
+    section: ClassVar[str] = AGENT_SECTION
+
+    store: str = setting("", "Address of the store to attach to: redis://[USER@]HOST:PORT/DB (rediss:// for TLS) "
+                             "or postgresql://USER@HOST:PORT/DB?table=[SCHEMA.]TABLE&key=COLUMN[&value=COLUMN] "
+                             "(value=: the column probes return and routed writes set); required.")
+    store_password_file: Path | None = setting(None, "File holding the store's password (first line), for an "
+                                                     "address without one (keeps it out of `ps` and the config).")
+    ledger: str = setting("", "Where the agent keeps the exact set of keys its filter counts: 'memory' or "
+                              "'sqlite' (in state-dir); empty: memory for Redis, sqlite for PostgreSQL (which "
+                              "lets a restart resume the replication slot instead of listing the table).")
+    state_dir: Path = setting(Path("./agent-state"), "Folder of the agent's own state: its epoch counter and, "
+                                                     "with the sqlite ledger, the ledger.")
+    configure_notifications: bool = setting(False, "Redis only: turn on the notify-keyspace-events classes the "
+                                                   "agent needs (CONFIG SET; not saved in redis.conf) instead of "
+                                                   "refusing to start.")
+    write_timeout_ms: int = setting(10_000, "How long a write routed through a coordinator waits for the store's "
+                                            "change feed to bring it into the filter; past it the write (already "
+                                            "in the store) fails UNAVAILABLE and may be retried.")
+
+    def validate(self) -> None:
+        super().validate()
+        if not self.store:
+            raise ConfigError(f"setting 'store' is required (--store, {self.env_prefix}STORE or store in "
+                              f"[{self.section}])")
+        kind = store_kind(self.store)
+        if self.ledger not in ("", *LEDGER_KINDS):
+            raise ConfigError(f"setting 'ledger': must be 'memory' or 'sqlite', got {self.ledger!r}")
+        if self.configure_notifications and kind != "redis":
+            raise ConfigError("setting 'configure-notifications': applies to a Redis store only")
+        if self.write_timeout_ms < 1:
+            raise ConfigError(f"setting 'write-timeout-ms': must be at least 1, got {self.write_timeout_ms}")
+        if self.store_password_file is not None:
+            self.store_password()
+
+    @property
+    def store_kind(self) -> str:
+        return store_kind(self.store)
+
+    @property
+    def ledger_kind(self) -> str:
+        """The ledger in force: the setting, or the store's default."""
+        return self.ledger or ("memory" if self.store_kind == "redis" else "sqlite")
+
+    def store_password(self) -> str:
+        """The first line of store-password-file ('' without one); ConfigError when unreadable."""
+        if self.store_password_file is None:
+            return ""
+        try:
+            lines = self.store_password_file.read_text().splitlines()
+        except (OSError, ValueError) as exc:
+            raise ConfigError(f"setting 'store-password-file': cannot read {str(self.store_password_file)!r}: "
+                              f"{exc}") from None
+        if not lines or not lines[0]:
+            raise ConfigError(f"setting 'store-password-file': {str(self.store_password_file)!r} has no password "
+                              f"on its first line")
+        return lines[0]

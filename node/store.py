@@ -16,6 +16,21 @@ Source: SQLite documentation, "PRAGMA synchronous" and "Write-Ahead Logging" (sq
 Concurrency: one writer connection, used only by the caller that holds the node's write
 lock (SqliteStore does not lock writes itself beyond a guard against misuse); reads use one
 connection per thread, which WAL lets run beside the writer.
+
+Stores the node does not own (docs/agents.md). A node that keeps the filter of a store it
+does not own is an *agent*. What any store gives the node, split by who writes it:
+- `Store`: a key listing in byte order with a cursor (`scan`), point reads and writes, and
+  meta storage. The node's own stores (SqliteStore, MemoryStore) are a `Store` whose change
+  feed is the node's own write path: NodeCore commits and records in one critical section.
+- `ExternalStore`: an adapter to a store that others write (Redis, PostgreSQL). It gives
+  point reads (probes), point writes (writes routed through a coordinator), a membership
+  check (`exists_many`) and a `ChangeFeed`: one ordered stream of `FeedEvent`s holding its
+  listing and the keys others add and remove, with `FeedBroken` when changes may have been
+  lost (a fresh listing follows).
+- `KeyLedger`: the agent's exact set of the keys its filter counts. It is a `Store` (values
+  are empty), so NodeCore runs an agent unchanged: its first filter and every rebuild scan
+  the ledger in byte order, and a ledger commit tells whether each key was new or present,
+  which is what makes every count and uncount a verified one (docs/agents.md, "Exactness").
 """
 
 from __future__ import annotations
@@ -23,8 +38,9 @@ from __future__ import annotations
 import bisect
 import sqlite3
 import threading
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterable, Protocol, Sequence
+from typing import Iterable, Protocol, Sequence, Union
 
 SYNC_LEVELS = {"full": "FULL", "normal": "NORMAL"}
 DB_FILE = "node.sqlite3"
@@ -32,6 +48,16 @@ DB_FILE = "node.sqlite3"
 
 class StoreError(RuntimeError):
     """The store could not be opened or a write failed (nothing of that write was applied)."""
+
+
+class StoreUnavailable(StoreError):
+    """A store the node does not own did not answer, or did not confirm a change in time.
+    Retrying may succeed (gRPC UNAVAILABLE)."""
+
+
+class StoreRefused(StoreError):
+    """A store the node does not own cannot hold this key or value; nothing was written
+    (gRPC INVALID_ARGUMENT)."""
 
 
 class Store(Protocol):
@@ -70,6 +96,146 @@ class Store(Protocol):
 
     def close(self) -> None:
         """Release files; further calls fail."""
+
+
+class KeyLedger(Store, Protocol):
+    """An agent's exact set of counted keys (values are empty), listed in byte order."""
+
+    durable: bool   # True: the keys survive a restart (a resumable feed may continue onto them)
+
+    def clear(self) -> None:
+        """Forget every key in one transaction (only before the agent's filter exists)."""
+
+
+# --------------------------------------------------------------------------- change feeds
+
+
+@dataclass(frozen=True)
+class ListingStarted:
+    """A full listing of the store begins. Every change made after the feed's subscription
+    point follows as KeysAdded / KeysRemoved, interleaved with the listing's batches."""
+
+    reason: str
+
+
+@dataclass(frozen=True)
+class Listed:
+    """A batch of the listing: keys that existed at some moment since ListingStarted (in any
+    order; a key may repeat)."""
+
+    keys: tuple[bytes, ...]
+
+
+@dataclass(frozen=True)
+class ListingDone:
+    """The listing returned every key that existed from ListingStarted until now."""
+
+
+@dataclass(frozen=True)
+class KeysAdded:
+    """Keys that became present, in the store's commit order. `position`: where the feed can
+    resume after this change (None: the feed cannot resume; see ChangeFeed.confirm)."""
+
+    keys: tuple[bytes, ...]
+    position: int | None = None
+
+
+@dataclass(frozen=True)
+class KeysRemoved:
+    """Keys that stopped being present (deleted, expired, evicted, renamed or moved away)."""
+
+    keys: tuple[bytes, ...]
+    position: int | None = None
+
+
+@dataclass(frozen=True)
+class StoreEmptied:
+    """Every key of the watched table is gone (TRUNCATE), at this point of the order."""
+
+    position: int | None = None
+
+
+@dataclass(frozen=True)
+class FeedBroken:
+    """Changes may have been lost from here on (subscription dropped, server restarted,
+    store flushed, replication slot lost). A ListingStarted follows once the store answers."""
+
+    reason: str
+
+
+@dataclass(frozen=True)
+class Mark:
+    """Every change committed before ChangeFeed.mark() returned `token` was delivered before
+    this event. `store_count`: the store's key count at that same instant, when the store can
+    tell it atomically with the mark (None otherwise)."""
+
+    token: int
+    store_count: int | None = None
+
+
+FeedEvent = Union[ListingStarted, Listed, ListingDone, KeysAdded, KeysRemoved, StoreEmptied, FeedBroken, Mark]
+
+
+class ChangeFeed(Protocol):
+    """One ordered stream of FeedEvents from a store the node does not own."""
+
+    origin: str   # what this feed's positions belong to (a replication slot); kept in the ledger's meta
+
+    def poll(self, timeout: float) -> list[FeedEvent]:
+        """The events available now, waiting up to `timeout` s for the first (may be empty)."""
+
+    def mark(self) -> int:
+        """Emit a Mark into the stream after every change committed so far; returns its token."""
+
+    def confirm(self, position: int) -> None:
+        """Changes up to `position` are durable in the agent's ledger: the store may forget
+        them (a replication slot moves on). A no-op for feeds that cannot resume."""
+
+    def close(self) -> None:
+        """Stop watching; later polls return nothing."""
+
+
+class ExternalStore(Protocol):
+    """An adapter to a store others write (docs/agents.md has each adapter's promise)."""
+
+    url: str                 # the store's address without secrets, for logs
+    resumable: bool          # True: its feed resumes where the agent left off (no relisting)
+
+    def open_feed(self, resume_from: str | None) -> ChangeFeed:
+        """Start watching changes, then list the store in the same stream. With the `origin`
+        of an earlier feed whose changes the ledger holds, a resumable store continues after
+        that feed's last confirmed position instead (no listing) when it still can."""
+
+    def exists_many(self, keys: Sequence[bytes]) -> list[bool]:
+        """Whether each key is present now."""
+
+    def get_many(self, keys: Sequence[bytes]) -> list[bytes | None]:
+        """The value of each key (None: absent), for probes."""
+
+    def put_many(self, items: Sequence[tuple[bytes, bytes]]) -> None:
+        """Write all items in one transaction (the feed reports the new keys)."""
+
+    def delete_many(self, keys: Sequence[bytes]) -> None:
+        """Delete all keys in one transaction (the feed reports the removed keys)."""
+
+    def close(self) -> None:
+        """Release connections."""
+
+
+def open_external(url: str, **options: object) -> ExternalStore:
+    """The adapter for `url`: redis://HOST:PORT/DB or postgresql://USER@HOST:PORT/DB?table=T&key=C.
+    Imports the driver only here, so a node without agents needs neither."""
+    scheme = url.split(":", 1)[0].lower()
+    if scheme in ("redis", "rediss"):
+        from shardsieve.node.adapters.redis_store import RedisStore
+
+        return RedisStore(url, **options)  # type: ignore[arg-type]
+    if scheme in ("postgresql", "postgres"):
+        from shardsieve.node.adapters.postgres_store import PostgresStore
+
+        return PostgresStore(url, **options)  # type: ignore[arg-type]
+    raise StoreError(f"unknown store address {url!r}: use redis://HOST:PORT/DB or "
+                     f"postgresql://USER@HOST:PORT/DB?table=TABLE&key=COLUMN")
 
 
 class MemoryStore:

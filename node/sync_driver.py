@@ -10,6 +10,10 @@ in its outbox. The outbox is bounded in effect: NodeSync is given a send budget 
 stream only while fewer than `MAX_QUEUED` messages wait to be written; it bounds the history
 it keeps for a lagging coordinator and switches it to a snapshot beyond that.
 
+An agent holds its streams while its store's feed is not live (`hold`/`release`): the
+stream ends at once and stays closed, so every coordinator lists the node as stale
+(docs/agents.md, "Staleness and the new epoch"); a release reconnects without backoff.
+
 Reconnects use jittered exponential backoff (after the n-th failure in a row sleep
 uniform(min/2, min(max, min*2^n)): "full jitter" of AWS Architecture Blog, "Exponential
 Backoff And Jitter", 2015, with a floor of min/2 so a reconnect never spins), reset after a
@@ -36,6 +40,7 @@ from shardsieve.v1 import sync_pb2, sync_pb2_grpc
 log = logging.getLogger("shardsieve.node.sync")
 
 MAX_QUEUED = 64
+HELD = "the node holds its sync streams"
 
 
 def backoff_delay(failures: int, lo: float, hi: float, rng: random.Random) -> float:
@@ -80,16 +85,47 @@ class SyncDriver:
         self.executor = executor        # where NodeSync steps run (None: the loop's default executor)
         self._stopping: asyncio.Event | None = None
         self._task: asyncio.Task[None] | None = None
+        self._released: asyncio.Event | None = None   # set while streams may run (see hold)
+        self._held_reason = ""
+        self._outbox: Outbox[sync_pb2.NodeMessage] | None = None   # of the stream running now
         self.connected = False
         self.connects = 0
         self.acks = 0
         self.last_error = ""
 
     # ------------------------------------------------------------------ lifecycle
-    def start(self) -> None:
-        """Start the driver's task on the running loop."""
+    def start(self, held: str = "") -> None:
+        """Start the driver's task on the running loop (`held`: start held, for that reason)."""
         self._stopping = asyncio.Event()
+        self._released = asyncio.Event()
+        if held:
+            self._held_reason = held
+        else:
+            self._released.set()
         self._task = asyncio.create_task(self._run(), name=f"sync-{self.address}")
+
+    @property
+    def held(self) -> bool:
+        return self._released is not None and not self._released.is_set()
+
+    def hold(self, reason: str) -> None:
+        """End the stream now and open none until release() (call on the loop). The coordinator
+        sees the stream close, so it lists this node as stale at once."""
+        if self._released is None or self.held:
+            return
+        self._released.clear()
+        self._held_reason = reason
+        outbox = self._outbox
+        if outbox is not None:
+            outbox.end(StreamEnd(grpc.StatusCode.CANCELLED, f"{HELD}: {reason}"), now=True)
+        log.info("sync stream held", extra={"coordinator": self.address, "reason": reason})
+
+    def release(self) -> None:
+        """Open the stream again (at once, without backoff)."""
+        if self._released is None or not self.held:
+            return
+        self._released.set()
+        log.info("sync stream released", extra={"coordinator": self.address})
 
     async def stop(self, timeout: float = 5.0) -> None:
         """End the stream (the coordinator sees it close) and the reconnect loop."""
@@ -101,12 +137,18 @@ class SyncDriver:
 
     def status(self) -> dict[str, Any]:
         return {"address": self.address, "connected": self.connected, "connects": self.connects,
-                "acks": self.acks, "lag": self.core.peer_lag(self.peer), "last_error": self.last_error}
+                "acks": self.acks, "lag": self.core.peer_lag(self.peer), "last_error": self.last_error,
+                "held": self._held_reason if self.held else ""}
 
     # ------------------------------------------------------------------ loop
     async def _run(self) -> None:
         failures = 0
         while not self._stopped():
+            if self.held:
+                if await self._until_released():
+                    break
+                failures = 0
+                continue
             try:
                 worked = await self._one_stream()
             except asyncio.CancelledError:
@@ -117,6 +159,8 @@ class SyncDriver:
                 worked = False
             if self._stopped():
                 break
+            if self.held:
+                continue
             failures = 0 if worked else failures + 1
             delay = backoff_delay(failures, self.backoff_min, self.backoff_max, self.rng)
             log.info("sync stream down, reconnecting", extra={"coordinator": self.address,
@@ -127,6 +171,18 @@ class SyncDriver:
 
     def _stopped(self) -> bool:
         return self._stopping is not None and self._stopping.is_set()
+
+    async def _until_released(self) -> bool:
+        """Wait until release() or stop(); True when stopping."""
+        assert self._stopping is not None and self._released is not None
+        stopping = asyncio.ensure_future(self._stopping.wait())
+        released = asyncio.ensure_future(self._released.wait())
+        try:
+            await asyncio.wait([stopping, released], return_when=asyncio.FIRST_COMPLETED)
+        finally:
+            stopping.cancel()
+            released.cancel()
+        return self._stopped()
 
     async def _pause(self, delay: float) -> bool:
         """Wait `delay` seconds or until stop(); True when stopping."""
@@ -141,6 +197,7 @@ class SyncDriver:
         """Open, run and close one stream; True if the coordinator acknowledged something on it."""
         loop = asyncio.get_running_loop()
         outbox: Outbox[sync_pb2.NodeMessage] = Outbox(MAX_QUEUED)
+        self._outbox = outbox
         acked = [False]
         channel = make_aio_channel(self.address, self.credentials, options=[
             ("grpc.max_send_message_length", 64 << 20), ("grpc.max_receive_message_length", 64 << 20),
@@ -181,6 +238,8 @@ class SyncDriver:
             end = await pump(read=call.read, write=write, handle=handle, outbox=outbox, on_close=on_close,
                              name=f"sync-{self.address}")
             self._note_end(end)
+            if end.limit:   # the coordinator refused this node's filter by a setting of its own
+                await loop.run_in_executor(self.executor, self._refused, end.limit)
             return acked[0]
         except SyncError as exc:
             self.last_error = f"{type(exc).__name__}: {exc}"
@@ -189,6 +248,7 @@ class SyncDriver:
             return False
         finally:
             self.connected = False
+            self._outbox = None
             if ticker is not None:
                 ticker.cancel()
             if call is not None:
@@ -200,13 +260,17 @@ class SyncDriver:
             await channel.close()
 
     def _note_end(self, end: StreamEnd) -> None:
-        if end.ok or end.code == grpc.StatusCode.CANCELLED and self._stopped():
+        if end.ok or end.code == grpc.StatusCode.CANCELLED and (self._stopped() or self.held):
             return
         self.last_error = end.describe()
         if end.code == grpc.StatusCode.ABORTED:
             # e.g. another stream for this node id took over at the coordinator; the detail names its peer
             log.warning("the coordinator ended this sync stream", extra={"coordinator": self.address,
                                                                          "detail": end.details})
+
+    def _refused(self, limit: str) -> None:
+        with self.core.sync_step(time.monotonic()) as sync:
+            sync.refused(self.peer, limit)
 
     def _receive(self, reply: sync_pb2.CoordinatorMessage) -> None:
         now = time.monotonic()

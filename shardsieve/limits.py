@@ -27,10 +27,22 @@ MAX_ADDRESS_CHARS = 256
 MAX_REASON_CHARS = 1024
 
 
+#: Trailing metadata key that names the coordinator setting a refused stream broke, so a node
+#: can act on the refusal without reading message text (e.g. give up a rebuild whose filter size
+#: the coordinator refuses, docs/node.md, "Rebuild").
+LIMIT_METADATA_KEY = "shardsieve-limit"
+FILTER_SIZE_LIMIT = "max-filter-bits"
+
+
 class LimitExceeded(SyncError):
-    """A message is larger than this coordinator accepts; the stream ends, nothing changed."""
+    """A message is larger than this coordinator accepts; the stream ends, nothing changed.
+    `setting` names the coordinator setting that was broken ("" for fixed limits)."""
 
     grpc_status_name = "RESOURCE_EXHAUSTED"
+
+    def __init__(self, message: str, setting: str = "") -> None:
+        super().__init__(message)
+        self.setting = setting
 
 
 @dataclass(frozen=True)
@@ -100,7 +112,7 @@ def valid_node_id(node_id: object) -> bool:
 def _check_geometry(g: filter_pb2.Geometry, limits: SyncLimits, where: str) -> None:
     if g.bits > limits.max_filter_bits:
         raise LimitExceeded(f"{where} declares a filter of {g.bits} bits; this coordinator accepts at most "
-                            f"{limits.max_filter_bits} (setting max-filter-bits)")
+                            f"{limits.max_filter_bits} (setting max-filter-bits)", FILTER_SIZE_LIMIT)
     if g.hashes > MAX_HASHES:
         raise LimitExceeded(f"{where} declares {g.hashes} hash functions; at most {MAX_HASHES} are accepted")
 
@@ -126,14 +138,15 @@ def check_node_message(msg: sync_pb2.NodeMessage, limits: SyncLimits) -> None:
     elif kind == "delta":
         if len(msg.delta.payload) > limits.max_delta_bytes:
             raise LimitExceeded(f"delta {msg.delta.sequence} carries {len(msg.delta.payload)} bytes; at most "
-                                f"{limits.max_delta_bytes} are accepted (setting max-delta-bytes)")
+                                f"{limits.max_delta_bytes} are accepted (setting max-delta-bytes)", "max-delta-bytes")
     elif kind == "snapshot_chunk":
         c = msg.snapshot_chunk
         if c.HasField("geometry"):
             _check_geometry(c.geometry, limits, f"snapshot {c.snapshot_id}")
         if c.chunk_count > limits.max_snapshot_chunks:
             raise LimitExceeded(f"snapshot {c.snapshot_id} declares {c.chunk_count} chunks; at most "
-                                f"{limits.max_snapshot_chunks} are accepted (setting max-snapshot-chunks)")
+                                f"{limits.max_snapshot_chunks} are accepted (setting max-snapshot-chunks)",
+                                "max-snapshot-chunks")
         if c.total_bytes > limits.max_snapshot_bytes:
             raise LimitExceeded(f"snapshot {c.snapshot_id} declares {c.total_bytes} bytes; at most "
                                 f"{limits.max_snapshot_bytes} are accepted")

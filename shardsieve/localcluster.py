@@ -11,8 +11,13 @@ For cluster tests, the tour, the load tester and benchmarks::
         cluster.restart_coordinator()             # and wait_fresh() again
     # every process is stopped here, also on Ctrl-C or an exception
 
-Layout of the directory: coordinator/ (its state dir + coordinator.log), <node-id>/ (store) and
-<node-id>.log per node. Every wait takes a deadline; nothing sleeps blindly.
+Agents (docs/agents.md) join the same way: `agents={"brinewick-cache": ["--store", redis_url]}`
+starts `shardsieve agent --id brinewick-cache --store ...` with the cluster's coordinator,
+filter size, push interval and heartbeats; it is a node like the others for every helper
+(`node_handles`, `storage`, `wait_fresh`, `stop_node`, `start_node`).
+
+Layout of the directory: coordinator/ (its state dir + coordinator.log), <node-id>/ (store, or an
+agent's state dir) and <node-id>.log per node. Every wait takes a deadline; nothing sleeps blindly.
 """
 
 from __future__ import annotations
@@ -22,7 +27,7 @@ import signal
 import threading
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Sequence
+from typing import Any, Mapping, Sequence
 
 import grpc
 
@@ -65,6 +70,8 @@ class LocalCluster:
     token: str = ""
     metrics: bool = False
     node_ids: Sequence[str] | None = None
+    # agent node id -> its own arguments (at least --store URL); see the module doc
+    agents: Mapping[str, Sequence[str]] = field(default_factory=dict)
     extra_node_args: Sequence[str] = ()
     extra_coordinator_args: Sequence[str] = ()
     start_timeout: float = 60.0
@@ -143,6 +150,15 @@ class LocalCluster:
                 "--coordinator", self.coordinator_address, "--capacity", str(self.capacity), "--fpr", str(self.fpr),
                 "--push-interval-ms", str(self.push_interval_ms), "--heartbeat-ms", str(self.heartbeat_ms),
                 "--sync-level", self.sync_level, "--log-format", "text", *self._tls_args(nid), *self.extra_node_args)
+            self.node_handles[nid] = NodeHandle(nid, port, self.directory / nid, self.directory / f"{nid}.log", argv)
+        for nid, agent_args in self.agents.items():
+            port = free_port(HOST)
+            plaintext = ["--allow-plaintext", "true"] if self.tls_dir is None else []
+            argv = shardsieve_argv(
+                "agent", "--id", nid, "--listen", f"{HOST}:{port}", "--state-dir", str(self.directory / nid),
+                "--coordinator", self.coordinator_address, "--capacity", str(self.capacity), "--fpr", str(self.fpr),
+                "--push-interval-ms", str(self.push_interval_ms), "--heartbeat-ms", str(self.heartbeat_ms),
+                "--log-format", "text", *plaintext, *self._tls_args(nid), *agent_args)
             self.node_handles[nid] = NodeHandle(nid, port, self.directory / nid, self.directory / f"{nid}.log", argv)
 
     def coordinator_argv(self) -> list[str]:

@@ -32,6 +32,7 @@ from typing import Any, Awaitable, Callable, Generic, Iterable, Optional, Sequen
 
 import grpc
 
+from shardsieve.limits import LIMIT_METADATA_KEY
 from shardsieve.sync.errors import SyncError
 
 log = logging.getLogger("shardsieve.stream")
@@ -48,6 +49,7 @@ class StreamEnd:
 
     code: grpc.StatusCode
     details: str = ""
+    limit: str = ""      # the setting a refusal for size broke (LimitExceeded.setting), sent as metadata
 
     @property
     def ok(self) -> bool:
@@ -57,7 +59,7 @@ class StreamEnd:
     def of_sync_error(cls, exc: SyncError) -> StreamEnd:
         """A protocol error ends the stream with the status the error names (shardsieve/sync/errors.py)."""
         code = getattr(grpc.StatusCode, exc.grpc_status_name, grpc.StatusCode.FAILED_PRECONDITION)
-        return cls(code, str(exc))
+        return cls(code, str(exc), getattr(exc, "setting", ""))
 
     @classmethod
     def of_rpc_error(cls, exc: BaseException) -> StreamEnd:
@@ -66,10 +68,23 @@ class StreamEnd:
         if not isinstance(code, grpc.StatusCode):
             return cls(grpc.StatusCode.UNAVAILABLE, f"{type(exc).__name__}: {exc}")
         details = exc.details() if callable(getattr(exc, "details", None)) else str(exc)  # type: ignore[union-attr]
-        return cls(code, details or "")
+        return cls(code, details or "", _limit_of(exc))
 
     def describe(self) -> str:
         return f"{self.code.name}: {self.details}" if self.details else self.code.name
+
+
+def _limit_of(exc: BaseException) -> str:
+    """The setting a refused stream broke, from the coordinator's trailing metadata ("" if none)."""
+    trailing = getattr(exc, "trailing_metadata", None)
+    try:
+        metadata = trailing() if callable(trailing) else ()
+    except Exception:  # noqa: BLE001 - no metadata on this error: nothing structured to read
+        return ""
+    for key, value in metadata or ():
+        if key == LIMIT_METADATA_KEY:
+            return value if isinstance(value, str) else value.decode("ascii", "replace")
+    return ""
 
 
 PEER_CLOSED = StreamEnd(grpc.StatusCode.OK, "the peer closed its side of the stream")

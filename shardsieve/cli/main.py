@@ -11,6 +11,8 @@ COMMANDS = {
     "plan": "shardsieve.cli.plan:plan",
     "bench": "shardsieve.cli.bench:bench",
     "node": "shardsieve.node.cli:node_command",
+    "agent": "shardsieve.node.agent_cli:agent_command",
+    "agent-retire": "shardsieve.node.agent_cli:agent_retire_command",
     "coordinator": "shardsieve.coordinator.cli:coordinator_command",
     "status": "shardsieve.cli.ops:status",
     "inspect": "shardsieve.cli.ops:inspect_node",
@@ -33,7 +35,8 @@ COMMANDS = {
 def cli() -> None:
     """Route key lookups in a sharded store to the nodes whose Bloom filters may hold the key.
 
-    Daemons: `node`, `coordinator`. Planning and measurement: `plan`, `bench`, `loadtest`,
+    Daemons: `node`, `coordinator`, `agent` (the filter of a Redis or PostgreSQL store you
+    run; `agent-retire` removes what it left there). Planning and measurement: `plan`, `bench`, `loadtest`,
     `tour`. Operating a fleet: `status`, `inspect`, `rebuild`, `locate`, `get`, `put`,
     `delete`, `policy`, `unlist`. Setup and checks: `certs`, `health`.
     """

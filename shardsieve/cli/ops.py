@@ -22,7 +22,7 @@ from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
 from shardsieve.client import (
-    EXIT_FAILURE, EXIT_INVALID, EXIT_NOT_FOUND, EXIT_USAGE, ClientError, CoordinatorClient, resolve_settings,
+    EXIT_FAILURE, EXIT_INVALID, EXIT_NOT_FOUND, EXIT_USAGE, ClientError, OperatorClient, resolve_settings,
 )
 from shardsieve.limits import node_id_problem
 
@@ -148,11 +148,11 @@ def coordinator_options(func: F) -> F:
 
 
 def open_client(coordinator: str | None, token: str | None, config_file: str | None,
-                timeout_s: float | None) -> CoordinatorClient:
+                timeout_s: float | None) -> OperatorClient:
     ctx = click.get_current_context(silent=True)
     tls_env = ctx.meta.get("tls_env", {}) if ctx is not None else {}
     environ = {**os.environ, **tls_env} if tls_env else None
-    return CoordinatorClient(resolve_settings(coordinator, token, config_file, timeout_s, environ=environ))
+    return OperatorClient(resolve_settings(coordinator, token, config_file, timeout_s, environ=environ))
 
 
 def emit_json(data: Any) -> None:
@@ -392,17 +392,16 @@ def inspect_node(node: str, coordinator: str | None, token: str | None, config_f
 # ---------------------------------------------------------------------------------------------
 # rebuild
 # ---------------------------------------------------------------------------------------------
-def wait_for_rebuilds(client: CoordinatorClient, before: dict[str, int], queued: list[str], timeout_s: float,
-                      show_progress: bool, start: Callable[[list[str]], list[str]]) -> dict[str, dict[str, Any]]:
+def wait_for_rebuilds(client: OperatorClient, before: dict[str, int], queued: list[str], timeout_s: float,
+                      show_progress: bool, bits_before: dict[str, int] | None = None,
+                      planned_bits: dict[str, int] | None = None) -> dict[str, dict[str, Any]]:
     """Poll FleetStatus until every node in `before` has a higher epoch and is not rebuilding.
-
-    The coordinator does not start rebuilds it reported as queued (over the concurrent-rebuild
-    limit) by itself, so while some are queued this asks for them again; `start` returns the
-    node ids the coordinator accepted.
-    """
+    Queued ones (over the concurrent-rebuild limit) are started by the coordinator as slots
+    free up; they show as queued until their node reports a rebuild phase."""
     deadline = time.monotonic() + timeout_s
     results: dict[str, dict[str, Any]] = {}
     queued = list(queued)
+    bits_before, planned_bits = bits_before or {}, planned_bits or {}
     progress = Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),
                         TextColumn("{task.fields[phase]}"), TimeElapsedColumn(),
                         console=console(stderr=True), disable=not show_progress, transient=False)
@@ -417,28 +416,37 @@ def wait_for_rebuilds(client: CoordinatorClient, before: dict[str, int], queued:
                 if n is None:
                     raise ClientError(f"node {nid} left the fleet during its rebuild: check `shardsieve status`",
                                       EXIT_FAILURE)
-                if nid in queued:
-                    continue
+                if nid in queued and (n.rebuild_phase or n.epoch > epoch0):
+                    queued.remove(nid)          # the coordinator started it
                 done = n.epoch > epoch0 and n.state != "rebuilding"
                 if done and nid not in results:
+                    # a new epoch at the old size, after asking for another: the node gave it up
+                    given_up = planned_bits.get(nid, 0) not in (0, bits_before.get(nid, 0)) \
+                        and n.geometry.bits == bits_before.get(nid)
                     results[nid] = {"node_id": nid, "epoch_before": epoch0, "epoch_after": n.epoch,
                                     "capacity": n.capacity, "fill": n.fill, "predicted_fpr": n.predicted_fpr,
-                                    "geometry": message_to_dict(n.geometry)}
+                                    "geometry": message_to_dict(n.geometry), "given_up": given_up}
                 progress.update(tasks[nid], completed=1.0 if done else min(0.99, n.rebuild_progress),
-                                phase="swapped" if done else (n.rebuild_phase or n.state or "started"))
+                                phase=("given up" if results[nid]["given_up"] else "swapped") if done
+                                else "queued" if nid in queued
+                                else (n.rebuild_phase or n.state or "started"))
             if len(results) == len(before):
                 return results
-            if queued and reply.rebuilds_in_progress == 0:
-                for nid in start(queued):
-                    queued.remove(nid)
-                    before[nid] = nodes[nid].epoch
-                    progress.update(tasks[nid], phase="started")
             if time.monotonic() > deadline:
                 waiting = sorted(set(before) - set(results))
                 raise ClientError(f"rebuild of {', '.join(waiting)} did not finish within {timeout_s:.0f}s; started "
                                   f"ones continue in the background: follow them with `shardsieve status`",
                                   EXIT_FAILURE)
             time.sleep(0.2)
+
+
+def _fail_given_up(results: dict[str, dict[str, Any]]) -> None:
+    """--wait: a rebuild the node gave up (a new epoch at its old size) is a failure, not a success."""
+    given_up = sorted(nid for nid, r in results.items() if r["given_up"])
+    if given_up:
+        raise ClientError(f"the rebuild of {', '.join(given_up)} was given up by the node, which keeps its old "
+                          "filter: `shardsieve inspect NODE` shows the decision, the node's log says why (e.g. a "
+                          "coordinator refusing that size)", EXIT_FAILURE)
 
 
 @click.command(cls=OneLineCommand, short_help="Replace nodes' filters with freshly sized ones.")
@@ -469,42 +477,50 @@ def rebuild(nodes: tuple[str, ...], flagged: bool, capacity: int | None, fpr: fl
                           EXIT_USAGE)
     check_node_ids(*nodes)
     with open_client(coordinator, token, config_file, timeout_s) as client:
-        before = {n.node_id: n.epoch for n in client.fleet_status().nodes} if wait else {}
+        status = client.fleet_status().nodes if wait else []
+        before = {n.node_id: n.epoch for n in status}
+        bits_before = {n.node_id: n.geometry.bits for n in status}
         reply = client.rebuild(list(nodes), flagged=flagged, capacity=capacity or 0, target_fpr=fpr or 0.0,
                                dry_run=dry_run)
         plan = [message_to_dict(p) for p in reply.plan]
         results: dict[str, dict[str, Any]] = {}
         if wait and reply.plan:
-            def start(queued: list[str]) -> list[str]:
-                again = client.rebuild(queued, capacity=capacity or 0, target_fpr=fpr or 0.0)
-                return [p.node_id for p in again.plan if not p.queued]
-
             results = wait_for_rebuilds(client, {p.node_id: before.get(p.node_id, 0) for p in reply.plan},
                                         [p.node_id for p in reply.plan if p.queued], wait_timeout,
-                                        show_progress=not as_json, start=start)
+                                        show_progress=not as_json, bits_before=bits_before,
+                                        planned_bits={p.node_id: p.geometry.bits for p in reply.plan})
     if as_json:
         emit_json({"dry_run": reply.dry_run, "plan": plan,
                    "completed": [results[k] for k in sorted(results)] if wait else None})
+        _fail_given_up(results)
         return
     out = console()
     if not reply.plan:
         out.print("nothing to rebuild" + (" (no node is flagged)" if flagged else ""))
         return
     table = Table(title="rebuild plan (dry run: nothing changed)" if reply.dry_run else "rebuild started")
-    for col in ("node", "capacity", "target FPR", "geometry", "reason", "queued"):
-        table.add_column(col)
+    for col in ("node", "capacity", "target FPR", "geometry", "filter bytes", "replica bytes after", "state",
+                "reason"):
+        table.add_column(col, justify="right" if "bytes" in col or col == "capacity" else "left")
     for p in reply.plan:
+        state = f"refused: {p.refused}" if p.refused else "queued" if p.queued else "start"
         table.add_row(p.node_id, fmt_count(p.capacity), fmt_rate(p.target_fpr), geometry_text(p.geometry),
-                      p.reason, "yes" if p.queued else "")
+                      fmt_count(p.filter_bytes), fmt_count(p.replica_bytes_after), state, p.reason,
+                      style="bold red" if p.refused else None)
     out.print(table)
+    if any(p.refused for p in reply.plan):
+        out.print("[bold red]refused plans would not start[/]: without --dry-run the whole request is refused "
+                  "and nothing starts")
     for nid in sorted(results):
         r = results[nid]
         out.print(f"{nid}: epoch {r['epoch_before']} -> {r['epoch_after']}, capacity {fmt_count(r['capacity'])}, "
-                  f"fill {r['fill']:.1%}, predicted FPR {fmt_rate(r['predicted_fpr'])}")
+                  f"fill {r['fill']:.1%}, predicted FPR {fmt_rate(r['predicted_fpr'])}"
+                  + (" — GIVEN UP by the node, old size kept" if r["given_up"] else ""))
+    _fail_given_up(results)
     queued = [p.node_id for p in reply.plan if p.queued]
     if queued and not wait and not reply.dry_run:
-        out.print(f"queued (over the policy's max_concurrent_rebuilds, not started): {', '.join(queued)} — "
-                  f"ask again once the running rebuild finished, or use --wait, which starts them in turn")
+        out.print(f"queued (over the policy's max_concurrent_rebuilds): {', '.join(queued)} — the coordinator "
+                  f"starts them as rebuild slots free up")
     if not wait and not reply.dry_run:
         out.print("follow it with `shardsieve status` (or rerun with --wait)")
 
@@ -527,8 +543,8 @@ def locate(key: str, hex_input: bool, coordinator: str | None, token: str | None
     """List the candidate nodes whose filters may hold KEY (no node is asked)."""
     k = decode_key(key, hex_input)
     with open_client(coordinator, token, config_file, timeout_s) as client:
-        reply = client.locate(k)
-    cands = [message_to_dict(c) for c in reply.candidates]
+        found = client.run("Locate", lambda: client.client.locate(k))
+    cands = [{"node_id": c.node_id, "address": c.address, "stale": c.stale, "hinted": c.hinted} for c in found]
     if as_json:
         emit_json({"key": show_bytes(k), "candidates": cands})
         return
@@ -540,7 +556,7 @@ def locate(key: str, hex_input: bool, coordinator: str | None, token: str | None
     table = Table()
     for col in ("node", "address", "why listed"):
         table.add_column(col)
-    for c in reply.candidates:
+    for c in found:
         why = "stale sync (safe mode)" if c.stale else ("recent write" if c.hinted else "filter match")
         table.add_row(c.node_id, c.address, why)
     out.print(table)
@@ -556,18 +572,18 @@ def get(key: str, hex_input: bool, coordinator: str | None, token: str | None, c
     """Read KEY through the coordinator; print its value (exit 5 when no node holds it)."""
     k = decode_key(key, hex_input)
     with open_client(coordinator, token, config_file, timeout_s) as client:
-        reply = client.read(k)
+        reply = client.run("Read", lambda: client.client.get(k))
     if as_json:
         emit_json({"key": show_bytes(k), "found": reply.found,
-                   "value": show_bytes(reply.value) if reply.found else None,
-                   "value_hex": reply.value.hex() if reply.found else None,
-                   "node_id": reply.node_id or None, "probes": reply.probes,
+                   "value": show_bytes(reply.value) if reply.value is not None else None,
+                   "value_hex": reply.value.hex() if reply.value is not None else None,
+                   "node_id": reply.node_id, "probes": reply.candidates,
                    "wasted_probes": reply.wasted_probes, "candidates": reply.candidates})
         if not reply.found:
             sys.exit(EXIT_NOT_FOUND)
         return
-    if not reply.found:
-        raise ClientError(f"{show_bytes(k)!r} is on no node ({reply.probes} probes, {reply.candidates} "
+    if reply.value is None:
+        raise ClientError(f"{show_bytes(k)!r} is on no node ({reply.candidates} probes, {reply.candidates} "
                           f"candidates): check the key, or `shardsieve locate` it", EXIT_NOT_FOUND)
     click.echo(reply.value.hex() if hex_input else show_bytes(reply.value))
 
@@ -575,24 +591,32 @@ def get(key: str, hex_input: bool, coordinator: str | None, token: str | None, c
 @click.command(cls=OneLineCommand)
 @click.argument("key")
 @click.argument("value")
-@click.option("--node", "node_id", default="", help="Store on this node id (default: the coordinator places it).")
+@click.option("--node", "node_id", default="",
+              help="Store on this node id (default: where the key is, else the coordinator places it). A key held "
+                   "on another node is refused unless --move.")
+@click.option("--move", is_flag=True, help="With --node: if the key is on another node, move it: write the new copy "
+                                           "on --node, then delete the old one.")
 @hex_pair_option
 @coordinator_options
 @guarded
-def put(key: str, value: str, node_id: str, hex_input: bool, coordinator: str | None, token: str | None,
+def put(key: str, value: str, node_id: str, move: bool, hex_input: bool, coordinator: str | None, token: str | None,
         config_file: str | None, timeout_s: float | None, as_json: bool) -> None:
     """Store VALUE under KEY through the coordinator (routable at once: read-your-writes)."""
+    if move and not node_id:
+        raise ClientError("--move needs --node (the node to move the key to)", EXIT_USAGE)
     if node_id:
         check_node_ids(node_id)
     k = decode_key(key, hex_input)
     v = decode_key(value, hex_input)
     with open_client(coordinator, token, config_file, timeout_s) as client:
-        reply = client.write(k, v, node_id)
+        reply = client.run("Write", lambda: client.client.put(k, v, node_id=node_id, move=move))
     if as_json:
-        emit_json({"key": show_bytes(k), **message_to_dict(reply)})
+        emit_json({"key": show_bytes(k), "node_id": reply.node_id, "created": reply.created, "epoch": reply.epoch,
+                   "sequence": reply.sequence, "moved_from": list(reply.moved_from)})
         return
+    moved = f"; moved from {', '.join(reply.moved_from)}" if reply.moved_from else ""
     console().print(f"{'created' if reply.created else 'overwrote'} {show_bytes(k)!r} on {reply.node_id} "
-                    f"(epoch {reply.epoch}, sequence {reply.sequence})")
+                    f"(epoch {reply.epoch}, sequence {reply.sequence}){moved}")
 
 
 @click.command(cls=OneLineCommand)
@@ -605,7 +629,7 @@ def delete(key: str, hex_input: bool, coordinator: str | None, token: str | None
     """Delete KEY from every node that holds it."""
     k = decode_key(key, hex_input)
     with open_client(coordinator, token, config_file, timeout_s) as client:
-        reply = client.remove(k)
+        reply = client.run("Remove", lambda: client.client.delete(k))
     if as_json:
         emit_json({"key": show_bytes(k), "deleted": bool(reply.node_ids), "node_ids": list(reply.node_ids)})
         return

@@ -24,7 +24,7 @@ from rich.console import Console
 from shardsieve import scenario
 from shardsieve.cli.loadtest import RichPhases, check_false_negatives, make_progress, render_report
 from shardsieve.cli.ops import CliFailure, OneLineCommand, console, emit_json, guarded
-from shardsieve.client import EXIT_FAILURE, EXIT_USAGE, CliSettings, ClientError, CoordinatorClient
+from shardsieve.client import EXIT_FAILURE, EXIT_USAGE, CliSettings, ClientError, OperatorClient
 from shardsieve.loadtest.runner import LoadtestOptions, NodeChannels, run_loadtest, wait_fleet_ready
 from shardsieve.loadtest.runner import seed as seed_nodes
 
@@ -100,7 +100,7 @@ def tour(directory: str | None, keep: bool, nodes: int, records: int, duration_s
             raise ClientError(f"the tour fleet did not start ({str(exc).splitlines()[0]}): {where}",
                               EXIT_FAILURE) from None
         settings = CliSettings(coordinator=cluster.coordinator_address, token=token or "", timeout_s=10.0)
-        with CoordinatorClient(settings) as client:
+        with OperatorClient(settings) as client:
             placed, owners = scenario.placed(recs, node_ids, seed)
             with make_progress(not as_json) as progress:
                 phases = RichPhases(progress)

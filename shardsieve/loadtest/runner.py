@@ -15,7 +15,10 @@ from typing import Callable, Sequence
 import grpc
 import numpy as np
 
-from shardsieve.client import EXIT_FAILURE, EXIT_UNREACHABLE, ClientError, CoordinatorClient, translate_error
+from shardsieve.client import (
+    EXIT_FAILURE, EXIT_UNREACHABLE, CandidateUnavailable, ClientError, OperatorClient, ShardsieveError, translate,
+    translate_error,
+)
 from shardsieve.loadtest.report import Tally
 from shardsieve.loadtest.workload import LookupStream, place_keys, seed_key
 
@@ -35,13 +38,13 @@ class NodeInfo:
     epoch: int = 0
 
 
-def fleet_view(client: CoordinatorClient) -> dict[str, NodeInfo]:
+def fleet_view(client: OperatorClient) -> dict[str, NodeInfo]:
     reply = client.fleet_status()
     return {n.node_id: NodeInfo(n.node_id, n.address, n.predicted_fpr, n.wasted_probes, n.state,
                                 n.stale, n.connected, n.key_count, n.epoch) for n in reply.nodes}
 
 
-def wait_fleet_ready(client: CoordinatorClient, timeout_s: float, min_nodes: int = 1) -> dict[str, NodeInfo]:
+def wait_fleet_ready(client: OperatorClient, timeout_s: float, min_nodes: int = 1) -> dict[str, NodeInfo]:
     """Wait until the coordinator knows >= min_nodes nodes, all connected and none stale."""
     deadline = time.monotonic() + timeout_s
     while True:
@@ -152,7 +155,7 @@ def scan_existing(channels: NodeChannels, limit: int, on_progress: Progress | No
     return [k for k, _ in unique], [o for _, o in unique]
 
 
-def wait_routable(client: CoordinatorClient, keys: Sequence[bytes], owners: Sequence[str], timeout_s: float,
+def wait_routable(client: OperatorClient, keys: Sequence[bytes], owners: Sequence[str], timeout_s: float,
                   batch: int = 2000, on_progress: Progress | None = None) -> None:
     """Block until LocateBatch lists each key's owner among its candidates, or fail at the deadline."""
     deadline = time.monotonic() + timeout_s
@@ -161,9 +164,9 @@ def wait_routable(client: CoordinatorClient, keys: Sequence[bytes], owners: Sequ
         still: list[int] = []
         for i in range(0, len(pending), batch):
             idx = pending[i:i + batch]
-            reply = client.locate_batch([keys[j] for j in idx])
-            for j, result in zip(idx, reply.results):
-                if any(c.node_id == owners[j] for c in result.candidates):
+            rows = client.run("LocateBatch", lambda: client.client.locate_many([keys[j] for j in idx]))
+            for j, cands in zip(idx, rows):
+                if any(c.node_id == owners[j] for c in cands):
                     continue
                 still.append(j)
         if on_progress:
@@ -179,15 +182,15 @@ def wait_routable(client: CoordinatorClient, keys: Sequence[bytes], owners: Sequ
         time.sleep(0.05)
 
 
-def run_reads(client: CoordinatorClient, stream: LookupStream, tally: Tally, concurrency: int,
+def run_reads(client: OperatorClient, stream: LookupStream, tally: Tally, concurrency: int,
               count: int | None = None, duration_s: float | None = None, on_progress: Progress | None = None,
               stop: threading.Event | None = None) -> float:
     """Read through the coordinator from `concurrency` threads until count or duration is reached.
 
     Returns the elapsed seconds. A connection failure to the coordinator aborts the run
-    (ClientError); a per-lookup UNAVAILABLE (a candidate could not be asked) is counted as an error.
+    (ClientError); a lookup whose candidate could not be asked (CandidateUnavailable) is counted
+    as an error. Reads go through the application client (`client.client.get`).
     """
-    from shardsieve.v1 import routing_pb2
     if count is None and duration_s is None:
         raise ValueError("give a lookup count or a duration")
     stop = stop or threading.Event()
@@ -196,10 +199,7 @@ def run_reads(client: CoordinatorClient, stream: LookupStream, tally: Tally, con
     failure: list[ClientError] = []
     started = time.perf_counter()
     end_at = started + duration_s if duration_s is not None else None
-    timeout = client.settings.timeout_s
-    read = client.router.Read
-    metadata = client.metadata
-    client._ensure_reachable()
+    read = client.client.get
 
     def next_chunk(size: int = 64):
         nonlocal issued
@@ -225,21 +225,20 @@ def run_reads(client: CoordinatorClient, stream: LookupStream, tally: Tally, con
                     break
                 t0 = time.perf_counter()
                 try:
-                    reply = read(routing_pb2.ReadRequest(key=lk.key), timeout=timeout, metadata=metadata)
-                except grpc.RpcError as exc:
-                    err = translate_error(exc, client.address, "Read")
-                    if exc.code() == grpc.StatusCode.UNAVAILABLE and err.exit_code != EXIT_UNREACHABLE:
-                        with lock:
-                            tally.record_error()
-                        done += 1
-                        continue
+                    reply = read(lk.key)
+                except CandidateUnavailable:
                     with lock:
-                        failure.append(err)
+                        tally.record_error()
+                    done += 1
+                    continue
+                except ShardsieveError as exc:
+                    with lock:
+                        failure.append(translate(exc, client.address, "Read"))
                     stop.set()
                     return
                 t1 = time.perf_counter()
                 with lock:
-                    tally.record(lk.owner, lk.key, reply.found, reply.probes, t1 - t0, t0 - started)
+                    tally.record(lk.owner, lk.key, reply.found, reply.candidates, t1 - t0, t0 - started)
                 done += 1
             if on_progress and done:
                 on_progress(done)
@@ -295,7 +294,7 @@ class Phases:
     def finish(self) -> None: ...
 
 
-def run_loadtest(client: CoordinatorClient, opts: LoadtestOptions, phases: Phases | None = None,
+def run_loadtest(client: OperatorClient, opts: LoadtestOptions, phases: Phases | None = None,
                  stop: threading.Event | None = None) -> LoadtestResult:
     """Seed (or reuse) keys, wait until they are routed, read, and build the report. Seeded keys
     are removed from the nodes at the end — also when the run fails or is interrupted — unless
@@ -344,7 +343,7 @@ def run_loadtest(client: CoordinatorClient, opts: LoadtestOptions, phases: Phase
         channels.close()
 
 
-def _measure(client: CoordinatorClient, opts: LoadtestOptions, phases: Phases, stop: threading.Event | None,
+def _measure(client: OperatorClient, opts: LoadtestOptions, phases: Phases, stop: threading.Event | None,
              rng: np.random.Generator, run_id: str, keys: list[bytes], owners: list[str],
              view: dict[str, NodeInfo]) -> LoadtestResult:
     """Wait until the keys are routed, read through the coordinator, build the report."""

@@ -228,7 +228,7 @@ class StartScan:
 class LogLine:
     """One line for the daemon's log (the sync object has no logger)."""
 
-    level: Literal["info", "warning"]
+    level: Literal["info", "warning", "error"]
     message: str
     fields: Mapping[str, object]
 
@@ -447,6 +447,7 @@ class NodeSync:
         self._bytes_pushed = 0
         self._rebuilds_completed = 0
         self._rebuilds_abandoned = 0
+        self._handover_had_peers = False   # a coordinator was connected at some point of the hand-over
         # outputs waiting for ack(): durable writes and actions
         self._durable_epoch: int | None = None
         self._durable_size: tuple[int, float] | None = None
@@ -603,6 +604,23 @@ class NodeSync:
             capacity=s.capacity, target_fpr=s.target_fpr, push_interval_ms=self.config.push_interval_ms,
             protocol_version=PROTOCOL_VERSION, history_floor=s.floor)
         self._peers[peer] = _Peer(name=peer, last_progress_at=now, queued=[sync_pb2.NodeMessage(hello=hello)])
+        if self._old is not None:
+            self._handover_had_peers = True
+
+    def refused(self, peer: str, limit: str) -> None:
+        """A coordinator ended `peer`'s stream because this node's filter breaks one of its limits
+        (`limit`: the setting, from the stream's trailing metadata, shardsieve/limits.py). During a
+        hand-over that no connected coordinator verified, a refused filter size means the new
+        filter would never be taken: the rebuild is given up and the old filter goes on under a
+        fresh epoch, so the node comes back at the size the coordinator accepted instead of
+        being stranded (docs/node.md, "Rebuild"). Otherwise there is nothing to give up: the
+        refusal is logged with what to do."""
+        if self._old is not None and not any(p.switched for p in self._peers.values()):
+            self._abandon(f"coordinator {peer} refuses the new filter ({self._stream.geometry}; setting {limit})")
+            return
+        self._log("error", "a coordinator refuses this node's filter", coordinator=peer, setting=limit,
+                  geometry=str(self._stream.geometry),
+                  fix="raise that setting on the coordinator, or give the node a smaller --capacity and restart it")
 
     def disconnect(self, peer: str) -> None:
         """The stream to `peer` ended; its cursor is dropped (the next connect starts over)."""
@@ -729,6 +747,7 @@ class NodeSync:
         self._durable_epoch = self._highest_epoch
         self._old = self._stream
         self._stream = _EpochStream(self._highest_epoch, scan.filter, scan.capacity, scan.target_fpr, self.config)
+        self._handover_had_peers = bool(self._peers)
         for p in self._peers.values():
             p.switched = False
             p.rebuild_rejections = 0
@@ -760,7 +779,7 @@ class NodeSync:
             raise RebuildStateError(f"no rebuild scan is running (phase {self._phase.name})")
         return self._scan
 
-    def _log(self, level: Literal["info", "warning"], message: str, **fields: object) -> None:
+    def _log(self, level: Literal["info", "warning", "error"], message: str, **fields: object) -> None:
         self._actions.append(LogLine(level=level, message=message, fields=MappingProxyType(fields)))
 
     def _stats(self, counters: StoreCounters) -> sync_pb2.NodeStats:
@@ -1098,10 +1117,14 @@ class NodeSync:
 
     def _maybe_retire(self) -> None:
         """Every connected peer switched: stop writing the old filter, drop it, and persist
-        the new size (a restart keeps it)."""
+        the new size (a restart keeps it). A hand-over that had coordinators needs at least one
+        of them to have verified the new filter: if every one went away (or refused it) without
+        doing so, the old filter stays, and a restart comes back at the old size — never at a
+        size no coordinator took. A node without coordinators retires at once."""
         if self._old is None:
             return
-        if not all(p.switched for p in self._peers.values()):
+        peers = self._peers.values()
+        if not all(p.switched for p in peers) or (self._handover_had_peers and not any(p.switched for p in peers)):
             self._update_phase()
             return
         old, self._old = self._old, None

@@ -130,20 +130,26 @@ class RebuildCommand(_message.Message):
     def __init__(self, node_ids: _Optional[_Iterable[str]] = ..., flagged: _Optional[bool] = ..., capacity: _Optional[int] = ..., target_fpr: _Optional[float] = ..., dry_run: _Optional[bool] = ...) -> None: ...
 
 class PlannedRebuild(_message.Message):
-    __slots__ = ("node_id", "capacity", "target_fpr", "geometry", "reason", "queued")
+    __slots__ = ("node_id", "capacity", "target_fpr", "geometry", "reason", "queued", "refused", "filter_bytes", "replica_bytes_after")
     NODE_ID_FIELD_NUMBER: _ClassVar[int]
     CAPACITY_FIELD_NUMBER: _ClassVar[int]
     TARGET_FPR_FIELD_NUMBER: _ClassVar[int]
     GEOMETRY_FIELD_NUMBER: _ClassVar[int]
     REASON_FIELD_NUMBER: _ClassVar[int]
     QUEUED_FIELD_NUMBER: _ClassVar[int]
+    REFUSED_FIELD_NUMBER: _ClassVar[int]
+    FILTER_BYTES_FIELD_NUMBER: _ClassVar[int]
+    REPLICA_BYTES_AFTER_FIELD_NUMBER: _ClassVar[int]
     node_id: str
     capacity: int
     target_fpr: float
     geometry: _filter_pb2.Geometry
     reason: str
     queued: bool
-    def __init__(self, node_id: _Optional[str] = ..., capacity: _Optional[int] = ..., target_fpr: _Optional[float] = ..., geometry: _Optional[_Union[_filter_pb2.Geometry, _Mapping]] = ..., reason: _Optional[str] = ..., queued: _Optional[bool] = ...) -> None: ...
+    refused: str
+    filter_bytes: int
+    replica_bytes_after: int
+    def __init__(self, node_id: _Optional[str] = ..., capacity: _Optional[int] = ..., target_fpr: _Optional[float] = ..., geometry: _Optional[_Union[_filter_pb2.Geometry, _Mapping]] = ..., reason: _Optional[str] = ..., queued: _Optional[bool] = ..., refused: _Optional[str] = ..., filter_bytes: _Optional[int] = ..., replica_bytes_after: _Optional[int] = ...) -> None: ...
 
 class RebuildReply(_message.Message):
     __slots__ = ("plan", "dry_run")

@@ -22,37 +22,77 @@ _runtime_version.ValidateProtobufRuntimeVersion(
 _sym_db = _symbol_database.Default()
 
 
+from shardsieve.v1 import filter_pb2 as shardsieve_dot_v1_dot_filter__pb2
+from shardsieve.v1 import sync_pb2 as shardsieve_dot_v1_dot_sync__pb2
 
 
-DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n\x1bshardsieve/v1/routing.proto\x12\rshardsieve.v1\"L\n\tCandidate\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\x0f\n\x07\x61\x64\x64ress\x18\x02 \x01(\t\x12\r\n\x05stale\x18\x03 \x01(\x08\x12\x0e\n\x06hinted\x18\x04 \x01(\x08\"\x1c\n\rLocateRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\";\n\x0bLocateReply\x12,\n\ncandidates\x18\x01 \x03(\x0b\x32\x18.shardsieve.v1.Candidate\"\"\n\x12LocateBatchRequest\x12\x0c\n\x04keys\x18\x01 \x03(\x0c\"?\n\x10LocateBatchReply\x12+\n\x07results\x18\x01 \x03(\x0b\x32\x1a.shardsieve.v1.LocateReply\"/\n\x0bReadRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\x12\x13\n\x0b\x64\x65\x61\x64line_ms\x18\x02 \x01(\r\"u\n\tReadReply\x12\r\n\x05\x66ound\x18\x01 \x01(\x08\x12\r\n\x05value\x18\x02 \x01(\x0c\x12\x0f\n\x07node_id\x18\x03 \x01(\t\x12\x0e\n\x06probes\x18\x04 \x01(\r\x12\x15\n\rwasted_probes\x18\x05 \x01(\r\x12\x12\n\ncandidates\x18\x06 \x01(\r\";\n\x0cWriteRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\x12\r\n\x05value\x18\x02 \x01(\x0c\x12\x0f\n\x07node_id\x18\x03 \x01(\t\"O\n\nWriteReply\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\x0f\n\x07\x63reated\x18\x02 \x01(\x08\x12\r\n\x05\x65poch\x18\x03 \x01(\x04\x12\x10\n\x08sequence\x18\x04 \x01(\x04\"\x1c\n\rRemoveRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\"\x1f\n\x0bRemoveReply\x12\x10\n\x08node_ids\x18\x01 \x03(\t2\xe2\x02\n\x06Router\x12\x42\n\x06Locate\x12\x1c.shardsieve.v1.LocateRequest\x1a\x1a.shardsieve.v1.LocateReply\x12Q\n\x0bLocateBatch\x12!.shardsieve.v1.LocateBatchRequest\x1a\x1f.shardsieve.v1.LocateBatchReply\x12<\n\x04Read\x12\x1a.shardsieve.v1.ReadRequest\x1a\x18.shardsieve.v1.ReadReply\x12?\n\x05Write\x12\x1b.shardsieve.v1.WriteRequest\x1a\x19.shardsieve.v1.WriteReply\x12\x42\n\x06Remove\x12\x1c.shardsieve.v1.RemoveRequest\x1a\x1a.shardsieve.v1.RemoveReplyb\x06proto3')
+DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n\x1bshardsieve/v1/routing.proto\x12\rshardsieve.v1\x1a\x1ashardsieve/v1/filter.proto\x1a\x18shardsieve/v1/sync.proto\"L\n\tCandidate\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\x0f\n\x07\x61\x64\x64ress\x18\x02 \x01(\t\x12\r\n\x05stale\x18\x03 \x01(\x08\x12\x0e\n\x06hinted\x18\x04 \x01(\x08\"\x1c\n\rLocateRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\";\n\x0bLocateReply\x12,\n\ncandidates\x18\x01 \x03(\x0b\x32\x18.shardsieve.v1.Candidate\"\"\n\x12LocateBatchRequest\x12\x0c\n\x04keys\x18\x01 \x03(\x0c\"?\n\x10LocateBatchReply\x12+\n\x07results\x18\x01 \x03(\x0b\x32\x1a.shardsieve.v1.LocateReply\"/\n\x0bReadRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\x12\x13\n\x0b\x64\x65\x61\x64line_ms\x18\x02 \x01(\r\"u\n\tReadReply\x12\r\n\x05\x66ound\x18\x01 \x01(\x08\x12\r\n\x05value\x18\x02 \x01(\x0c\x12\x0f\n\x07node_id\x18\x03 \x01(\t\x12\x0e\n\x06probes\x18\x04 \x01(\r\x12\x15\n\rwasted_probes\x18\x05 \x01(\r\x12\x12\n\ncandidates\x18\x06 \x01(\r\"I\n\x0cWriteRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\x12\r\n\x05value\x18\x02 \x01(\x0c\x12\x0f\n\x07node_id\x18\x03 \x01(\t\x12\x0c\n\x04move\x18\x04 \x01(\x08\"c\n\nWriteReply\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\x0f\n\x07\x63reated\x18\x02 \x01(\x08\x12\r\n\x05\x65poch\x18\x03 \x01(\x04\x12\x10\n\x08sequence\x18\x04 \x01(\x04\x12\x12\n\nmoved_from\x18\x05 \x03(\t\"\x1c\n\rRemoveRequest\x12\x0b\n\x03key\x18\x01 \x01(\x0c\"\x1f\n\x0bRemoveReply\x12\x10\n\x08node_ids\x18\x01 \x03(\t\"M\n\x0bNodeFailure\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\x0f\n\x07\x61\x64\x64ress\x18\x02 \x01(\t\x12\x0c\n\x04\x63ode\x18\x03 \x01(\r\x12\x0e\n\x06\x64\x65tail\x18\x04 \x01(\t\"\xd0\x01\n\x0b\x45rrorDetail\x12*\n\x06reason\x18\x01 \x01(\x0e\x32\x1a.shardsieve.v1.ErrorReason\x12\x0b\n\x03key\x18\x02 \x01(\x0c\x12)\n\x05nodes\x18\x03 \x03(\x0b\x32\x1a.shardsieve.v1.NodeFailure\x12\x0f\n\x07setting\x18\x04 \x01(\t\x12*\n\x06\x65\x66\x66\x65\x63t\x18\x05 \x01(\x0e\x32\x1a.shardsieve.v1.WriteEffect\x12\x0f\n\x07\x64one_on\x18\x06 \x03(\t\x12\x0f\n\x07holders\x18\x07 \x03(\t\"U\n\x08KeyError\x12\x0c\n\x04\x63ode\x18\x01 \x01(\r\x12\x0f\n\x07message\x18\x02 \x01(\t\x12*\n\x06\x64\x65tail\x18\x03 \x01(\x0b\x32\x1a.shardsieve.v1.ErrorDetail\"5\n\x10ReadBatchRequest\x12\x0c\n\x04keys\x18\x01 \x03(\x0c\x12\x13\n\x0b\x64\x65\x61\x64line_ms\x18\x02 \x01(\r\"\x8e\x01\n\nReadResult\x12\r\n\x05\x66ound\x18\x01 \x01(\x08\x12\r\n\x05value\x18\x02 \x01(\x0c\x12\x0f\n\x07node_id\x18\x03 \x01(\t\x12\x12\n\ncandidates\x18\x04 \x01(\r\x12\x15\n\rwasted_probes\x18\x05 \x01(\r\x12&\n\x05\x65rror\x18\x06 \x01(\x0b\x32\x17.shardsieve.v1.KeyError\"P\n\x0eReadBatchReply\x12*\n\x07results\x18\x01 \x03(\x0b\x32\x19.shardsieve.v1.ReadResult\x12\x12\n\nnode_calls\x18\x02 \x01(\r\"?\n\x11WriteBatchRequest\x12*\n\x05items\x18\x01 \x03(\x0b\x32\x1b.shardsieve.v1.WriteRequest\"_\n\x0bWriteResult\x12(\n\x05reply\x18\x01 \x01(\x0b\x32\x19.shardsieve.v1.WriteReply\x12&\n\x05\x65rror\x18\x02 \x01(\x0b\x32\x17.shardsieve.v1.KeyError\"R\n\x0fWriteBatchReply\x12+\n\x07results\x18\x01 \x03(\x0b\x32\x1a.shardsieve.v1.WriteResult\x12\x12\n\nnode_calls\x18\x02 \x01(\r\"\"\n\x12RemoveBatchRequest\x12\x0c\n\x04keys\x18\x01 \x03(\x0c\"H\n\x0cRemoveResult\x12\x10\n\x08node_ids\x18\x01 \x03(\t\x12&\n\x05\x65rror\x18\x02 \x01(\x0b\x32\x17.shardsieve.v1.KeyError\"T\n\x10RemoveBatchReply\x12,\n\x07results\x18\x01 \x03(\x0b\x32\x1b.shardsieve.v1.RemoveResult\x12\x12\n\nnode_calls\x18\x02 \x01(\r\"\x16\n\x14WatchReplicasRequest\"\xbf\x01\n\nNodeUpdate\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12%\n\x05hello\x18\x02 \x01(\x0b\x32\x14.shardsieve.v1.HelloH\x00\x12\x36\n\x0esnapshot_chunk\x18\x03 \x01(\x0b\x32\x1c.shardsieve.v1.SnapshotChunkH\x00\x12%\n\x05\x64\x65lta\x18\x04 \x01(\x0b\x32\x14.shardsieve.v1.DeltaH\x00\x12\x12\n\x08unlisted\x18\x05 \x01(\x08H\x00\x42\x06\n\x04\x62ody\"\x80\x01\n\x08NodeMark\x12\x0f\n\x07node_id\x18\x01 \x01(\t\x12\x0f\n\x07\x61\x64\x64ress\x18\x02 \x01(\t\x12\r\n\x05\x66resh\x18\x03 \x01(\x08\x12\r\n\x05state\x18\x04 \x01(\t\x12\r\n\x05\x65poch\x18\x05 \x01(\x04\x12\x10\n\x08sequence\x18\x06 \x01(\x04\x12\x13\n\x0bhas_replica\x18\x07 \x01(\x08\"Y\n\nFleetMarks\x12\x0c\n\x04mode\x18\x01 \x01(\t\x12\x15\n\rstale_after_s\x18\x02 \x01(\x01\x12&\n\x05nodes\x18\x03 \x03(\x0b\x32\x17.shardsieve.v1.NodeMark\"r\n\x0bReplicaFeed\x12\r\n\x05reset\x18\x01 \x01(\x08\x12*\n\x07updates\x18\x02 \x03(\x0b\x32\x19.shardsieve.v1.NodeUpdate\x12(\n\x05marks\x18\x03 \x01(\x0b\x32\x19.shardsieve.v1.FleetMarks*\xcd\x02\n\x0b\x45rrorReason\x12\x1c\n\x18\x45RROR_REASON_UNSPECIFIED\x10\x00\x12&\n\"ERROR_REASON_CANDIDATE_UNAVAILABLE\x10\x01\x12!\n\x1d\x45RROR_REASON_NODE_UNAVAILABLE\x10\x02\x12\x1e\n\x1a\x45RROR_REASON_INVALID_INPUT\x10\x03\x12\x1f\n\x1b\x45RROR_REASON_LIMIT_EXCEEDED\x10\x04\x12\x1d\n\x19\x45RROR_REASON_UNKNOWN_NODE\x10\x05\x12\x1c\n\x18\x45RROR_REASON_SECOND_COPY\x10\x06\x12\x18\n\x14\x45RROR_REASON_NO_NODE\x10\x07\x12 \n\x1c\x45RROR_REASON_MOVE_UNFINISHED\x10\x08\x12\x1b\n\x17\x45RROR_REASON_HINTS_FULL\x10\t*v\n\x0bWriteEffect\x12\x1c\n\x18WRITE_EFFECT_UNSPECIFIED\x10\x00\x12\x15\n\x11WRITE_EFFECT_NONE\x10\x01\x12\x18\n\x14WRITE_EFFECT_PARTIAL\x10\x02\x12\x18\n\x14WRITE_EFFECT_UNKNOWN\x10\x03\x32\xa6\x05\n\x06Router\x12\x42\n\x06Locate\x12\x1c.shardsieve.v1.LocateRequest\x1a\x1a.shardsieve.v1.LocateReply\x12Q\n\x0bLocateBatch\x12!.shardsieve.v1.LocateBatchRequest\x1a\x1f.shardsieve.v1.LocateBatchReply\x12<\n\x04Read\x12\x1a.shardsieve.v1.ReadRequest\x1a\x18.shardsieve.v1.ReadReply\x12?\n\x05Write\x12\x1b.shardsieve.v1.WriteRequest\x1a\x19.shardsieve.v1.WriteReply\x12\x42\n\x06Remove\x12\x1c.shardsieve.v1.RemoveRequest\x1a\x1a.shardsieve.v1.RemoveReply\x12K\n\tReadBatch\x12\x1f.shardsieve.v1.ReadBatchRequest\x1a\x1d.shardsieve.v1.ReadBatchReply\x12N\n\nWriteBatch\x12 .shardsieve.v1.WriteBatchRequest\x1a\x1e.shardsieve.v1.WriteBatchReply\x12Q\n\x0bRemoveBatch\x12!.shardsieve.v1.RemoveBatchRequest\x1a\x1f.shardsieve.v1.RemoveBatchReply\x12R\n\rWatchReplicas\x12#.shardsieve.v1.WatchReplicasRequest\x1a\x1a.shardsieve.v1.ReplicaFeed0\x01\x62\x06proto3')
 
 _globals = globals()
 _builder.BuildMessageAndEnumDescriptors(DESCRIPTOR, _globals)
 _builder.BuildTopDescriptorsAndMessages(DESCRIPTOR, 'shardsieve.v1.routing_pb2', _globals)
 if not _descriptor._USE_C_DESCRIPTORS:
   DESCRIPTOR._loaded_options = None
-  _globals['_CANDIDATE']._serialized_start=46
-  _globals['_CANDIDATE']._serialized_end=122
-  _globals['_LOCATEREQUEST']._serialized_start=124
-  _globals['_LOCATEREQUEST']._serialized_end=152
-  _globals['_LOCATEREPLY']._serialized_start=154
-  _globals['_LOCATEREPLY']._serialized_end=213
-  _globals['_LOCATEBATCHREQUEST']._serialized_start=215
-  _globals['_LOCATEBATCHREQUEST']._serialized_end=249
-  _globals['_LOCATEBATCHREPLY']._serialized_start=251
-  _globals['_LOCATEBATCHREPLY']._serialized_end=314
-  _globals['_READREQUEST']._serialized_start=316
-  _globals['_READREQUEST']._serialized_end=363
-  _globals['_READREPLY']._serialized_start=365
-  _globals['_READREPLY']._serialized_end=482
-  _globals['_WRITEREQUEST']._serialized_start=484
-  _globals['_WRITEREQUEST']._serialized_end=543
-  _globals['_WRITEREPLY']._serialized_start=545
-  _globals['_WRITEREPLY']._serialized_end=624
-  _globals['_REMOVEREQUEST']._serialized_start=626
-  _globals['_REMOVEREQUEST']._serialized_end=654
-  _globals['_REMOVEREPLY']._serialized_start=656
-  _globals['_REMOVEREPLY']._serialized_end=687
-  _globals['_ROUTER']._serialized_start=690
-  _globals['_ROUTER']._serialized_end=1044
+  _globals['_ERRORREASON']._serialized_start=2435
+  _globals['_ERRORREASON']._serialized_end=2768
+  _globals['_WRITEEFFECT']._serialized_start=2770
+  _globals['_WRITEEFFECT']._serialized_end=2888
+  _globals['_CANDIDATE']._serialized_start=100
+  _globals['_CANDIDATE']._serialized_end=176
+  _globals['_LOCATEREQUEST']._serialized_start=178
+  _globals['_LOCATEREQUEST']._serialized_end=206
+  _globals['_LOCATEREPLY']._serialized_start=208
+  _globals['_LOCATEREPLY']._serialized_end=267
+  _globals['_LOCATEBATCHREQUEST']._serialized_start=269
+  _globals['_LOCATEBATCHREQUEST']._serialized_end=303
+  _globals['_LOCATEBATCHREPLY']._serialized_start=305
+  _globals['_LOCATEBATCHREPLY']._serialized_end=368
+  _globals['_READREQUEST']._serialized_start=370
+  _globals['_READREQUEST']._serialized_end=417
+  _globals['_READREPLY']._serialized_start=419
+  _globals['_READREPLY']._serialized_end=536
+  _globals['_WRITEREQUEST']._serialized_start=538
+  _globals['_WRITEREQUEST']._serialized_end=611
+  _globals['_WRITEREPLY']._serialized_start=613
+  _globals['_WRITEREPLY']._serialized_end=712
+  _globals['_REMOVEREQUEST']._serialized_start=714
+  _globals['_REMOVEREQUEST']._serialized_end=742
+  _globals['_REMOVEREPLY']._serialized_start=744
+  _globals['_REMOVEREPLY']._serialized_end=775
+  _globals['_NODEFAILURE']._serialized_start=777
+  _globals['_NODEFAILURE']._serialized_end=854
+  _globals['_ERRORDETAIL']._serialized_start=857
+  _globals['_ERRORDETAIL']._serialized_end=1065
+  _globals['_KEYERROR']._serialized_start=1067
+  _globals['_KEYERROR']._serialized_end=1152
+  _globals['_READBATCHREQUEST']._serialized_start=1154
+  _globals['_READBATCHREQUEST']._serialized_end=1207
+  _globals['_READRESULT']._serialized_start=1210
+  _globals['_READRESULT']._serialized_end=1352
+  _globals['_READBATCHREPLY']._serialized_start=1354
+  _globals['_READBATCHREPLY']._serialized_end=1434
+  _globals['_WRITEBATCHREQUEST']._serialized_start=1436
+  _globals['_WRITEBATCHREQUEST']._serialized_end=1499
+  _globals['_WRITERESULT']._serialized_start=1501
+  _globals['_WRITERESULT']._serialized_end=1596
+  _globals['_WRITEBATCHREPLY']._serialized_start=1598
+  _globals['_WRITEBATCHREPLY']._serialized_end=1680
+  _globals['_REMOVEBATCHREQUEST']._serialized_start=1682
+  _globals['_REMOVEBATCHREQUEST']._serialized_end=1716
+  _globals['_REMOVERESULT']._serialized_start=1718
+  _globals['_REMOVERESULT']._serialized_end=1790
+  _globals['_REMOVEBATCHREPLY']._serialized_start=1792
+  _globals['_REMOVEBATCHREPLY']._serialized_end=1876
+  _globals['_WATCHREPLICASREQUEST']._serialized_start=1878
+  _globals['_WATCHREPLICASREQUEST']._serialized_end=1900
+  _globals['_NODEUPDATE']._serialized_start=1903
+  _globals['_NODEUPDATE']._serialized_end=2094
+  _globals['_NODEMARK']._serialized_start=2097
+  _globals['_NODEMARK']._serialized_end=2225
+  _globals['_FLEETMARKS']._serialized_start=2227
+  _globals['_FLEETMARKS']._serialized_end=2316
+  _globals['_REPLICAFEED']._serialized_start=2318
+  _globals['_REPLICAFEED']._serialized_end=2432
+  _globals['_ROUTER']._serialized_start=2891
+  _globals['_ROUTER']._serialized_end=3569
 # @@protoc_insertion_point(module_scope)

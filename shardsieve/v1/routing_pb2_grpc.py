@@ -59,6 +59,26 @@ class RouterStub:
                 request_serializer=shardsieve_dot_v1_dot_routing__pb2.RemoveRequest.SerializeToString,
                 response_deserializer=shardsieve_dot_v1_dot_routing__pb2.RemoveReply.FromString,
                 _registered_method=True)
+        self.ReadBatch = channel.unary_unary(
+                '/shardsieve.v1.Router/ReadBatch',
+                request_serializer=shardsieve_dot_v1_dot_routing__pb2.ReadBatchRequest.SerializeToString,
+                response_deserializer=shardsieve_dot_v1_dot_routing__pb2.ReadBatchReply.FromString,
+                _registered_method=True)
+        self.WriteBatch = channel.unary_unary(
+                '/shardsieve.v1.Router/WriteBatch',
+                request_serializer=shardsieve_dot_v1_dot_routing__pb2.WriteBatchRequest.SerializeToString,
+                response_deserializer=shardsieve_dot_v1_dot_routing__pb2.WriteBatchReply.FromString,
+                _registered_method=True)
+        self.RemoveBatch = channel.unary_unary(
+                '/shardsieve.v1.Router/RemoveBatch',
+                request_serializer=shardsieve_dot_v1_dot_routing__pb2.RemoveBatchRequest.SerializeToString,
+                response_deserializer=shardsieve_dot_v1_dot_routing__pb2.RemoveBatchReply.FromString,
+                _registered_method=True)
+        self.WatchReplicas = channel.unary_stream(
+                '/shardsieve.v1.Router/WatchReplicas',
+                request_serializer=shardsieve_dot_v1_dot_routing__pb2.WatchReplicasRequest.SerializeToString,
+                response_deserializer=shardsieve_dot_v1_dot_routing__pb2.ReplicaFeed.FromString,
+                _registered_method=True)
 
 
 class RouterServicer:
@@ -96,6 +116,34 @@ class RouterServicer:
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
+    def ReadBatch(self, request, context):
+        """Many keys in one call, one node batch call per node; per-key results. INVALID_ARGUMENT when
+        the batch exceeds max-batch-items or max-batch-bytes (the ErrorDetail names the setting).
+        """
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
+    def WriteBatch(self, request, context):
+        """Missing associated documentation comment in .proto file."""
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
+    def RemoveBatch(self, request, context):
+        """Missing associated documentation comment in .proto file."""
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
+    def WatchReplicas(self, request, context):
+        """The coordinator's replicas for a client's local routing: a full snapshot, then changes as
+        they are applied; a subscriber that falls behind gets a fresh full snapshot (reset).
+        """
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
 
 def add_RouterServicer_to_server(servicer, server):
     rpc_method_handlers = {
@@ -123,6 +171,26 @@ def add_RouterServicer_to_server(servicer, server):
                     servicer.Remove,
                     request_deserializer=shardsieve_dot_v1_dot_routing__pb2.RemoveRequest.FromString,
                     response_serializer=shardsieve_dot_v1_dot_routing__pb2.RemoveReply.SerializeToString,
+            ),
+            'ReadBatch': grpc.unary_unary_rpc_method_handler(
+                    servicer.ReadBatch,
+                    request_deserializer=shardsieve_dot_v1_dot_routing__pb2.ReadBatchRequest.FromString,
+                    response_serializer=shardsieve_dot_v1_dot_routing__pb2.ReadBatchReply.SerializeToString,
+            ),
+            'WriteBatch': grpc.unary_unary_rpc_method_handler(
+                    servicer.WriteBatch,
+                    request_deserializer=shardsieve_dot_v1_dot_routing__pb2.WriteBatchRequest.FromString,
+                    response_serializer=shardsieve_dot_v1_dot_routing__pb2.WriteBatchReply.SerializeToString,
+            ),
+            'RemoveBatch': grpc.unary_unary_rpc_method_handler(
+                    servicer.RemoveBatch,
+                    request_deserializer=shardsieve_dot_v1_dot_routing__pb2.RemoveBatchRequest.FromString,
+                    response_serializer=shardsieve_dot_v1_dot_routing__pb2.RemoveBatchReply.SerializeToString,
+            ),
+            'WatchReplicas': grpc.unary_stream_rpc_method_handler(
+                    servicer.WatchReplicas,
+                    request_deserializer=shardsieve_dot_v1_dot_routing__pb2.WatchReplicasRequest.FromString,
+                    response_serializer=shardsieve_dot_v1_dot_routing__pb2.ReplicaFeed.SerializeToString,
             ),
     }
     generic_handler = grpc.method_handlers_generic_handler(
@@ -260,6 +328,114 @@ class Router:
             '/shardsieve.v1.Router/Remove',
             shardsieve_dot_v1_dot_routing__pb2.RemoveRequest.SerializeToString,
             shardsieve_dot_v1_dot_routing__pb2.RemoveReply.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def ReadBatch(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_unary(
+            request,
+            target,
+            '/shardsieve.v1.Router/ReadBatch',
+            shardsieve_dot_v1_dot_routing__pb2.ReadBatchRequest.SerializeToString,
+            shardsieve_dot_v1_dot_routing__pb2.ReadBatchReply.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def WriteBatch(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_unary(
+            request,
+            target,
+            '/shardsieve.v1.Router/WriteBatch',
+            shardsieve_dot_v1_dot_routing__pb2.WriteBatchRequest.SerializeToString,
+            shardsieve_dot_v1_dot_routing__pb2.WriteBatchReply.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def RemoveBatch(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_unary(
+            request,
+            target,
+            '/shardsieve.v1.Router/RemoveBatch',
+            shardsieve_dot_v1_dot_routing__pb2.RemoveBatchRequest.SerializeToString,
+            shardsieve_dot_v1_dot_routing__pb2.RemoveBatchReply.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def WatchReplicas(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_stream(
+            request,
+            target,
+            '/shardsieve.v1.Router/WatchReplicas',
+            shardsieve_dot_v1_dot_routing__pb2.WatchReplicasRequest.SerializeToString,
+            shardsieve_dot_v1_dot_routing__pb2.ReplicaFeed.FromString,
             options,
             channel_credentials,
             insecure,

@@ -164,3 +164,32 @@ def test_config_file_supplies_address_and_token(cluster: LocalCluster, tmp_path:
     proc = subprocess.run([sys.executable, "-m", "shardsieve.cli.main", "status"], capture_output=True,
                           text=True, env=env, timeout=60)
     assert proc.returncode == 4
+
+
+def test_put_on_a_named_node_never_makes_a_second_copy_and_moves_only_when_asked(cluster: LocalCluster) -> None:
+    # docs/cli.md, put: a key lives on one node; --node elsewhere is refused unless --move, which
+    # writes the new copy, then deletes the old one
+    from shardsieve.v1 import storage_pb2
+
+    def held(node_id: str) -> bytes | None:
+        reply = cluster.storage(node_id).Get(storage_pb2.GetRequest(key=b"pier/berth-12"),
+                                             metadata=cluster.auth_metadata(), timeout=5)
+        return reply.value if reply.found else None
+
+    first = run(cluster, "put", "pier/berth-12", "kelp", "--node", "node-1", "--json")
+    assert first.exit_code == 0, first.output
+    refused = run(cluster, "put", "pier/berth-12", "oyster", "--node", "node-2")
+    assert refused.exit_code == 6
+    line = one_line(refused.stderr)
+    assert "held by node-1" in line and "--move" in line
+    assert (held("node-1"), held("node-2")) == (b"kelp", None)        # nothing changed
+    moved = run(cluster, "put", "pier/berth-12", "oyster", "--node", "node-2", "--move", "--json")
+    assert moved.exit_code == 0, moved.output
+    assert json.loads(moved.stdout)["moved_from"] == ["node-1"]
+    assert (held("node-1"), held("node-2")) == (None, b"oyster")
+    got = run(cluster, "get", "pier/berth-12")
+    assert (got.exit_code, got.stdout.strip()) == (0, "oyster")
+    unknown = run(cluster, "put", "pier/berth-12", "x", "--node", "node-99")
+    assert unknown.exit_code == 5 and "node-99" in one_line(unknown.stderr)
+    no_node = run(cluster, "put", "pier/berth-12", "x", "--move")
+    assert no_node.exit_code == 2 and "--node" in one_line(no_node.stderr)

@@ -72,18 +72,32 @@ def test_admin_token_policy_rebuild_plan_metrics_and_health(tmp_path) -> None:
             text = urllib.request.urlopen(url, timeout=5).read().decode()
             return {f.name: f.samples for f in text_string_to_metric_families(text)}
 
-        metrics = wait_until(lambda: (m := scrape()) and m.get("shardsieve_coordinator_delta_bytes") and m, 10,
-                             message="metrics scrape")
+        def delta_bytes_of(m: dict[str, list]) -> float:
+            return sum(s.value for s in m.get("shardsieve_coordinator_node_sync_received_bytes", [])
+                       if s.name.endswith("_total") and s.labels["kind"] == "delta")
+
+        # the write's delta reaches the coordinator within a push interval: wait for it
+        metrics = wait_until(lambda: (m := scrape()) and delta_bytes_of(m) > 0 and m, 10,
+                             message="metrics scrape with the write's delta")
         for name in ("shardsieve_coordinator_lookups", "shardsieve_coordinator_candidates_per_lookup",
-                     "shardsieve_coordinator_node_wasted_probes", "shardsieve_coordinator_node_fill",
-                     "shardsieve_coordinator_node_predicted_fpr", "shardsieve_coordinator_node_lag_seconds",
-                     "shardsieve_coordinator_delta_bytes", "shardsieve_coordinator_rebuilds"):
+                     "shardsieve_coordinator_node_wasted_probes", "shardsieve_coordinator_node_fill_ratio",
+                     "shardsieve_coordinator_node_predicted_false_positive_ratio",
+                     "shardsieve_coordinator_node_lag_seconds", "shardsieve_coordinator_node_sync_received_bytes",
+                     "shardsieve_coordinator_rebuild_requests", "shardsieve_coordinator_rpc_duration_seconds",
+                     "shardsieve_coordinator_probe_duration_seconds"):
             assert name in metrics, name
-        rebuilds = sum(s.value for s in metrics["shardsieve_coordinator_rebuilds"] if s.name.endswith("_total"))
+        rebuilds = sum(s.value for s in metrics["shardsieve_coordinator_rebuild_requests"] if s.name.endswith("_total"))
         assert rebuilds == 1
-        reads = [s.value for s in metrics["shardsieve_coordinator_lookups"]
-                 if s.name.endswith("_total") and s.labels.get("kind") == "read"]
-        assert reads == [1.0]
+        lookups = {s.labels.get("kind"): s.value for s in metrics["shardsieve_coordinator_lookups"]
+                   if s.name.endswith("_total")}
+        assert lookups == {"read": 1.0}          # the write's probes are probes, not lookups
+        # Prometheus naming ("Metric and label naming"): latency histograms in seconds, per method
+        calls = {s.labels["method"]: s.value for s in metrics["shardsieve_coordinator_rpc_duration_seconds"]
+                 if s.name.endswith("_count")}
+        assert calls.get("Write") == 1.0 and calls.get("Read") == 1.0
+        delta_bytes = sum(s.value for s in metrics["shardsieve_coordinator_node_sync_received_bytes"]
+                          if s.name.endswith("_total") and s.labels["kind"] == "delta")
+        assert delta_bytes > 0
 
         # Standard gRPC health: SERVING (1) on the coordinator and each node.
         assert health_status(cluster.coordinator_address) == 1

@@ -267,14 +267,14 @@ def test_metrics_endpoint_matches_stats(tmp_path: Path) -> None:
                   for line in text.splitlines() if line and not line.startswith("#")}
         stats = stub.Stats(storage_pb2.NodeStatsRequest()).stats
         assert values["shardsieve_node_keys"] == stats.key_count == 37
-        assert values["shardsieve_node_wasted_probes_total"] == stats.reads_missed == 1
-        assert values["shardsieve_node_fill"] == pytest.approx(stats.fill)
+        assert values["shardsieve_node_reads_not_found_total"] == stats.reads_missed == 1
+        assert values["shardsieve_node_fill_ratio"] == pytest.approx(stats.fill)
         # The rest of the node's metrics (docs/node.md, "Operations"): reads, FPR, bytes pushed, rebuilds.
         assert values["shardsieve_node_reads_total"] == stats.reads == 1
-        assert values["shardsieve_node_predicted_fpr"] == pytest.approx(stats.predicted_fpr)
+        assert values["shardsieve_node_predicted_false_positive_ratio"] == pytest.approx(stats.predicted_fpr)
         assert stats.predicted_fpr == pytest.approx(stats.fill ** stats.geometry.hashes)   # fill^k (Bloom 1970)
-        assert values["shardsieve_node_bytes_pushed_total"] == stats.bytes_pushed
-        assert values["shardsieve_node_rebuild_progress"] == 0.0
+        assert values["shardsieve_node_sync_sent_bytes_total"] == stats.bytes_pushed
+        assert values["shardsieve_node_rebuild_progress_ratio"] == 0.0
         assert 'shardsieve_node_rebuilds_total{node="n7",outcome="completed"} 0.0' in text
         assert 'shardsieve_node_rebuilds_total{node="n7",outcome="abandoned"} 0.0' in text
     finally:

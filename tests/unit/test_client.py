@@ -22,6 +22,7 @@ from shardsieve.client import (
     DEFAULT_COORDINATOR, EXIT_AUTH, EXIT_INVALID, EXIT_USAGE, EXIT_NOT_FOUND, EXIT_UNAVAILABLE, EXIT_UNREACHABLE,
     ClientError, resolve_settings, translate_error,
 )
+from shardsieve import error_detail as ed
 from shardsieve.testing.procs import free_port
 from shardsieve.v1 import admin_pb2, admin_pb2_grpc, filter_pb2, routing_pb2, routing_pb2_grpc
 
@@ -102,8 +103,10 @@ class FakeRouter(routing_pb2_grpc.RouterServicer):
         return routing_pb2.LocateReply()
 
     def Read(self, request, context):  # type: ignore[no-untyped-def]
-        if request.key == b"down":
-            context.abort(grpc.StatusCode.UNAVAILABLE, "candidate n2 could not be asked: absence not proven")
+        if request.key == b"down":   # the detail names the node; the text says something else on purpose
+            context.set_trailing_metadata(ed.trailing(ed.detail(ed.CANDIDATE_UNAVAILABLE, key=request.key, nodes=[
+                ed.node_failure("n2", "127.0.0.1:9002", grpc.StatusCode.UNAVAILABLE, "connection refused")])))
+            context.abort(grpc.StatusCode.UNAVAILABLE, "failed to connect to all addresses")
         if request.key in self.store:
             return routing_pb2.ReadReply(found=True, value=self.store[request.key], node_id="n1", probes=1,
                                          candidates=1)
@@ -170,8 +173,8 @@ def test_bad_settings_are_one_actionable_error(tmp_path: Path) -> None:
 
 
 class _Err(grpc.RpcError):
-    def __init__(self, code: grpc.StatusCode, details: str) -> None:
-        self._code, self._details = code, details
+    def __init__(self, code: grpc.StatusCode, details: str, detail: object = None) -> None:
+        self._code, self._details, self._detail = code, details, detail
 
     def code(self) -> grpc.StatusCode:
         return self._code
@@ -179,16 +182,26 @@ class _Err(grpc.RpcError):
     def details(self) -> str:
         return self._details
 
+    def trailing_metadata(self) -> tuple[tuple[str, bytes], ...]:
+        return ed.trailing(self._detail)  # type: ignore[arg-type]
 
-@pytest.mark.parametrize("code,details,exit_code,phrase", [
-    (grpc.StatusCode.UNAVAILABLE, "failed to connect to all addresses", EXIT_UNREACHABLE, "cannot reach"),
-    (grpc.StatusCode.UNAVAILABLE, "candidate n2 could not be asked", EXIT_UNAVAILABLE, "retry"),
-    (grpc.StatusCode.UNAUTHENTICATED, "bad token", EXIT_AUTH, "--token"),
-    (grpc.StatusCode.NOT_FOUND, "no node 'x'", EXIT_NOT_FOUND, "shardsieve status"),
-    (grpc.StatusCode.INVALID_ARGUMENT, "growth must be > 1", EXIT_INVALID, "nothing was changed"),
+
+NODE_DOWN = ed.detail(ed.CANDIDATE_UNAVAILABLE, key=b"k", nodes=[
+    ed.node_failure("n2", "127.0.0.1:9002", grpc.StatusCode.UNAVAILABLE, "connection refused")])
+
+
+# The exit code follows the structured detail, never the message text: the same text maps to 3
+# without a detail (no coordinator decided anything) and to 7 with one naming the node.
+@pytest.mark.parametrize("code,details,detail,exit_code,phrase", [
+    (grpc.StatusCode.UNAVAILABLE, "failed to connect to all addresses", None, EXIT_UNREACHABLE, "cannot reach"),
+    (grpc.StatusCode.UNAVAILABLE, "failed to connect to all addresses", NODE_DOWN, EXIT_UNAVAILABLE, "n2"),
+    (grpc.StatusCode.UNAVAILABLE, "candidate n2 could not be asked", None, EXIT_UNREACHABLE, "cannot reach"),
+    (grpc.StatusCode.UNAUTHENTICATED, "bad token", None, EXIT_AUTH, "--token"),
+    (grpc.StatusCode.NOT_FOUND, "no node 'x'", None, EXIT_NOT_FOUND, "shardsieve status"),
+    (grpc.StatusCode.INVALID_ARGUMENT, "growth must be > 1", None, EXIT_INVALID, "nothing was changed"),
 ])
-def test_translate_error(code: grpc.StatusCode, details: str, exit_code: int, phrase: str) -> None:
-    err = translate_error(_Err(code, details + "\nsecond line"), "h:1", "Thing")
+def test_translate_error(code: grpc.StatusCode, details: str, detail: object, exit_code: int, phrase: str) -> None:
+    err = translate_error(_Err(code, details + "\nsecond line", detail), "h:1", "Thing")
     assert err.exit_code == exit_code
     assert phrase in err.message
     assert "\n" not in err.message
@@ -286,7 +299,7 @@ def test_get_put_delete_locate_round_trip(fake) -> None:  # type: ignore[no-unty
     assert "on no node" in one_line_error(res)
     res = run(["get", "down", *common])
     assert res.exit_code == EXIT_UNAVAILABLE
-    assert "could not be asked" in one_line_error(res)
+    assert "n2" in one_line_error(res) and "could not be asked" in one_line_error(res)
     res = run(["get", "zz", "--hex", *common])
     assert res.exit_code == EXIT_INVALID
 

@@ -22,7 +22,7 @@ from shardsieve.coordinator.membership import Membership
 from shardsieve.coordinator.metrics import Metrics
 from shardsieve.coordinator.operations import Operations
 from shardsieve.coordinator.policy import Policy
-from shardsieve.coordinator.saturation import SaturationMonitor
+from shardsieve.coordinator.saturation import RebuildLimits, SaturationMonitor
 from shardsieve.coordinator.accounting import ProbeOutcome
 from shardsieve.coordinator.shell import CoordinatorShell
 from shardsieve.coordinator.wiring import CoordinatorState, wire_state
@@ -133,7 +133,7 @@ def test_a_new_epoch_restarts_the_observed_fpr() -> None:
     feed.snapshot(T0)
     counters = state.readings.node("node-wrack-3", T0).counters
     assert (counters.false_positives, counters.lookups_checked, counters.wasted_probes) == (0, 0, 10)
-    assert metrics.registry.get_sample_value("shardsieve_coordinator_snapshots_total") == 2   # first + new epoch
+    assert metrics.registry.get_sample_value("shardsieve_coordinator_snapshots_installed_total") == 2   # first + new epoch
 
 
 # ----------------------------------------------------------------------------- readings
@@ -185,7 +185,7 @@ def test_the_monitor_pass_flags_asks_for_a_rebuild_and_sees_it_done() -> None:
     (request,) = sent.messages
     assert request.node_id == "node-wrack-1" and request.rebuild.capacity == 2000   # growth 2 x 1000 keys
     assert state.readings.fleet(T0).rebuilds_in_progress == 1
-    assert metrics.registry.get_sample_value("shardsieve_coordinator_rebuilds_total", {"action": "rebuild"}) == 1
+    assert metrics.registry.get_sample_value("shardsieve_coordinator_rebuild_requests_total", {"action": "rebuild"}) == 1
     assert state.readings.node("node-wrack-1", T0).state == "rebuilding"
     ops.tick()                                            # still in flight: nothing new
     assert len(ops.decisions()) == 2 and len(sent.messages) == 1
@@ -211,17 +211,59 @@ def test_a_rebuild_for_a_node_without_a_stream_is_skipped_and_frees_its_slot() -
     assert ops.synced_nodes() == ["node-wrack-1"]
 
 
-def test_an_operator_rebuild_is_sent_recorded_and_holds_a_slot() -> None:
-    state, ops, sent, _ = _coordinator(Policy(min_capacity=100, max_concurrent_rebuilds=1))
-    _full_node(state, "node-wrack-5")
+def test_an_operator_rebuild_is_sent_recorded_and_holds_a_slot_and_a_queued_one_starts_when_it_frees() -> None:
+    # docs/coordinator.md, "Accounting and saturation": a requested rebuild is started or queued for
+    # real (the coordinator starts it when a slot frees), never left waiting
+    state, ops, sent, _ = _coordinator(Policy(min_capacity=100, max_concurrent_rebuilds=1, auto_rebuild=False))
+    first = _full_node(state, "node-wrack-5")
     _full_node(state, "node-wrack-6")
     plans = ops.plan_rebuilds([], flagged=True)
-    assert [(p.node_id, p.queued) for p in plans] == [("node-wrack-5", False), ("node-wrack-6", True)]
+    assert [(p.node_id, p.queued, p.refused) for p in plans] == [("node-wrack-5", False, ""),
+                                                                 ("node-wrack-6", True, "")]
+    assert all(p.filter_bytes == p.geometry.byte_size for p in plans)
     ops.rebuild(plans)
     assert [m.node_id for m in sent.messages] == ["node-wrack-5"]
-    assert [(d.node_id, d.action) for d in ops.decisions()] == [("node-wrack-5", "rebuild")]
-    assert ops.decisions(limit=1, node_id="node-wrack-6") == []
+    assert [(d.node_id, d.action) for d in ops.decisions()] == [("node-wrack-5", "rebuild"),
+                                                                ("node-wrack-6", "queued")]
     assert state.readings.fleet(T0).rebuilds_in_progress == 1
+    ops.tick()                                             # no slot yet: it keeps waiting
+    assert [m.node_id for m in sent.messages] == ["node-wrack-5"]
+    (again,) = ops.plan_rebuilds(["node-wrack-6"], flagged=False)     # asking twice is refused, not doubled
+    assert "already rebuilding (or waiting for a slot)" in again.refused
+    first.epoch, first.sequence, first.capacity = 2, 0, plans[0].capacity   # node-wrack-5 switched to its
+    first.bloom = BloomFilter(plans[0].geometry)                             # rebuilt filter
+    first.bloom.add_batch(_keys("node-wrack-5", 1000))
+    first.snapshot(T0)
+    ops.tick()
+    assert [m.node_id for m in sent.messages] == ["node-wrack-5", "node-wrack-6"]
+    assert [(d.node_id, d.action) for d in ops.decisions()][-2:] == [("node-wrack-5", "done"),
+                                                                     ("node-wrack-6", "rebuild")]
+
+
+def test_a_rebuild_past_a_coordinator_limit_or_the_memory_cap_is_refused_before_anything_starts() -> None:
+    # docs/coordinator.md, "Accounting and saturation": a filter above max-filter-bits would be
+    # refused on the node's stream (stranding its rebuild); one that takes the replicas above
+    # max-replica-bytes would exhaust the coordinator. Both are refused with the reason, and a
+    # disconnected node cannot be asked at all.
+    limits = RebuildLimits(max_filter_bits=1 << 14, max_snapshot_chunks=4096, max_replica_bytes=1 << 20)
+    state, ops, sent, _ = _coordinator(Policy(min_capacity=100), monitor=SaturationMonitor(limits=limits))
+    feed = _full_node(state, "node-wrack-7")
+    (big,) = ops.plan_rebuilds(["node-wrack-7"], flagged=False, capacity=200_000)
+    assert "setting max-filter-bits" in big.refused and big.filter_bytes == big.geometry.byte_size > (1 << 14) // 8
+    (ok,) = ops.plan_rebuilds(["node-wrack-7"], flagged=False, capacity=1000)
+    assert ok.refused == "" and ok.geometry.bits <= 1 << 14
+    assert ok.replica_bytes_after > state.readings.replica_bytes() - SMALL.byte_size
+    (huge,) = ops.plan_rebuilds(["node-wrack-7"], flagged=False, capacity=10**13)
+    assert "largest geometry" in huge.refused and huge.geometry is None
+    capped = RebuildLimits(max_filter_bits=1 << 30, max_snapshot_chunks=4096, max_replica_bytes=1 << 12)
+    state.monitor.limits = capped
+    (over,) = ops.plan_rebuilds(["node-wrack-7"], flagged=False, capacity=50_000)
+    assert "setting max-replica-bytes" in over.refused
+    state.monitor.limits = limits
+    feed.close(T0)
+    (gone,) = ops.plan_rebuilds(["node-wrack-7"], flagged=False, capacity=1000)
+    assert "stale or disconnected" in gone.refused
+    assert sent.messages == [] and ops.decisions() == []
 
 
 def test_the_monitor_pass_measures_durations_on_the_monotonic_clock_and_stamps_the_wall_clock() -> None:

@@ -24,7 +24,7 @@ from shardsieve.config import env_name
 
 REPO = Path(__file__).resolve().parents[2]
 DOCS_WITH_COMMANDS = ("README.md", "docs/cli.md", "docs/node.md", "docs/coordinator.md", "docs/security.md",
-                      "docs/loadtest.md")
+                      "docs/loadtest.md", "docs/agents.md")
 
 
 def _table_rows(doc: str) -> dict[str, tuple[str, str]]:

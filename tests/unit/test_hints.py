@@ -389,7 +389,7 @@ def test_hints_held_and_expired_are_prometheus_metrics() -> None:
 
     assert route.hold_hint(b"kelp-late", NODE, 3, 10, now=0.0) and route.hold_hint(b"kelp-later", NODE, 3, 11, now=4.0)
     before = scrape()
-    assert before["shardsieve_coordinator_hints"] == 2 and before["shardsieve_coordinator_hints_expired_total"] == 0
+    assert before["shardsieve_coordinator_hints_held"] == 2 and before["shardsieve_coordinator_hints_expired_total"] == 0
     assert len(ops.expire_hints(now=6.0)) == 1      # the first is 6 s old, past the 5 s bound; never applied
     after = scrape()
-    assert after["shardsieve_coordinator_hints"] == 1 and after["shardsieve_coordinator_hints_expired_total"] == 1
+    assert after["shardsieve_coordinator_hints_held"] == 1 and after["shardsieve_coordinator_hints_expired_total"] == 1

@@ -141,3 +141,27 @@ def test_policy_update_is_all_or_nothing() -> None:
     with pytest.raises(PolicyError, match="not a valid float"):
         policy.updated({"target-fpr": "abc"})
     assert policy == Policy()
+
+
+def test_a_new_epoch_at_the_old_size_is_a_given_up_rebuild_not_a_done_one() -> None:
+    # docs/node.md, "Rebuild": a node that gives a rebuild up goes on with its old filter under a
+    # fresh epoch; the slot is released, but the decision must not say the rebuild was done
+    monitor = SaturationMonitor()
+    node = _view("n1", 3000, 1000)
+    result = monitor.tick(10.0, [node], POLICY, at=WALL)
+    (plan,) = result.rebuilds
+    assert plan.geometry.bits > node.bits and "n1" in monitor.in_flight
+    gave_up = FilterReading("n1", node.epoch + 2, 3000, 1000, node.fill, node.hashes, node.bits)
+    result = monitor.tick(11.0, [gave_up], POLICY, at=WALL)
+    ((action, detail),) = [(d.action, d.detail) for d in result.decisions if d.node_id == "n1" and d.action != "flag"]
+    assert action == "skip" and "gave the rebuild" in detail and "n1" not in monitor.in_flight
+    monitor = SaturationMonitor()
+    (plan,) = monitor.tick(10.0, [node], POLICY, at=WALL).rebuilds
+    grown = FilterReading("n1", node.epoch + 1, 3000, plan.capacity, 0.3, plan.geometry.hashes, plan.geometry.bits)
+    assert [d.action for d in monitor.tick(11.0, [grown], POLICY, at=WALL).decisions] == ["done"]
+
+
+def test_a_concurrency_limit_of_zero_is_refused_with_the_way_to_pause_rebuilds() -> None:
+    with pytest.raises(PolicyError, match="auto-rebuild=false"):
+        POLICY.updated({"max-concurrent-rebuilds": "0"})
+    assert POLICY.updated({"max-concurrent-rebuilds": "1"}).max_concurrent_rebuilds == 1

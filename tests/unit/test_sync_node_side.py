@@ -461,6 +461,55 @@ def test_rebuild_hand_over_switches_only_after_verification() -> None:
     assert sync.report(StoreCounters()).rebuilds_completed == 1
 
 
+def test_a_hand_over_no_coordinator_verified_never_retires_the_old_filter() -> None:
+    # docs/node.md, "Rebuild": the old filter serves until a coordinator verified the new one.
+    # Its only coordinator goes away (or refuses the stream) before verifying: the old filter
+    # stays, and no new size is made durable, so a restart comes back at the old size.
+    sync = make(["crate-1"])
+    connected(sync)
+    start_rebuild(sync, ["crate-1"])
+    sync.scan_done(0.0)
+    drain(sync)
+    sync.disconnect("coord-a")
+    ready = settle(sync)
+    assert "rebuild complete, old filter retired" not in logged(ready)
+    assert ready.durable is None or ready.durable.rebuilt_size is None
+    assert sync.record(b("crate-2")).old_position is not None           # both filters still written
+    assert sync.rebuild_phase is not RebuildPhase.IDLE
+
+
+def test_a_refused_filter_size_gives_the_rebuild_up_and_comes_back_at_the_old_size() -> None:
+    # A coordinator whose max-filter-bits is below the new filter ends the stream with that
+    # setting in its trailing metadata (shardsieve/limits.py); with no coordinator having taken
+    # the new filter, the node gives it up: the old filter goes on under a fresh epoch and the
+    # next Hello carries the old geometry, which that coordinator accepts.
+    sync = make(["crate-1"])
+    old_checksum = sync.filter.checksum
+    connected(sync)
+    start_rebuild(sync, ["crate-1"])
+    sync.scan_done(0.0)
+    drain(sync)
+    sync.disconnect("coord-a")
+    sync.refused("coord-a", "max-filter-bits")
+    ready = settle(sync)
+    assert "rebuild abandoned" in logged(ready) and ready.durable == Durable(highest_epoch=3)
+    assert sync.rebuild_phase is RebuildPhase.IDLE and sync.epoch == 3
+    assert sync.geometry == G and sync.filter.checksum == old_checksum
+    sync.connect("coord-a", 1.0)
+    (hello,) = drain(sync, max_bytes=0)
+    assert hello.hello.epoch == 3 and hello.hello.geometry.bits == G.bits
+
+
+def test_a_refused_filter_outside_a_hand_over_changes_nothing_and_says_what_to_do() -> None:
+    sync = make(["crate-1"])
+    connected(sync)
+    before = (sync.epoch, sync.geometry, sync.filter.checksum)
+    sync.refused("coord-a", "max-filter-bits")
+    ready = settle(sync)
+    assert "a coordinator refuses this node's filter" in logged(ready)
+    assert (sync.epoch, sync.geometry, sync.filter.checksum) == before
+
+
 def test_old_epoch_deltas_stop_at_the_split_point() -> None:
     # docs/sync-protocol.md, "The rebuild hand-over" step 3: an old-epoch delta cut after the
     # rebuild snapshot must never reach that coordinator, or installing the snapshot would
