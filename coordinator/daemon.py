@@ -38,7 +38,7 @@ from shardsieve.coordinator.replica_feed import ReplicaPublisher, ReplicaTap
 from shardsieve.coordinator.replica_watch import ReplicaWatch
 from shardsieve.coordinator.router_batches import BatchRouter
 from shardsieve.coordinator.router_service import Router, RouterService, add_router_service
-from shardsieve.coordinator.saturation import SaturationMonitor
+from shardsieve.coordinator.saturation import FilterReading, SaturationMonitor
 from shardsieve.coordinator.settings import CoordinatorSettings
 from shardsieve.coordinator.sync_service import SyncService
 from shardsieve.coordinator.wiring import wire_state
@@ -53,6 +53,9 @@ log = logging.getLogger("shardsieve.coordinator")
 HEALTH_SERVICES = ("", "shardsieve.v1.Router", "shardsieve.v1.Admin", "shardsieve.v1.FilterSync")
 # worker threads for the heavy work taken off the event loop (the index's own locate threads come on top)
 WORK_THREADS = max(2, min(4, os.cpu_count() or 1))
+# nodes read per part of a monitor pass: about a millisecond of the loop on the 2-core
+# development machine (`shardsieve bench fleet` at 1,000 nodes)
+MONITOR_READ_CHUNK = 128
 
 
 def setup_logging(settings: CoordinatorSettings) -> None:
@@ -68,6 +71,7 @@ class CoordinatorDaemon:
         """clock: monotonic seconds, for every duration (freshness, hint ages, rebuild timeout,
         shrink grace); wall: Unix seconds, only for timestamps shown to people (decisions)."""
         self.settings = settings
+        self._clock = clock
         # The listen address first: a taken port fails the start before anything else is set up.
         self.server = grpc.aio.server(options=[("grpc.max_receive_message_length", settings.max_message_bytes),
                                                ("grpc.max_send_message_length", 64 << 20),
@@ -183,11 +187,25 @@ class CoordinatorDaemon:
         while True:
             await asyncio.sleep(interval)
             try:
-                await self.state.shell.call(self.operations.tick)
+                await self.monitor_pass()
             except Exception:  # noqa: BLE001 - the monitor must keep running
                 log.exception("saturation monitor tick failed")
             if self.freezer is not None and self.freezer.thaw_due():
                 self.freezer.thaw()
+
+    async def monitor_pass(self) -> None:
+        """One monitor pass. The filter readings are gathered MONITOR_READ_CHUNK nodes at a time,
+        the event loop running between the parts, so a pass over a large fleet never holds the
+        loop (or the lock) for long: lookups wait for one part at most (docs/coordinator.md,
+        "Sizing settings for large fleets")."""
+        readings = self.state.readings
+        node_ids = readings.node_ids()
+        now = self._clock()
+        gathered: list[FilterReading] = []
+        for start in range(0, len(node_ids), MONITOR_READ_CHUNK):
+            gathered += await self.state.shell.call(readings.filters, now, node_ids[start:start + MONITOR_READ_CHUNK])
+            await asyncio.sleep(0)
+        await self.state.shell.call(self.operations.tick, gathered)
 
     # -- lifecycle -----------------------------------------------------------------------------------
     async def start(self) -> None:

@@ -12,6 +12,7 @@ bound (shardsieve/limits.py).
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Sequence
 
 from shardsieve.coordinator.accounting import Accounting, FleetTotals, NodeCounters
 from shardsieve.coordinator.hints import HintTable
@@ -118,16 +119,17 @@ class Readings:
                 return None
             return self._read(node_id, now, self._inputs(now))
 
-    def filters(self, now: float) -> list[FilterReading]:
-        """The saturation monitor's inputs: every node with a verified replica, by node id (read
-        straight from the state: the monitor's pass runs every second over the whole fleet)."""
+    def filters(self, now: float, node_ids: Sequence[str] | None = None) -> list[FilterReading]:
+        """The saturation monitor's inputs: every node with a verified replica (of `node_ids`, by
+        default every known node), by node id; read straight from the state, since the monitor's
+        pass reads the whole fleet every interval."""
         with self._shell.lock:
             policy = self._policy.current
             fresh = fresh_nodes(self._shell.synced_heard(), policy, now)
             ones = self._replicas.set_bits_of_all()
             counters = self._accounting.nodes
             out = []
-            for node_id in self._membership.node_ids():
+            for node_id in self._membership.node_ids() if node_ids is None else node_ids:
                 state = self._shell.node(node_id)
                 geometry = state.geometry if state is not None else None
                 if state is None or not state.has_replica or geometry is None:
