@@ -23,7 +23,7 @@ import numpy as np
 import numpy.typing as npt
 
 from shardsieve.coordinator.hints import HintTable
-from shardsieve.coordinator.membership import Membership, fresh_nodes
+from shardsieve.coordinator.membership import FreshNodes, Membership
 from shardsieve.coordinator.policy import LivePolicy
 from shardsieve.coordinator.replicas import Replicas
 from shardsieve.coordinator.shell import CoordinatorShell
@@ -79,11 +79,21 @@ class CandidateLists:
         return [self.row(i) for i in range(len(self))]
 
 
+def stale_nodes(addresses: Mapping[str, str], fresh: set[str]) -> tuple[str, ...]:
+    """Every known node that is not fresh, by node id: what safe mode lists for every key."""
+    return tuple(sorted(n for n in addresses if n not in fresh))
+
+
 def merge(offsets: npt.NDArray[np.int64], matched: list[str], hinted: Sequence[Sequence[str]] | None,
-          addresses: Mapping[str, str], fresh: set[str], safe_mode: bool) -> CandidateLists:
+          addresses: Mapping[str, str], fresh: set[str], safe_mode: bool,
+          stale: tuple[str, ...] | None = None) -> CandidateLists:
     """The freshness contract's merge: filter matches, then hints, then (safe mode) every known
-    node that is not fresh; each node once per key."""
-    stale_tail = tuple(sorted(n for n in addresses if n not in fresh)) if safe_mode else ()
+    node that is not fresh; each node once per key. `stale`: stale_nodes(addresses, fresh) when
+    the caller has it already."""
+    if not safe_mode:
+        stale_tail: tuple[str, ...] = ()
+    else:
+        stale_tail = stale if stale is not None else stale_nodes(addresses, fresh)
     if hinted is None and not stale_tail:
         return CandidateLists(offsets, matched, None, (), {}, addresses, fresh, len(matched))
     bounds = offsets.tolist()
@@ -122,6 +132,18 @@ class CandidateFinder:
         self._membership = membership
         self._hints = hints
         self._policy = policy
+        # The fresh set and the stale nodes derived from it, kept between lookups (each is a
+        # pass over the fleet): FreshNodes says when the fresh set still holds, and the stale
+        # nodes are those of the same fresh set and membership mapping (both are replaced, not
+        # changed, when they change).
+        self._fresh = FreshNodes()
+        self._stale: tuple[Mapping[str, str], set[str], tuple[str, ...]] | None = None
+
+    def _stale_nodes(self, addresses: Mapping[str, str], fresh: set[str]) -> tuple[str, ...]:
+        kept = self._stale
+        if kept is None or kept[0] is not addresses or kept[1] is not fresh:
+            kept = self._stale = (addresses, fresh, stale_nodes(addresses, fresh))
+        return kept[2]
 
     def find(self, keys: Sequence[bytes], now: float, mode: str | None = None) -> CandidateLists:
         """Candidates of each key at time `now` (mode None: the policy's mode)."""
@@ -129,9 +151,10 @@ class CandidateFinder:
             policy = self._policy.current
             hinted = self._hints.lookup_many(keys)
             addresses = self._membership.addresses()
-            fresh = fresh_nodes(self._shell.synced_heard(), policy, now)
+            fresh = self._fresh.get(self._shell.synced_heard(), self._shell.synced_changes(), policy, now)
+            stale = self._stale_nodes(addresses, fresh)
         # Hints first, filters second: a hint goes only once the replica holds its write, so a
         # hint missing here means the index below already lists the key. In the other order a
         # delta applied between the two reads could hide the key from both.
         found = self._replicas.locate(keys)   # the heavy part, outside the coordinator's lock
-        return merge(found.offsets, found.nodes, hinted, addresses, fresh, (mode or policy.mode) == "safe")
+        return merge(found.offsets, found.nodes, hinted, addresses, fresh, (mode or policy.mode) == "safe", stale)

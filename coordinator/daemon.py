@@ -30,6 +30,7 @@ from grpc_health.v1 import health_pb2, health_pb2_grpc
 from grpc_health.v1.health import aio as health_aio
 
 from shardsieve.coordinator.admin_service import AdminService
+from shardsieve.coordinator.gc_pauses import SurvivorFreezer
 from shardsieve.coordinator.metrics import Metrics
 from shardsieve.coordinator.operations import Operations
 from shardsieve.coordinator.probes import Prober
@@ -37,7 +38,7 @@ from shardsieve.coordinator.replica_feed import ReplicaPublisher, ReplicaTap
 from shardsieve.coordinator.replica_watch import ReplicaWatch
 from shardsieve.coordinator.router_batches import BatchRouter
 from shardsieve.coordinator.router_service import Router, RouterService, add_router_service
-from shardsieve.coordinator.saturation import SaturationMonitor
+from shardsieve.coordinator.saturation import FilterReading, SaturationMonitor
 from shardsieve.coordinator.settings import CoordinatorSettings
 from shardsieve.coordinator.sync_service import SyncService
 from shardsieve.coordinator.wiring import wire_state
@@ -52,6 +53,9 @@ log = logging.getLogger("shardsieve.coordinator")
 HEALTH_SERVICES = ("", "shardsieve.v1.Router", "shardsieve.v1.Admin", "shardsieve.v1.FilterSync")
 # worker threads for the heavy work taken off the event loop (the index's own locate threads come on top)
 WORK_THREADS = max(2, min(4, os.cpu_count() or 1))
+# nodes read per part of a monitor pass: about a millisecond of the loop on the 2-core
+# development machine (`shardsieve bench fleet` at 1,000 nodes)
+MONITOR_READ_CHUNK = 128
 
 
 def setup_logging(settings: CoordinatorSettings) -> None:
@@ -67,6 +71,7 @@ class CoordinatorDaemon:
         """clock: monotonic seconds, for every duration (freshness, hint ages, rebuild timeout,
         shrink grace); wall: Unix seconds, only for timestamps shown to people (decisions)."""
         self.settings = settings
+        self._clock = clock
         # The listen address first: a taken port fails the start before anything else is set up.
         self.server = grpc.aio.server(options=[("grpc.max_receive_message_length", settings.max_message_bytes),
                                                ("grpc.max_send_message_length", 64 << 20),
@@ -131,6 +136,7 @@ class CoordinatorDaemon:
             log.warning("sync streams are not authenticated: any peer can push any node id's filter; configure "
                         "tls-client-auth (mutual TLS) or node-token-file")
         self.metrics_server: Any = None
+        self.freezer: SurvivorFreezer | None = None     # the process's garbage collector policy (run())
         self._monitor: asyncio.Task[None] | None = None
         self._stopped = False
 
@@ -181,9 +187,25 @@ class CoordinatorDaemon:
         while True:
             await asyncio.sleep(interval)
             try:
-                await self.state.shell.call(self.operations.tick)
+                await self.monitor_pass()
             except Exception:  # noqa: BLE001 - the monitor must keep running
                 log.exception("saturation monitor tick failed")
+            if self.freezer is not None and self.freezer.thaw_due():
+                self.freezer.thaw()
+
+    async def monitor_pass(self) -> None:
+        """One monitor pass. The filter readings are gathered MONITOR_READ_CHUNK nodes at a time,
+        the event loop running between the parts, so a pass over a large fleet never holds the
+        loop (or the lock) for long: lookups wait for one part at most (docs/coordinator.md,
+        "Sizing settings for large fleets")."""
+        readings = self.state.readings
+        node_ids = readings.node_ids()
+        now = self._clock()
+        gathered: list[FilterReading] = []
+        for start in range(0, len(node_ids), MONITOR_READ_CHUNK):
+            gathered += await self.state.shell.call(readings.filters, now, node_ids[start:start + MONITOR_READ_CHUNK])
+            await asyncio.sleep(0)
+        await self.state.shell.call(self.operations.tick, gathered)
 
     # -- lifecycle -----------------------------------------------------------------------------------
     async def start(self) -> None:
@@ -233,6 +255,9 @@ def run(settings: CoordinatorSettings) -> int:
 
     async def start(daemon: CoordinatorDaemon, _cancel: threading.Event) -> None:
         await daemon.start()
+        # short collector pauses (coordinator/gc_pauses.py): a process-wide choice, made here
+        daemon.freezer = SurvivorFreezer()
+        daemon.freezer.install()
 
     return run_until_signalled("coordinator", log, lambda: CoordinatorDaemon(settings), start,
                                startup_errors=(OSError, RuntimeError, ValueError))

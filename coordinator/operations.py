@@ -19,7 +19,7 @@ from shardsieve.coordinator.hints import Hint, HintTable
 from shardsieve.coordinator.membership import Membership, is_stale
 from shardsieve.coordinator.policy import LivePolicy
 from shardsieve.coordinator.readings import Readings
-from shardsieve.coordinator.saturation import Decision, RebuildPlan, SaturationMonitor
+from shardsieve.coordinator.saturation import Decision, FilterReading, RebuildPlan, SaturationMonitor
 from shardsieve.coordinator.shell import CoordinatorShell
 from shardsieve.v1 import sync_pb2
 
@@ -170,13 +170,19 @@ class Operations:
                     "node_stale": stale, "mode": policy.mode, "still_listed": stale and policy.mode == "safe"})
         return lacking
 
-    def tick(self) -> None:
+    def tick(self, readings: list[FilterReading] | None = None) -> None:
         """One pass of the monitor: expire old hints, assess every synced node, record the
-        decisions and start the rebuilds it chose."""
+        decisions and start the rebuilds it chose. `readings`: the nodes' filter readings when the
+        caller gathered them already (a large fleet's in parts, between which the event loop runs:
+        see CoordinatorDaemon.monitor_pass); a node unlisted since is left out."""
         with self._shell.lock:
             now = self._clock()
             self.expire_hints(now)
-            result = self._monitor.tick(now, self._readings.filters(now), self._policy.current, at=self._wall(),
+            if readings is None:
+                readings = self._readings.filters(now)
+            else:
+                readings = [r for r in readings if self._membership.knows(r.node_id)]
+            result = self._monitor.tick(now, readings, self._policy.current, at=self._wall(),
                                         replica_bytes=self._readings.replica_bytes())
             self.record(result.decisions)
             for plan in result.rebuilds:

@@ -3,17 +3,20 @@
 Each reading is computed under the coordinator's lock from the live state (CoordinatorSync's
 read-only NodeState, the replicas' set-bit counts, the accounting counters, the freshness rule
 of coordinator/membership.py) and is never stored or updated: the next read computes it
-again. Formulas come from their homes: fill^k (shardsieve/sizing.py), the fill plausibility
+again. What every node's reading needs (the fresh set, the set-bit counts, the counters) is
+read once per pass, not once per node: the monitor's pass and a metrics scrape read the whole
+fleet under the lock, so their cost per node is what the event loop waits for. Formulas come from their homes: fill^k (shardsieve/sizing.py), the fill plausibility
 bound (shardsieve/limits.py).
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Sequence
 
 from shardsieve.coordinator.accounting import Accounting, FleetTotals, NodeCounters
 from shardsieve.coordinator.hints import HintTable
-from shardsieve.coordinator.membership import Membership, is_stale, state_name
+from shardsieve.coordinator.membership import Membership, fresh_nodes, state_name
 from shardsieve.coordinator.policy import LivePolicy, Policy
 from shardsieve.coordinator.replicas import Replicas
 from shardsieve.coordinator.saturation import FilterReading, SaturationMonitor
@@ -107,20 +110,36 @@ class Readings:
     def nodes(self, now: float) -> list[NodeReading]:
         """Every known node, by node id."""
         with self._shell.lock:
-            counters, _ = self._accounting.snapshot()
-            policy = self._policy.current
-            return [self._read(n, now, policy, counters) for n in self._membership.node_ids()]
+            inputs = self._inputs(now)
+            return [self._read(n, now, inputs) for n in self._membership.node_ids()]
 
     def node(self, node_id: str, now: float) -> NodeReading | None:
         with self._shell.lock:
             if not self._membership.knows(node_id):
                 return None
-            counters, _ = self._accounting.snapshot()
-            return self._read(node_id, now, self._policy.current, counters)
+            return self._read(node_id, now, self._inputs(now))
 
-    def filters(self, now: float) -> list[FilterReading]:
-        """The saturation monitor's inputs: every node with a verified replica."""
-        return [f for f in (r.filter_reading() for r in self.nodes(now)) if f is not None]
+    def filters(self, now: float, node_ids: Sequence[str] | None = None) -> list[FilterReading]:
+        """The saturation monitor's inputs: every node with a verified replica (of `node_ids`, by
+        default every known node), by node id; read straight from the state, since the monitor's
+        pass reads the whole fleet every interval."""
+        with self._shell.lock:
+            policy = self._policy.current
+            fresh = fresh_nodes(self._shell.synced_heard(), policy, now)
+            ones = self._replicas.set_bits_of_all()
+            counters = self._accounting.nodes
+            out = []
+            for node_id in self._membership.node_ids() if node_ids is None else node_ids:
+                state = self._shell.node(node_id)
+                geometry = state.geometry if state is not None else None
+                if state is None or not state.has_replica or geometry is None:
+                    continue
+                c = counters.get(node_id)
+                out.append(FilterReading(node_id, state.epoch, state.key_count, max(1, state.capacity),
+                                         ones.get(node_id, 0) / geometry.bits, geometry.hashes, geometry.bits,
+                                         c.lookups_checked if c else 0, c.false_positives if c else 0,
+                                         fresh=node_id in fresh))
+            return out
 
     def replica_bytes(self) -> int:
         """Memory of the routing index now (what the rebuild memory cap is checked against)."""
@@ -132,25 +151,43 @@ class Readings:
             return FleetReading(self._policy.current, self.nodes(now), totals, len(self._monitor.in_flight),
                                 len(self._hints), self._hints.expired_unapplied, self._replicas.memory_bytes())
 
-    def _read(self, node_id: str, now: float, policy: Policy, counters: dict[str, NodeCounters]) -> NodeReading:
+    def _inputs(self, now: float) -> _PassInputs:
+        policy = self._policy.current
+        counters, _ = self._accounting.snapshot()
+        return _PassInputs(policy, fresh_nodes(self._shell.synced_heard(), policy, now),
+                           self._replicas.set_bits_of_all(), counters)
+
+    def _read(self, node_id: str, now: float, inputs: _PassInputs) -> NodeReading:
         state = self._shell.node(node_id)
         in_flight = node_id in self._monitor.in_flight
         address = self._membership.address(node_id) or ""
+        counters = inputs.counters.get(node_id)
         if state is None:   # known (expected, remembered) but not heard from in this process's life
             return NodeReading(
                 node_id=node_id, address=address, connected=False, has_replica=False, stale=True,
-                state=state_name(None, policy, now, in_flight), geometry=None, epoch=0, sequence=0, checksum=0,
+                state=state_name(None, True, in_flight), geometry=None, epoch=0, sequence=0, checksum=0,
                 key_count=0, capacity=0, set_bits=0, lag_s=None, delta_bytes=0, snapshots=0, stats=None,
-                counters=counters.get(node_id))
+                counters=counters)
         job = self._monitor.in_flight.get(node_id)
         heard = state.last_heard_at
         sync_counters = state.counters
+        stale = node_id not in inputs.fresh
         return NodeReading(
             node_id=node_id, address=address, connected=state.connected, has_replica=state.has_replica,
-            stale=is_stale(state, policy, now), state=state_name(state, policy, now, in_flight),
+            stale=stale, state=state_name(state, stale, in_flight),
             geometry=state.geometry, epoch=state.epoch, sequence=state.sequence, checksum=state.checksum,
-            key_count=state.key_count, capacity=state.capacity, set_bits=self._replicas.set_bits(node_id),
+            key_count=state.key_count, capacity=state.capacity, set_bits=inputs.set_bits.get(node_id, 0),
             lag_s=None if heard is None else max(0.0, now - heard), delta_bytes=sync_counters.delta_bytes,
-            snapshots=sync_counters.snapshots_installed, stats=state.stats, counters=counters.get(node_id),
+            snapshots=sync_counters.snapshots_installed, stats=state.stats, counters=counters,
             snapshot_bytes=sync_counters.snapshot_bytes,
             rebuild_age_s=None if job is None else max(0.0, now - job.started_at))
+
+
+@dataclass(frozen=True)
+class _PassInputs:
+    """What every node's reading needs, read once per pass under the lock."""
+
+    policy: Policy
+    fresh: set[str]
+    set_bits: dict[str, int]
+    counters: dict[str, NodeCounters]

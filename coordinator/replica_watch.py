@@ -72,7 +72,7 @@ class ReplicaWatch:
             state = self.shell.node(node_id)
             has = state is not None and state.has_replica
             out.nodes.add(node_id=node_id, address=self.membership.address(node_id) or "", fresh=node_id in fresh,
-                          state=state_name(state, policy, now, False), epoch=state.epoch if has else 0,
+                          state=state_name(state, node_id not in fresh, False), epoch=state.epoch if has else 0,
                           sequence=state.sequence if has else 0, has_replica=has)
         return out
 

@@ -51,6 +51,10 @@ class Replicas:
             return 0
         return self._index.popcount(node_id)
 
+    def set_bits_of_all(self) -> dict[str, int]:
+        """set_bits() of every node with a replica, read at once."""
+        return self._index.popcounts()
+
     def nodes(self) -> list[str]:
         """Nodes with a replica in the index."""
         return self._index.nodes()

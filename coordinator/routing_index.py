@@ -90,6 +90,11 @@ _MATCH_CHUNK_BYTES = 256 * 1024
 _MIN_MATCH_KEYS = 8192
 # A batch of at least this many keys is matched in one slice per worker thread.
 _PARALLEL_MIN_KEYS = 2 * _MIN_MATCH_KEYS
+# A batch is matched this many keys per lock hold (about 2 ms at 1,000 nodes of 2^20 bits on the
+# 2-core development machine, `shardsieve bench fleet`), so a single-key lookup waiting behind
+# it waits for one hold, not the whole batch; a batch of _PARALLEL_MIN_KEYS or more keys is
+# matched that many per hold, across the worker threads.
+LOOKUP_HOLD_KEYS = 256
 _COUNT_CHUNK_BYTES = 1 << 16   # packing and counting a new copy: bytes per step
 
 PositionsFn = Callable[[Sequence[bytes], Geometry], npt.NDArray[np.uint64]]
@@ -998,20 +1003,25 @@ class RoutingIndex:
         """Candidates per key: hash the batch once per geometry, AND k rows per key per group.
 
         Hashing runs outside the lock; a group that appeared meanwhile is hashed under it, so
-        a node moving between groups is never missed.
+        a node moving between groups is never missed. Every key is matched against every group
+        in one lock hold; a large batch takes one hold per LOOKUP_HOLD_KEYS keys and lets the
+        callers waiting meanwhile (a single-key lookup, a delta) go first between them.
         """
         n = len(keys)
         hashed = {geo: positions(keys, geo) for geo in self.geometries()} if n else {}
         parts: list[tuple[npt.NDArray[np.intp], npt.NDArray[np.object_]]] = []
-        if n:
+        step = _PARALLEL_MIN_KEYS if n >= _PARALLEL_MIN_KEYS else LOOKUP_HOLD_KEYS
+        for lo in range(0, n, step):
+            hi = min(n, lo + step)
+            if lo:
+                self._lock.let_waiters_in()
             with self._lock:
                 for geo, group in self._groups.items():
                     pos = hashed.get(geo)
-                    if pos is None:
-                        pos = positions(keys, geo)
+                    pos = positions(keys[lo:hi], geo) if pos is None else pos[lo:hi]
                     found_keys, names = self._match_group(group, pos)
                     if found_keys.size:
-                        parts.append((found_keys, names))
+                        parts.append((found_keys + lo if lo else found_keys, names))
         if not parts:
             return Candidates(np.zeros(n + 1, dtype=np.int64), [])
         found, names = _merge_by_key(parts)
@@ -1071,6 +1081,11 @@ class RoutingIndex:
         """Set bits of node_id's filter, kept with every install and delta (no O(m) count)."""
         with self._lock:
             return self._groups[self._geometry_of[node_id]].entries[node_id].ones
+
+    def popcounts(self) -> dict[str, int]:
+        """popcount() of every node in one lock hold (status, metrics and the monitor read them all)."""
+        with self._lock:
+            return {node_id: e.ones for g in self._groups.values() for node_id, e in g.entries.items()}
 
     def nodes(self) -> list[str]:
         with self._lock:

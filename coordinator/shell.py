@@ -124,3 +124,6 @@ class CoordinatorShell:
 
     def synced_heard(self) -> Mapping[str, float]:
         return self._sync.synced_heard()
+
+    def synced_changes(self) -> int:
+        return self._sync.synced_changes()

@@ -10,6 +10,7 @@ from shardsieve.cli.lazy import LazyGroup
 @click.group(cls=LazyGroup, lazy_commands={
     "agent": "shardsieve.bench.agent_bench:bench_agent",
     "filter": "shardsieve.bench.filter_bench:bench_filter",
+    "fleet": "shardsieve.bench.fleet_bench:bench_fleet",
     "node": "shardsieve.bench.node_bench:bench_node",
     "reads": "shardsieve.bench.reads_bench:bench_reads",
     "routing": "shardsieve.bench.routing_bench:bench_routing",

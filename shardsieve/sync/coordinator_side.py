@@ -526,13 +526,20 @@ class CoordinatorSync:
         # read it on every call, so it is an index here rather than a pass over all nodes
         self._synced_heard: dict[str, float] = {}
         self._synced_heard_view = MappingProxyType(self._synced_heard)
+        # counts the changes to `_synced_heard` other than a node heard from again later: a node
+        # joining or leaving it, or a time going back (`synced_changes`)
+        self._synced_changes = 0
 
     def _note(self, node: _Node) -> None:
         """Keep `_synced_heard` current after a call touched `node`."""
-        if node.synced and node.last_heard_at is not None:
-            self._synced_heard[node.node_id] = node.last_heard_at
-        else:
-            self._synced_heard.pop(node.node_id, None)
+        heard = node.last_heard_at
+        if node.synced and heard is not None:
+            before = self._synced_heard.get(node.node_id)
+            if before is None or heard < before:
+                self._synced_changes += 1
+            self._synced_heard[node.node_id] = heard
+        elif self._synced_heard.pop(node.node_id, None) is not None:
+            self._synced_changes += 1
 
     # ------------------------------------------------------------------ streams
     def open(self, stream_id: Hashable, hello: sync_pb2.Hello, now: float) -> SyncResult:
@@ -656,7 +663,8 @@ class CoordinatorSync:
         """Drop a node entirely (an operator unlisted it): its replica leaves the sink. The
         NodeUnlisted event goes out whether or not this object knew the node."""
         node = self._nodes.pop(node_id, None)
-        self._synced_heard.pop(node_id, None)
+        if self._synced_heard.pop(node_id, None) is not None:
+            self._synced_changes += 1
         if node is None:
             return SyncResult(events=(NodeUnlisted(node_id, False, False, 0),))
         if node.stream_id is not None:
@@ -701,6 +709,13 @@ class CoordinatorSync:
     def synced_heard(self) -> Mapping[str, float]:
         """`synced_heard_at` of every node synced (a live read-only mapping: no copy)."""
         return self._synced_heard_view
+
+    def synced_changes(self) -> int:
+        """How often `synced_heard` changed otherwise than by a node synced being heard from again
+        at a later time (a node became synced or stopped being synced, or a time went back). While
+        it stays the same, the synced nodes are the same and their times only grew, so what a
+        reader derived from the mapping earlier may still hold (coordinator/membership.py FreshNodes)."""
+        return self._synced_changes
 
     def is_connected(self, node_id: str) -> bool:
         n = self._nodes.get(node_id)

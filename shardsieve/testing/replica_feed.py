@@ -20,6 +20,11 @@ coordinator process:
     await feed.acked.wait()            # the coordinator installed the snapshot
     feed.heartbeat()
     end = await feed.close()           # how the stream ended
+
+A StreamedFeed answers a NeedSnapshot with a snapshot, as a node does, and counts its Acks
+(`acks`, `acked_position`) rather than keeping them, so thousands of feeds can run for long
+(shardsieve bench fleet). A feed whose stream ended (refused at admission, say) can `connect()`
+again; its filter, epoch and sequence carry over.
 """
 
 from __future__ import annotations
@@ -36,7 +41,7 @@ from shardsieve.bloom import BloomFilter
 from shardsieve.changeset import ChangeSet
 from shardsieve.codec import encode_delta
 from shardsieve.hashing import positions
-from shardsieve.snapshot import encode_snapshot
+from shardsieve.snapshot import EncodedSnapshot, encode_snapshot
 from shardsieve.stream_pump import Outbox, StreamEnd, pump
 from shardsieve.sync.coordinator_side import NOTHING, SyncResult
 from shardsieve.v1 import filter_pb2, sync_pb2, sync_pb2_grpc
@@ -67,6 +72,19 @@ class NodeFeed:
         self.sequence = 0
         self.stream_id: Hashable | None = None
         self._snapshot_ids = itertools.count(1)
+        # the latest snapshot encoding, of which filter object at which checksum
+        self._encoded: tuple[BloomFilter, int, EncodedSnapshot] | None = None
+
+    def encoded(self) -> EncodedSnapshot:
+        """The filter's snapshot encoding, kept while the filter stays the same (the same object
+        at the same checksum), so a benchmark can encode a fleet's snapshots before it times
+        their sending."""
+        kept = self._encoded
+        if kept is not None and kept[0] is self.bloom and kept[1] == self.bloom.checksum:
+            return kept[2]
+        encoded = encode_snapshot(self.bloom)
+        self._encoded = (self.bloom, self.bloom.checksum, encoded)
+        return encoded
 
     def hello(self) -> sync_pb2.Hello:
         return sync_pb2.Hello(node_id=self.node_id, storage_address=self.address,
@@ -82,7 +100,7 @@ class NodeFeed:
         return replies + self.snapshot(now)
 
     def snapshot(self, now: float) -> list[sync_pb2.CoordinatorMessage]:
-        enc = encode_snapshot(self.bloom)
+        enc = self.encoded()
         snapshot_id = next(self._snapshot_ids)
         replies: list[sync_pb2.CoordinatorMessage] = []
         for i, data in enumerate(enc.chunks):
@@ -163,27 +181,50 @@ class StreamedFeed:
         self.node_id = node_id
         self._stub = sync_pb2_grpc.FilterSyncStub(channel)
         self.metadata = metadata
-        self.replies: list[sync_pb2.CoordinatorMessage] = []
-        self.acked = asyncio.Event()           # set by the first Ack
-        self.ended: StreamEnd | None = None
+        self.replies: list[sync_pb2.CoordinatorMessage] = []   # every reply but the Acks (counted below)
+        self.acks = 0                          # Acks received, on every stream of this feed
+        self.acked_position: tuple[int, int] = (0, 0)   # (epoch, sequence) of the latest Ack
+        self.need_snapshots = 0                # NeedSnapshots received (each answered with a snapshot)
+        self.acked = asyncio.Event()           # set by the first Ack on the current stream
+        self.ended: StreamEnd | None = None    # how the latest stream ended (None: open or never opened)
         self._call: Any = None
         self._outbox: Outbox[sync_pb2.NodeMessage] | None = None
         self._pump: asyncio.Future[StreamEnd] | None = None
+
+    @property
+    def open(self) -> bool:
+        """A stream is running (connected, not ended)."""
+        return self._pump is not None and not self._pump.done()
 
     def connect(self) -> None:
         """Open a stream and queue the Hello and a snapshot of the filter."""
         self._call = self._stub.Stream(metadata=self.metadata)
         self._outbox = Outbox(1 << 12)
+        self.acked = asyncio.Event()
+        self.ended = None
         self.feed.connect(time.monotonic())
         self._outbox.send(self._outgoing.take())
-        self._pump = asyncio.ensure_future(pump(read=self._call.read, write=self._call.write, handle=self._on_reply,
-                                                outbox=self._outbox, name=f"feed-{self.node_id}"))
-        self._pump.add_done_callback(lambda done: setattr(self, "ended", None if done.cancelled() else done.result()))
+        pumping = asyncio.ensure_future(pump(read=self._call.read, write=self._call.write, handle=self._on_reply,
+                                             outbox=self._outbox, name=f"feed-{self.node_id}"))
+        self._pump = pumping
+
+        def ended(done: asyncio.Future[StreamEnd]) -> None:
+            if self._pump is pumping:
+                self.ended = StreamEnd(grpc.StatusCode.CANCELLED, "cancelled") if done.cancelled() else done.result()
+        pumping.add_done_callback(ended)
 
     def _on_reply(self, msg: sync_pb2.CoordinatorMessage) -> None:
-        self.replies.append(msg)
-        if msg.WhichOneof("body") == "ack":
+        body = msg.WhichOneof("body")
+        if body == "ack":
+            self.acks += 1
+            self.acked_position = (msg.ack.epoch, msg.ack.sequence)
             self.acked.set()
+            return
+        self.replies.append(msg)
+        if body == "need_snapshot":           # as a node does: a snapshot of the filter now
+            self.need_snapshots += 1
+            self.feed.snapshot(time.monotonic())
+            self._flush()
 
     def _flush(self) -> None:
         assert self._outbox is not None, "connect() first"

@@ -286,3 +286,19 @@ def test_the_monitor_pass_measures_durations_on_the_monotonic_clock_and_stamps_t
     ops.tick()
     last = ops.decisions()[-1]
     assert (last.action, last.at) == ("skip", wall[0]) and "not verified within 60s" in last.detail
+
+
+def test_a_pass_over_readings_gathered_in_parts_leaves_out_a_node_unlisted_meanwhile() -> None:
+    """The daemon gathers a large fleet's readings in parts (CoordinatorDaemon.monitor_pass); a
+    node unlisted between the gathering and the pass is not assessed, the others are."""
+    state, ops, sent, _ = _coordinator()
+    _full_node(state, "node-wrack-1")
+    _full_node(state, "node-wrack-2")
+    ids = state.readings.node_ids()
+    readings = state.readings.filters(T0, ids[:1]) + state.readings.filters(T0, ids[1:])
+    assert [r.node_id for r in readings] == ["node-wrack-1", "node-wrack-2"]
+    ops.unlist("node-wrack-1", force=True)
+    ops.tick(readings)
+    assert {(d.node_id, d.action) for d in ops.decisions() if d.action != "unlist"} == {
+        ("node-wrack-2", "flag"), ("node-wrack-2", "rebuild")}
+    assert [m.node_id for m in sent.messages if m.WhichOneof("body") == "rebuild"] == ["node-wrack-2"]

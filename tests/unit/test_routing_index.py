@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 
 from shardsieve.coordinator import routing_index
-from shardsieve.coordinator.routing_index import RoutingIndex, RoutingIndexError, decode
+from shardsieve.coordinator.routing_index import LOOKUP_HOLD_KEYS, RoutingIndex, RoutingIndexError, decode
 from shardsieve.bloom import BloomFilter, FilterDivergedError
 from shardsieve.geometry import Geometry, geometry_for
 from shardsieve.hashing import positions
@@ -569,3 +569,38 @@ def test_install_allocation_on_a_2_26_bit_filter() -> None:
     settled = index.memory_bytes()
     assert steady == 15 * m8 and settled == 16 * m8
     assert peak <= settled + 8 * m8   # the new byte of every row (m bytes) beside the 8 copies
+
+
+class _CountingLock:
+    """A plain lock that counts its holds."""
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self.holds = 0
+
+    def __enter__(self) -> None:
+        self._lock.acquire()
+        self.holds += 1
+
+    def __exit__(self, *exc: object) -> None:
+        self._lock.release()
+
+
+def test_a_large_batch_takes_one_lock_hold_per_slice_and_answers_as_one() -> None:
+    """A single-key lookup waits behind one slice of a large batch, not the whole batch; each
+    key is still matched against every group within one hold, so the answers equal the
+    per-node reference (Bloom 1970: inserted keys always test positive)."""
+    filters = _fleet(9, 40)
+    big = BloomFilter(GEO_BIG)
+    big.add_batch(_keys("big", 40))
+    filters["node-big"] = big
+    lock = _CountingLock()
+    index = RoutingIndex(workers=1, lock=lock)
+    for nid, bf in filters.items():
+        index.install(nid, bf.geometry, bf.to_bytes())
+    probe = _keys("n0", 40) + _keys("big", 40) + _keys("absent", 3 * LOOKUP_HOLD_KEYS)
+    before = lock.holds
+    got = index.locate(probe, positions)
+    # one hold to read the geometries before hashing, then one per slice
+    assert lock.holds - before == 1 + -(-len(probe) // LOOKUP_HOLD_KEYS)
+    assert [set(c) for c in got.lists()] == _reference(filters, probe)
