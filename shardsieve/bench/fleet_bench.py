@@ -596,9 +596,12 @@ def measure_fleet(plan: FleetPlan, duration: float, workdir: Path, log: Callable
         connect_s = max(c["connect_s"] for c in connected)
         connect_cpu = proc_cpu_s(pid) - cpu0
         refused: dict[str, int] = {}
+        refusal_detail: dict[str, str] = {}
         for c in connected:
             for code, n in c["refused"].items():
                 refused[code] = refused.get(code, 0) + n
+            for code, detail in c["refusal_detail"].items():
+                refusal_detail.setdefault(code, detail)
         fresh_s = _wait_all_fresh(address, plan.nodes, 120)
         synced = proc_memory(pid)
         log(f"  {plan.nodes} nodes connected at once: every snapshot acknowledged after {connect_s:.1f} s "
@@ -664,7 +667,7 @@ def measure_fleet(plan: FleetPlan, duration: float, workdir: Path, log: Callable
         "write_rate_per_writer": plan.write_rate, "keys_per_delta": plan.keys_per_delta,
         "delta_interval_ms": plan.delta_interval_s * 1000.0,
         "connect_s": connect_s, "connect_cpu_s": connect_cpu, "fresh_after_connect_s": fresh_s,
-        "streams_refused": refused,
+        "streams_refused": refused, "streams_refused_detail": refusal_detail,
         "rss_idle_bytes": idle["VmRSS"], "rss_synced_bytes": synced["VmRSS"], "hwm_synced_bytes": synced["VmHWM"],
         "rss_end_bytes": end["VmRSS"], "hwm_bytes": end["VmHWM"],
         "sum_m_over_8_bytes": sum_m8,
