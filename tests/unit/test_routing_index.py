@@ -516,7 +516,10 @@ def test_lookups_during_a_large_install_on_another_thread() -> None:
     try:
         while not finished.is_set():
             in_flight = index.memory_bytes() > steady   # the new copy is staged, not yet in its slot
-            listed = np.array(_answers(index, candidates, "node-4"))
+            # one lock hold per lookup: a larger batch lets the waiting installer in between its
+            # holds, and this lock makes the installer wait for the lookup to end
+            listed = np.array([answer for lo in range(0, len(candidates), routing_index.LOOKUP_HOLD_KEYS)
+                               for answer in _answers(index, candidates[lo:lo + routing_index.LOOKUP_HOLD_KEYS], "node-4")])
             assert listed[must].all() and not listed[never].any()
             during += in_flight
             lock.lookup_done.set()
