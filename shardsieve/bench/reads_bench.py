@@ -124,7 +124,6 @@ def measure(nodes: int = 16, keys: int = 20_000, threads: int = 8, seconds: floa
     with tempfile.TemporaryDirectory(prefix="shardsieve-bench-reads-") as tmp, \
             LocalCluster(Path(tmp), nodes=nodes, capacity=max(2 * keys // nodes, 1000)) as cluster:
         node_ids = sorted(cluster.node_addresses)
-        addresses = cluster.node_addresses
         run_id = f"br{seed}"
         present = [seed_key(run_id, i) for i in range(keys)]
         owner = {k: node_ids[int(j)] for k, j in zip(present, rng.integers(0, nodes, size=keys))}

@@ -17,7 +17,7 @@ import grpc
 
 from shardsieve.client import wire
 from shardsieve.client.errors import CoordinatorUnavailable, ShardsieveError, Unavailable, from_rpc_error
-from shardsieve.client.policy import READ, WRITE, CoordinatorPool, RetryPolicy, may_retry
+from shardsieve.client.policy import READ, WRITE, CoordinatorPool, NotSent, RetryPolicy, pause_before_retry
 from shardsieve.client.replica import LocalReplica
 from shardsieve.client.results import Candidate, DeleteResult, ReadResult, WriteResult
 from shardsieve.security import auth_metadata, make_aio_channel
@@ -25,10 +25,6 @@ from shardsieve.v1 import routing_pb2, storage_pb2, storage_pb2_grpc
 
 Metadata = tuple[tuple[str, str], ...]
 
-
-class _NotSent(Exception):
-    def __init__(self, tried: tuple[str, ...]) -> None:
-        self.tried = tried
 
 
 class _Conn:
@@ -122,22 +118,11 @@ class AsyncClient:
         deadline = self._clock() + (timeout_s if timeout_s is not None else self.timeout_s)
         retry = 0
         while True:
-            sent = True
             try:
                 return await self._once(path, request, reply_cls, kind, deadline)
-            except _NotSent as exc:
-                sent = False
-                error: ShardsieveError = CoordinatorUnavailable(
-                    f"cannot reach any coordinator (tried {', '.join(exc.tried) or 'none: deadline passed'})",
-                    tried=exc.tried, coordinator=exc.tried[-1] if exc.tried else "")
-            except ShardsieveError as exc:
-                error = exc
-            retry += 1
-            if retry >= self.retry.attempts or not may_retry(kind, error, sent=sent):
-                raise error
-            pause = self.retry.backoff_s(retry)
-            if self._clock() + pause >= deadline:
-                raise error
+            except (NotSent, ShardsieveError) as exc:
+                retry += 1
+                pause = pause_before_retry(self.retry, kind, exc, retry, self._clock(), deadline)
             await self._sleep(pause)
 
     async def _once(self, path: str, request: Any, reply_cls: type, kind: str, deadline: float) -> tuple[Any, str]:
@@ -162,7 +147,7 @@ class AsyncClient:
                 raise error from None
             self.pool.succeeded(address)
             return reply, address
-        raise _NotSent(tuple(tried))
+        raise NotSent(tuple(tried))
 
     async def _router(self, name: str, request: Any, timeout_s: float | None) -> tuple[Any, str]:
         _, reply_cls, kind = wire.ROUTER_METHODS[name]
@@ -262,10 +247,7 @@ class AsyncClient:
                 return await attempt(deadline)
             except Unavailable as error:
                 retry += 1
-                pause = self.retry.backoff_s(retry)
-                if retry >= self.retry.attempts or not may_retry(kind, error, sent=True) \
-                        or self._clock() + pause >= deadline:
-                    raise
+                pause = pause_before_retry(self.retry, kind, error, retry, self._clock(), deadline)
                 await self._sleep(pause)
 
     def _node(self, address: str) -> storage_pb2_grpc.NodeStorageStub:

@@ -61,6 +61,33 @@ class RetryPolicy:
         return ceiling * rng()
 
 
+class NotSent(Exception):
+    """No coordinator could be reached before the deadline: the request never left."""
+
+    def __init__(self, tried: tuple[str, ...]) -> None:
+        super().__init__(tried)
+        self.tried = tried
+
+
+def pause_before_retry(policy: RetryPolicy, kind: str, failure: NotSent | ShardsieveError,
+                       retry: int, now: float, deadline: float) -> float:
+    """The wait before retry number `retry` (1 = the first) of a call of `kind` that failed
+    with `failure`; raises the error the caller gets when the call must not be tried again
+    (attempts used up, not retryable, or the pause would pass the call's deadline)."""
+    if isinstance(failure, NotSent):
+        error: ShardsieveError = CoordinatorUnavailable(
+            f"cannot reach any coordinator (tried {', '.join(failure.tried) or 'none: deadline passed'})",
+            tried=failure.tried, coordinator=failure.tried[-1] if failure.tried else "")
+    else:
+        error = failure
+    if retry >= policy.attempts or not may_retry(kind, error, sent=not isinstance(failure, NotSent)):
+        raise error from None
+    pause = policy.backoff_s(retry)
+    if now + pause >= deadline:
+        raise error from None
+    return pause
+
+
 def may_retry(kind: str, error: ShardsieveError, *, sent: bool) -> bool:
     """Whether a call of `kind` (READ, DELETE, WRITE) that failed with `error` may be tried
     again. `sent`: the request left this process (False: the coordinator could not be reached

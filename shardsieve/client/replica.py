@@ -33,7 +33,6 @@ from shardsieve.sync.coordinator_side import (
     ResyncRequested,
     SnapshotRejected,
     SyncResult,
-    holds_write,
 )
 from shardsieve.sync.errors import SyncError
 from shardsieve.v1 import routing_pb2, sync_pb2

@@ -9,7 +9,6 @@ index states in its module docstring.
 
 from __future__ import annotations
 
-import math
 import mmap
 import threading
 import tracemalloc
@@ -21,7 +20,7 @@ import pytest
 from shardsieve.coordinator import routing_index
 from shardsieve.coordinator.routing_index import LOOKUP_HOLD_KEYS, RoutingIndex, RoutingIndexError, decode
 from shardsieve.bloom import BloomFilter, FilterDivergedError
-from shardsieve.geometry import Geometry, geometry_for
+from shardsieve.geometry import Geometry
 from shardsieve.hashing import positions
 
 GEO = Geometry(bits=1 << 12, hashes=5)
@@ -518,8 +517,8 @@ def test_lookups_during_a_large_install_on_another_thread() -> None:
             in_flight = index.memory_bytes() > steady   # the new copy is staged, not yet in its slot
             # one lock hold per lookup: a larger batch lets the waiting installer in between its
             # holds, and this lock makes the installer wait for the lookup to end
-            listed = np.array([answer for lo in range(0, len(candidates), routing_index.LOOKUP_HOLD_KEYS)
-                               for answer in _answers(index, candidates[lo:lo + routing_index.LOOKUP_HOLD_KEYS], "node-4")])
+            listed = np.array([answer for lo in range(0, len(candidates), LOOKUP_HOLD_KEYS)
+                               for answer in _answers(index, candidates[lo:lo + LOOKUP_HOLD_KEYS], "node-4")])
             assert listed[must].all() and not listed[never].any()
             during += in_flight
             lock.lookup_done.set()
