@@ -434,16 +434,19 @@ class FeedApplier:
         log.warning("the store's change feed broke", extra={"reason": event.reason, "store": self.external.url})
 
     def _on_mark(self, event: Mark) -> None:
-        with self._cond:
-            self._applied_token = max(self._applied_token, event.token)
-            state = self._state
-            self._cond.notify_all()
-        if event.store_count is not None and state is FeedState.LIVE and self._core_sink is not None:
+        # The audit comes before the waiters are released: a mark whose key count shows a
+        # change the feed never reported (e.g. SWAPDB) must not confirm a settle() that waits
+        # on it. After a mismatch the state is BROKEN, so the waiters wait for the new listing
+        # (`_enter_live` then issues them a fresh mark).
+        if event.store_count is not None and self.state is FeedState.LIVE and self._core_sink is not None:
             self.counters.audits += 1
             held = self.ledger.count()
             if held != event.store_count:
                 self.counters.audit_mismatches += 1
                 self._relist(f"key count differs: the store holds {event.store_count}, the ledger {held}")
+        with self._cond:
+            self._applied_token = max(self._applied_token, event.token)
+            self._cond.notify_all()
 
 
 def start_agent(node_id: str, external: ExternalStore, ledger: KeyLedger, *, capacity: int, target_fpr: float,

@@ -459,7 +459,7 @@ class Driver:
         try:
             reply = self.coordinator.router().Write(routing_pb2.WriteRequest(key=key, value=value),
                                                     timeout=self.timeout)
-        except grpc.RpcError:
+        except (grpc.RpcError, ValueError):   # ValueError: `kill` closed the channel under this call
             return None
         self.history.write(key, value, start, node_id=reply.node_id, via="coordinator")
         self.cluster.note_ack(reply.node_id, reply.epoch, reply.sequence)
@@ -476,6 +476,8 @@ class Driver:
                                                    timeout=self.timeout)
         except grpc.RpcError as exc:
             return ("error", None, f"{exc.code().name}: {exc.details()}")
+        except ValueError as exc:   # `kill` closed the channel under this call: a failed call, not a reply
+            return ("error", None, f"channel closed: {exc}")
         self.history.read(key, reply.found, reply.value if reply.found else None, start, node_id=reply.node_id)
         if reply.found:
             return ("found", reply.value, reply.node_id)
