@@ -297,6 +297,16 @@ def start_postgres(settings: Mapping[str, str] | None = None, *, bin_dir: str | 
     return server
 
 
+def harvest_database(pg: PostgresServer, name: str, role: str) -> str:
+    """Create database `name` with the cooperative's `harvest (tag text PRIMARY KEY, note text)`
+    table, owned by `role` (which may create publications there, as an agent needs)."""
+    pg.execute(f"CREATE DATABASE {name}")
+    pg.execute(f"GRANT CREATE ON DATABASE {name} TO {role}")
+    pg.execute("CREATE TABLE harvest (tag text PRIMARY KEY, note text)", dbname=name)
+    pg.execute(f"ALTER TABLE harvest OWNER TO {role}", dbname=name)
+    return name
+
+
 def wait_for_port_closed(port: int, timeout: float = 10.0) -> None:
     """Wait until nothing answers on the loopback port (a stopped server released it)."""
     wait_until(lambda: not _port_answers(port), timeout, message=f"port {port} released")

@@ -21,7 +21,7 @@ import pytest
 from shardsieve.localcluster import LocalCluster
 from shardsieve.testing.agent_oracle import not_routed_to, scrape
 from shardsieve.testing.procs import free_port, shardsieve_argv, wait_until
-from shardsieve.testing.servers import PostgresServer, start_postgres
+from shardsieve.testing.servers import PostgresServer, harvest_database, start_postgres
 from shardsieve.v1 import routing_pb2
 
 pytestmark = pytest.mark.cluster
@@ -41,11 +41,7 @@ def pg() -> Iterator[PostgresServer]:
 @pytest.fixture
 def db(pg: PostgresServer) -> str:
     """A fresh database with the cooperative's harvest table, owned by the agent's role."""
-    name = f"ledger_{next(_databases)}"
-    pg.execute(f"CREATE DATABASE {name}")
-    pg.execute(f"GRANT CREATE ON DATABASE {name} TO {ROLE}")
-    pg.execute("CREATE TABLE harvest (tag text PRIMARY KEY, note text)", dbname=name)
-    pg.execute(f"ALTER TABLE harvest OWNER TO {ROLE}", dbname=name)
+    name = harvest_database(pg, f"ledger_{next(_databases)}", ROLE)
     pg.execute("INSERT INTO harvest SELECT 'bed-' || g, 'sugar-kelp' FROM generate_series(1, 600) g", dbname=name)
     return name
 

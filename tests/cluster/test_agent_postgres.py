@@ -24,7 +24,7 @@ from shardsieve.node.core import NodeCore
 from shardsieve.node.store import StoreError
 from shardsieve.testing.agent_oracle import assert_filter_matches
 from shardsieve.testing.procs import wait_until
-from shardsieve.testing.servers import PostgresServer, start_postgres
+from shardsieve.testing.servers import PostgresServer, harvest_database, start_postgres
 
 pytestmark = pytest.mark.cluster
 ROLE = "kelp_agent"
@@ -42,11 +42,7 @@ def pg() -> Iterator[PostgresServer]:
 @pytest.fixture
 def db(pg: PostgresServer) -> str:
     """A fresh database with the cooperative's harvest table, owned by the agent's role."""
-    name = f"kelp_{next(_databases)}"
-    pg.execute(f"CREATE DATABASE {name}")
-    pg.execute(f"GRANT CREATE ON DATABASE {name} TO {ROLE}")
-    pg.execute("CREATE TABLE harvest (tag text PRIMARY KEY, note text)", dbname=name)
-    pg.execute(f"ALTER TABLE harvest OWNER TO {ROLE}", dbname=name)
+    name = harvest_database(pg, f"kelp_{next(_databases)}", ROLE)
     return name
 
 
