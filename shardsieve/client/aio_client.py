@@ -26,7 +26,6 @@ from shardsieve.v1 import routing_pb2, storage_pb2, storage_pb2_grpc
 Metadata = tuple[tuple[str, str], ...]
 
 
-
 class _Conn:
     def __init__(self, address: str, credentials: grpc.ChannelCredentials | None) -> None:
         self.address = address

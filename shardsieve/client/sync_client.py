@@ -27,7 +27,6 @@ from shardsieve.v1 import routing_pb2, storage_pb2
 Metadata = tuple[tuple[str, str], ...]
 
 
-
 class _Conn:
     """One coordinator's channel, whether it is connected, and its methods."""
 
